@@ -1,0 +1,6 @@
+from django.apps import AppConfig
+
+
+class ColoniesConfig(AppConfig):
+    name = "colonies"
+    verbose_name = "Colonies and husbandry"

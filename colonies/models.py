@@ -1,0 +1,513 @@
+"""Husbandry records: species care profiles, rooms, tanks and what technicians log on them.
+
+Every model keeps a full change history (django-simple-history: who, when, what, why). Records
+are never deleted through the application; they are voided with a reason and stay in history.
+"""
+from datetime import timedelta
+
+from django.conf import settings
+from django.core.validators import MinValueValidator, MaxValueValidator, RegexValidator
+from django.db import models
+from django.db.models import Max, OuterRef, Q, Subquery
+from django.urls import reverse
+from django.utils import timezone
+from simple_history.models import HistoricalRecords
+
+from . import parameters
+from .flags import Target
+
+DEFAULT_CHECK_INTERVAL_HOURS = 24
+DEFAULT_FEEDING_INTERVAL_DAYS = 3
+DEFAULT_WATER_CHANGE_INTERVAL_DAYS = 7
+DEFAULT_WATER_CHANGE_FRACTION = 0.5
+DEFAULT_CENSUS_INTERVAL_DAYS = 14
+LATE_ENTRY_AFTER = timedelta(hours=6)  # entered this long after the observation: marked as a late entry
+
+tank_code_validator = RegexValidator(
+    r"^[A-Z0-9][A-Z0-9-]{0,11}$",
+    "Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. FW-A07).",
+)
+
+
+class Habitat(models.TextChoices):
+    FRESHWATER = parameters.FRESHWATER, "Freshwater"
+    MARINE = parameters.MARINE, "Marine"
+
+
+# ---------------------------------------------------------------------------------------------
+# Voiding instead of deleting
+# ---------------------------------------------------------------------------------------------
+class VoidableQuerySet(models.QuerySet):
+    def current(self):
+        """Records that count: not voided."""
+        return self.filter(voided_at__isnull=True)
+
+    def voided(self):
+        return self.filter(voided_at__isnull=False)
+
+
+class Voidable(models.Model):
+    voided_at = models.DateTimeField(null=True, blank=True, editable=False)
+    voided_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, null=True, blank=True, editable=False, on_delete=models.PROTECT, related_name="+"
+    )
+    void_reason = models.TextField(blank=True, editable=False)
+
+    objects = VoidableQuerySet.as_manager()
+
+    class Meta:
+        abstract = True
+
+    @property
+    def is_voided(self) -> bool:
+        return self.voided_at is not None
+
+    def void(self, *, user, reason: str) -> None:
+        """Hide the record from lists and analyses; the history keeps it with who, when and why."""
+        reason = (reason or "").strip()
+        if not reason:
+            raise ValueError("A reason is required to void a record.")
+        if self.is_voided:
+            raise ValueError(f"{self} is already voided.")
+        self.voided_at = timezone.now()
+        self.voided_by = user
+        self.void_reason = reason
+        self._change_reason = f"Voided: {reason}"
+        self._history_user = user
+        self.save()
+
+
+class Recorded(Voidable):
+    """A husbandry record: who logged it (set by the server), when it was observed and entered."""
+
+    tank = models.ForeignKey("Tank", on_delete=models.PROTECT)
+    observed_at = models.DateTimeField(
+        default=timezone.now, help_text="When the work was done or the reading taken (may be earlier than entry)."
+    )
+    recorded_at = models.DateTimeField(auto_now_add=True, help_text="When the record was entered.")
+    recorded_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+")
+    note = models.TextField(blank=True)
+
+    class Meta:
+        abstract = True
+        ordering = ["-observed_at"]
+        get_latest_by = "observed_at"
+
+    @property
+    def is_late_entry(self) -> bool:
+        return bool(self.recorded_at and self.recorded_at - self.observed_at > LATE_ENTRY_AFTER)
+
+
+# ---------------------------------------------------------------------------------------------
+# Species care profiles
+# ---------------------------------------------------------------------------------------------
+class Species(models.Model):
+    scientific_name = models.CharField(max_length=120, unique=True)
+    common_name = models.CharField(max_length=120, blank=True)
+    habitat = models.CharField(max_length=12, choices=Habitat.choices, default=Habitat.FRESHWATER)
+    check_interval_hours = models.PositiveIntegerField(
+        default=DEFAULT_CHECK_INTERVAL_HOURS, validators=[MinValueValidator(1)],
+        help_text="A daily check is due this many hours after the last one.",
+    )
+    feeding_interval_days = models.PositiveIntegerField(default=DEFAULT_FEEDING_INTERVAL_DAYS, validators=[MinValueValidator(1)])
+    water_change_interval_days = models.PositiveIntegerField(
+        default=DEFAULT_WATER_CHANGE_INTERVAL_DAYS, validators=[MinValueValidator(1)]
+    )
+    water_change_fraction = models.FloatField(
+        default=DEFAULT_WATER_CHANGE_FRACTION, validators=[MinValueValidator(0.01), MaxValueValidator(1.0)],
+        help_text="Fraction of the tank volume renewed at each water change (0.01-1).",
+    )
+    census_interval_days = models.PositiveIntegerField(default=DEFAULT_CENSUS_INTERVAL_DAYS, validators=[MinValueValidator(1)])
+    max_density_per_l = models.PositiveIntegerField(
+        null=True, blank=True, help_text="Maximum stocking density, animals per litre of tank volume."
+    )
+    reserve_min_animals = models.PositiveIntegerField(
+        default=0, help_text="Animals that must stay in a culture and never be booked out."
+    )
+    notes = models.TextField(blank=True, help_text="Care notes; say here where no published value exists.")
+    sources = models.JSONField(
+        default=dict, blank=True,
+        help_text="Where each default value comes from: field name → citation (document, year, table).",
+    )
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["scientific_name"]
+        verbose_name_plural = "species"
+
+    def __str__(self):
+        return f"{self.scientific_name} ({self.common_name})" if self.common_name else self.scientific_name
+
+    def get_absolute_url(self):
+        return reverse("colonies:species-detail", args=[self.pk])
+
+    def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
+        return parameters.for_habitat(self.habitat)
+
+
+class CareTarget(models.Model):
+    """A species' care-target range for one water parameter; either end may be open."""
+
+    species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="targets")
+    parameter = models.CharField(max_length=32, choices=parameters.CHOICES)
+    low = models.FloatField(null=True, blank=True)
+    high = models.FloatField(null=True, blank=True)
+    source = models.TextField(blank=True, help_text="Document, year and table the range comes from, or 'lab setting'.")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["species", "parameter"]
+        constraints = [
+            models.UniqueConstraint(fields=["species", "parameter"], name="care_target_one_per_parameter"),
+            models.CheckConstraint(
+                condition=Q(low__isnull=True) | Q(high__isnull=True) | Q(low__lte=models.F("high")),
+                name="care_target_low_not_above_high",
+            ),
+        ]
+
+    def __str__(self):
+        return f"{self.species}: {self.parameter} {self.as_target().text()}"
+
+    def get_absolute_url(self):
+        return self.species.get_absolute_url()
+
+    def as_target(self) -> Target:
+        return Target(self.low, self.high, "species")
+
+
+# ---------------------------------------------------------------------------------------------
+# Rooms and tanks
+# ---------------------------------------------------------------------------------------------
+class Room(models.Model):
+    code = models.SlugField(max_length=20, unique=True, help_text="Short name used in addresses, e.g. 'wet-lab-1'.")
+    name = models.CharField(max_length=80)
+    notes = models.TextField(blank=True)
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["code"]
+
+    def __str__(self):
+        return self.name
+
+    def get_absolute_url(self):
+        return reverse("colonies:round-room", args=[self.code])
+
+
+class TankQuerySet(models.QuerySet):
+    def active(self):
+        return self.filter(status=Tank.Status.ACTIVE)
+
+    def in_use(self):
+        """Tanks on the daily round: active and in quarantine (quarantined animals still need care)."""
+        return self.exclude(status=Tank.Status.RETIRED)
+
+    def in_room(self, room):
+        return self.filter(room=room) if room is not None else self
+
+    def with_last_events(self):
+        """Annotate last_check_at, last_feeding_at, last_water_change_at, last_census_at (one query, subqueries)."""
+        def latest(model):
+            return Subquery(
+                model.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at").values("observed_at")[:1]
+            )
+        return self.annotate(
+            last_check_at=latest(Check),
+            last_feeding_at=latest(Feeding),
+            last_water_change_at=latest(WaterChange),
+            last_census_at=latest(Census),
+        )
+
+    def with_last_readings(self):
+        """Annotate last_<key> with each parameter's most recent non-empty value (one query)."""
+        annotations = {}
+        for p in parameters.PARAMETERS:
+            annotations[f"last_{p.key}"] = Subquery(
+                Check.objects.current()
+                .filter(tank=OuterRef("pk"), **{f"{p.key}__isnull": False})
+                .order_by("-observed_at")
+                .values(p.key)[:1]
+            )
+        return self.annotate(**annotations)
+
+    def for_round(self):
+        return (
+            self.in_use()
+            .select_related("room", "species")
+            .prefetch_related("species__targets", "target_overrides")
+            .with_last_events()
+            .with_last_readings()
+            .order_by("room__code", "position", "code")
+        )
+
+
+class Tank(models.Model):
+    class System(models.TextChoices):
+        STATIC = "static", "Static renewal"
+        FLOW = "flow", "Flow-through"
+        RECIRCULATING = "recirc", "Recirculating"
+
+    class Status(models.TextChoices):
+        ACTIVE = "active", "Active"
+        QUARANTINE = "quarantine", "Quarantine"
+        RETIRED = "retired", "Retired"
+
+    code = models.CharField(max_length=12, unique=True, validators=[tank_code_validator],
+                            help_text="Printed on the tank label.")
+    room = models.ForeignKey(Room, on_delete=models.PROTECT, related_name="tanks")
+    position = models.CharField(max_length=30, blank=True, help_text="Rack and shelf, e.g. 'rack 2, shelf B'.")
+    species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="tanks")
+    volume_l = models.FloatField(validators=[MinValueValidator(0.01), MaxValueValidator(10000)],
+                                 help_text="Water volume in litres.")
+    system = models.CharField(max_length=12, choices=System.choices, default=System.STATIC)
+    substrate = models.CharField(max_length=80, blank=True)
+    status = models.CharField(max_length=12, choices=Status.choices, default=Status.ACTIVE)
+    started_on = models.DateField(default=timezone.localdate)
+    notes = models.TextField(blank=True)
+    founded_from = models.ManyToManyField(
+        "self", symmetrical=False, blank=True, related_name="offspring",
+        help_text="The tank(s) this culture was founded or split from.",
+    )
+    history = HistoricalRecords(m2m_fields=[founded_from])
+
+    objects = TankQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["code"]
+        constraints = [
+            models.CheckConstraint(condition=Q(volume_l__gt=0), name="tank_volume_positive"),
+        ]
+
+    def __str__(self):
+        return self.code
+
+    def get_absolute_url(self):
+        return reverse("colonies:tank-detail", args=[self.code])
+
+    def care_targets(self) -> dict[str, Target]:
+        """Species targets with this tank's overrides on top. Uses prefetched rows when present."""
+        targets = {t.parameter: t.as_target() for t in self.species.targets.all()}
+        for o in self.target_overrides.all():
+            targets[o.parameter] = o.as_target()
+        return targets
+
+    def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
+        return self.species.relevant_parameters()
+
+    def due(self, now=None) -> list[dict]:
+        """What is due on this tank, from the with_last_events() annotations (no query if annotated)."""
+        now = now or timezone.now()
+        s = self.species
+        plan = [
+            ("check", "Daily check", getattr(self, "last_check_at", None), timedelta(hours=s.check_interval_hours)),
+            ("feeding", "Feeding", getattr(self, "last_feeding_at", None), timedelta(days=s.feeding_interval_days)),
+            ("water_change", "Water change", getattr(self, "last_water_change_at", None),
+             timedelta(days=s.water_change_interval_days)),
+            ("census", "Census", getattr(self, "last_census_at", None), timedelta(days=s.census_interval_days)),
+        ]
+        items = []
+        for key, label, last, interval in plan:
+            due_at = (last + interval) if last else None
+            items.append({
+                "key": key, "label": label, "last": last, "due_at": due_at,
+                "is_due": due_at is None or due_at <= now,
+            })
+        return items
+
+
+class TankTarget(models.Model):
+    """A tank's own care target for one parameter, replacing the species target."""
+
+    tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="target_overrides")
+    parameter = models.CharField(max_length=32, choices=parameters.CHOICES)
+    low = models.FloatField(null=True, blank=True)
+    high = models.FloatField(null=True, blank=True)
+    reason = models.TextField(help_text="Why this tank differs from its species profile.")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["tank", "parameter"]
+        constraints = [
+            models.UniqueConstraint(fields=["tank", "parameter"], name="tank_target_one_per_parameter"),
+            models.CheckConstraint(
+                condition=Q(low__isnull=True) | Q(high__isnull=True) | Q(low__lte=models.F("high")),
+                name="tank_target_low_not_above_high",
+            ),
+        ]
+
+    def __str__(self):
+        return f"{self.tank}: {self.parameter} {self.as_target().text()}"
+
+    def get_absolute_url(self):
+        return self.tank.get_absolute_url()
+
+    def as_target(self) -> Target:
+        return Target(self.low, self.high, "tank")
+
+
+# ---------------------------------------------------------------------------------------------
+# Husbandry records
+# ---------------------------------------------------------------------------------------------
+def _reading_fields() -> dict:
+    return {
+        p.key: models.FloatField(
+            null=True, blank=True, verbose_name=p.label_with_unit, help_text=p.help,
+            validators=[MinValueValidator(p.minimum), MaxValueValidator(p.maximum)],
+        )
+        for p in parameters.PARAMETERS
+    }
+
+
+# The reading columns are generated from the registry, so adding a parameter is one entry there
+# plus `makemigrations`.
+Readings = type(
+    "Readings",
+    (models.Model,),
+    {"__module__": __name__, "Meta": type("Meta", (), {"abstract": True}), **_reading_fields()},
+)
+
+
+class Check(Readings, Recorded):
+    class Activity(models.TextChoices):
+        NORMAL = "normal", "Normal"
+        REDUCED = "reduced", "Reduced"
+        NONE = "none", "None seen"
+
+    class Odour(models.TextChoices):
+        NONE = "none", "None"
+        SLIGHT = "slight", "Slight"
+        FOUL = "foul", "Foul"
+
+    class Clarity(models.TextChoices):
+        CLEAR = "clear", "Clear"
+        CLOUDY = "cloudy", "Cloudy"
+        TURBID = "turbid", "Turbid"
+
+    activity = models.CharField(max_length=10, choices=Activity.choices, blank=True)
+    clumping = models.BooleanField(default=False, help_text="Worms clumped together (normal for some taxa).")
+    dead_removed = models.PositiveIntegerField(default=0, help_text="Dead animals removed at this check.")
+    surface_film = models.BooleanField(default=False, help_text="Surface film or mould seen.")
+    odour = models.CharField(max_length=10, choices=Odour.choices, blank=True)
+    clarity = models.CharField(max_length=10, choices=Clarity.choices, blank=True)
+    flags = models.JSONField(
+        default=dict, blank=True, editable=False,
+        help_text="Readings outside the care targets in force when the check was saved.",
+    )
+    corrective_action = models.TextField(blank=True, help_text="What was done about a flagged value.")
+    history = HistoricalRecords()
+
+    class Meta(Recorded.Meta):
+        constraints = [
+            models.CheckConstraint(
+                condition=Q(**{f"{p.key}__isnull": True}) | Q(**{f"{p.key}__gte": p.minimum, f"{p.key}__lte": p.maximum}),
+                name=f"check_{p.key}_physical_bounds",
+            )
+            for p in parameters.PARAMETERS
+        ]
+        indexes = [
+            # The round's "last value" subqueries and the tank page's recent checks.
+            models.Index(fields=["tank", "-observed_at"], name="check_tank_recent"),
+        ]
+
+    def __str__(self):
+        return f"Check of {self.tank} at {timezone.localtime(self.observed_at):%Y-%m-%d %H:%M}"
+
+    def get_absolute_url(self):
+        return reverse("colonies:check-detail", args=[self.pk])
+
+    def readings(self) -> dict[str, float | None]:
+        return {p.key: getattr(self, p.key) for p in parameters.PARAMETERS}
+
+    @property
+    def needs_corrective_action(self) -> bool:
+        return bool(self.flags) and not self.corrective_action.strip()
+
+
+class Feeding(Recorded):
+    class Unit(models.TextChoices):
+        G = "g", "g"
+        MG = "mg", "mg"
+        ML = "mL", "mL"
+        PINCH = "pinch", "pinch"
+
+    food = models.CharField(max_length=80, help_text="e.g. sinking fish-food pellets, liver paste, spirulina.")
+    amount = models.FloatField(validators=[MinValueValidator(0)])
+    unit = models.CharField(max_length=8, choices=Unit.choices, default=Unit.G)
+    history = HistoricalRecords()
+
+    class Meta(Recorded.Meta):
+        constraints = [models.CheckConstraint(condition=Q(amount__gte=0), name="feeding_amount_not_negative")]
+
+    def __str__(self):
+        return f"Feeding of {self.tank}: {self.amount:g} {self.unit} {self.food}"
+
+    def get_absolute_url(self):
+        return self.tank.get_absolute_url()
+
+
+class WaterChange(Recorded):
+    percent = models.FloatField(null=True, blank=True, validators=[MinValueValidator(0), MaxValueValidator(100)])
+    litres = models.FloatField(null=True, blank=True, validators=[MinValueValidator(0)])
+    source_water = models.CharField(max_length=80, blank=True,
+                                    help_text="e.g. aged dechlorinated tap water, reconstituted salts, artificial seawater.")
+    history = HistoricalRecords()
+
+    class Meta(Recorded.Meta):
+        constraints = [
+            models.CheckConstraint(condition=Q(percent__isnull=False) | Q(litres__isnull=False),
+                                   name="water_change_has_amount"),
+            models.CheckConstraint(condition=Q(percent__isnull=True) | Q(percent__gte=0, percent__lte=100),
+                                   name="water_change_percent_0_100"),
+            models.CheckConstraint(condition=Q(litres__isnull=True) | Q(litres__gte=0),
+                                   name="water_change_litres_not_negative"),
+        ]
+
+    def __str__(self):
+        amount = f"{self.percent:g} %" if self.percent is not None else f"{self.litres:g} L"
+        return f"Water change of {self.tank}: {amount}"
+
+    def get_absolute_url(self):
+        return self.tank.get_absolute_url()
+
+    def fraction(self) -> float | None:
+        if self.percent is not None:
+            return self.percent / 100
+        if self.litres is not None and self.tank.volume_l:
+            return min(1.0, self.litres / self.tank.volume_l)
+        return None
+
+
+class Census(Recorded):
+    """A population count. Raw data are stored so the estimate can always be recomputed."""
+
+    class Method(models.TextChoices):
+        DIRECT = "direct", "Direct count"
+        ALIQUOT = "aliquot", "Aliquot counts"
+        MASS = "mass", "Wet mass and counted subsample"
+
+    method = models.CharField(max_length=10, choices=Method.choices, default=Method.DIRECT)
+    direct_count = models.PositiveIntegerField(null=True, blank=True)
+    aliquot_counts = models.JSONField(default=list, blank=True, help_text="Animals counted in each aliquot.")
+    aliquot_ml = models.FloatField(null=True, blank=True, help_text="Volume of each aliquot, mL.")
+    total_ml = models.FloatField(null=True, blank=True, help_text="Well-mixed volume the aliquots were drawn from, mL.")
+    total_mass_g = models.FloatField(null=True, blank=True, help_text="Wet mass of all animals, g.")
+    sample_mass_g = models.FloatField(null=True, blank=True, help_text="Wet mass of the counted subsample, g.")
+    sample_count = models.PositiveIntegerField(null=True, blank=True, help_text="Animals in the weighed subsample.")
+    estimate = models.FloatField(null=True, blank=True, editable=False)
+    estimate_lower = models.FloatField(null=True, blank=True, editable=False)
+    estimate_upper = models.FloatField(null=True, blank=True, editable=False)
+    estimate_method = models.CharField(max_length=200, blank=True, editable=False)
+    history = HistoricalRecords()
+
+    class Meta(Recorded.Meta):
+        verbose_name_plural = "censuses"
+        constraints = [
+            models.CheckConstraint(condition=Q(estimate__isnull=True) | Q(estimate__gte=0), name="census_estimate_not_negative"),
+        ]
+
+    def __str__(self):
+        value = f"{self.estimate:.0f}" if self.estimate is not None else "?"
+        return f"Census of {self.tank}: {value} animals"
+
+    def get_absolute_url(self):
+        return self.tank.get_absolute_url()

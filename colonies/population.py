@@ -1,0 +1,543 @@
+"""Population statistics for worm cultures: counts, census estimates, growth, mortality.
+
+Pure computation with no Django import, so it is testable without a database and usable
+from a notebook. Every function raises ValueError naming the argument, the value and the
+allowed range when it is given something impossible (negative animals, zero volume, ...).
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import integrate, optimize, stats
+
+__all__ = [
+    "Estimate",
+    "FitError",
+    "GrowthFit",
+    "SplitBalance",
+    "aliquot_estimate",
+    "animal_days",
+    "direct_count_estimate",
+    "fit_growth",
+    "gravimetric_estimate",
+    "mortality_rate_per_1000_animal_days",
+    "poisson_interval",
+    "split_balance",
+]
+
+MODELS = ("exponential", "logistic")
+
+# Relative slack when comparing sums of float volumes, so that 3 x 0.1 mL "equals" 0.3 mL.
+_VOLUME_RTOL = 1e-9
+
+
+class FitError(ValueError):
+    """A growth curve could not be fitted to otherwise valid data (no convergence, or
+    parameters the data cannot determine). A ValueError so one except clause catches both."""
+
+
+# ---------------------------------------------------------------------------
+# Input checks
+
+
+def _check_count(name: str, value: object) -> int:
+    # bool is an Integral in Python; True animals is a bug, not a count.
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise ValueError(f"{name} must be a whole number of animals (>= 0), got {value!r}")
+    if value < 0:
+        raise ValueError(f"{name} must be >= 0 animals, got {value}")
+    return int(value)
+
+
+def _check_finite(name: str, value: object) -> float:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real):
+        raise ValueError(f"{name} must be a finite number, got {value!r}")
+    x = float(value)
+    if not math.isfinite(x):
+        raise ValueError(f"{name} must be a finite number, got {value!r}")
+    return x
+
+
+def _check_positive(name: str, value: object, unit: str) -> float:
+    x = _check_finite(name, value)
+    if x <= 0:
+        raise ValueError(f"{name} must be > 0 {unit}, got {value}")
+    return x
+
+
+def _check_confidence(confidence: object) -> float:
+    c = _check_finite("confidence", confidence)
+    if not 0 < c < 1:
+        raise ValueError(f"confidence must be between 0 and 1 (exclusive), got {confidence}")
+    return c
+
+
+# ---------------------------------------------------------------------------
+# Counts and census estimates
+
+
+@dataclass(frozen=True)
+class Estimate:
+    """A population size with its interval and a sentence saying how it was obtained.
+
+    `n` is the number of aliquots or subsamples counted (1 for a single count),
+    `counted` the animals actually counted, `variance_to_mean` the between-aliquot
+    index of dispersion (None when it cannot be computed: one aliquot, or all zero).
+    """
+
+    value: float
+    lower: float
+    upper: float
+    confidence: float
+    method: str
+    variance_to_mean: float | None = None
+    n: int = 1
+    counted: int | None = None
+
+
+def poisson_interval(count: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Exact (Garwood 1936) two-sided interval for a Poisson mean given one observed count.
+
+    lower = chi2(alpha/2; 2k) / 2 and upper = chi2(1 - alpha/2; 2k + 2) / 2, the same as
+    R's poisson.test. The lower bound is 0 for k = 0 (chi2 with 0 degrees of freedom).
+    """
+    k = _check_count("count", count)
+    c = _check_confidence(confidence)
+    alpha = 1.0 - c
+    lower = 0.0 if k == 0 else float(stats.chi2.ppf(alpha / 2, 2 * k)) / 2
+    upper = float(stats.chi2.ppf(1 - alpha / 2, 2 * k + 2)) / 2
+    return lower, upper
+
+
+def _pct(fraction: float) -> str:
+    return f"{fraction * 100:.3g} %"
+
+
+def aliquot_estimate(
+    counts: Sequence[int], aliquot_ml: float, total_ml: float, confidence: float = 0.95
+) -> Estimate:
+    """Animals in a well-mixed volume from counts of equal aliquots taken from it.
+
+    Point estimate: summed count / sampled fraction (fraction = n x aliquot_ml / total_ml).
+
+    Interval: the exact Poisson (Garwood) interval on the summed count, scaled by the
+    sampled fraction. Worms clump, so with two or more aliquots the variance-to-mean ratio
+    (sample variance, n - 1) is checked; when it exceeds 1 a Student t interval on the
+    aliquot mean (t with n - 1 degrees of freedom, scaled by total_ml / aliquot_ml) is also
+    computed and whichever interval is wider is reported. We use the t interval rather than
+    stretching the Poisson interval by sqrt(variance/mean) because with the usual 2-5
+    aliquots the dispersion itself is very uncertain: the t quantile (12.7 for 2 aliquots at
+    95 %) pays for that uncertainty, a normal-quantile quasi-Poisson interval would not.
+
+    The lower bound is never below the animals actually counted: they were in the volume.
+    The Poisson model ignores that aliquots are drawn without replacement, so the interval is
+    conservative (too wide) when a large part of the volume is counted; when the aliquots
+    cover the whole volume the count is a census and the estimate is exact.
+    """
+    if len(counts) == 0:
+        raise ValueError("counts must hold at least one aliquot count, got an empty list")
+    ks = [_check_count(f"counts[{i}]", k) for i, k in enumerate(counts)]
+    a = _check_positive("aliquot_ml", aliquot_ml, "mL")
+    v = _check_positive("total_ml", total_ml, "mL")
+    c = _check_confidence(confidence)
+
+    n = len(ks)
+    sampled = n * a
+    if sampled > v * (1 + _VOLUME_RTOL):
+        raise ValueError(
+            f"aliquots total {n} x {aliquot_ml} mL = {sampled:g} mL, more than "
+            f"total_ml = {total_ml} mL; the aliquots must fit in the volume"
+        )
+    total = sum(ks)
+    mean = total / n
+    vmr = float(np.var(ks, ddof=1)) / mean if n >= 2 and mean > 0 else None
+
+    if math.isclose(sampled, v, rel_tol=_VOLUME_RTOL):
+        # Every millilitre was counted: nothing left to estimate.
+        return Estimate(
+            value=float(total), lower=float(total), upper=float(total), confidence=c,
+            method=f"Census: {n} aliquots covered the whole volume; {total} animals counted.",
+            variance_to_mean=vmr, n=n, counted=total,
+        )
+
+    fraction = sampled / v
+    value = total / fraction
+    lo, hi = poisson_interval(total, c)
+    p_lower, p_upper = max(lo / fraction, float(total)), hi / fraction
+    method = (
+        f"Exact Poisson (Garwood) interval on {total} animals counted in {n} "
+        f"aliquot{'s' if n != 1 else ''} ({_pct(fraction)} of the volume), scaled to the whole volume."
+    )
+    lower, upper = p_lower, p_upper
+
+    if vmr is not None and vmr > 1:
+        # Clumped counts: the spread between aliquots is larger than Poisson allows.
+        scale = v / a
+        half = float(stats.t.ppf(0.5 + c / 2, n - 1)) * math.sqrt(vmr * mean / n)
+        t_lower, t_upper = max((mean - half) * scale, float(total)), (mean + half) * scale
+        if t_upper - t_lower > p_upper - p_lower:
+            lower, upper = t_lower, t_upper
+            method = (
+                f"Student t interval on the mean of {n} aliquots ({total} animals counted, "
+                f"{_pct(fraction)} of the volume), scaled to the whole volume; used because the "
+                f"counts are clumped (variance/mean {vmr:.3g}) and it is wider than the exact "
+                f"Poisson interval."
+            )
+        else:
+            method = method[:-1] + (
+                f"; kept because it is wider than the t interval despite variance/mean {vmr:.3g}."
+            )
+
+    return Estimate(
+        value=value, lower=lower, upper=upper, confidence=c, method=method,
+        variance_to_mean=vmr, n=n, counted=total,
+    )
+
+
+def direct_count_estimate(count: int) -> Estimate:
+    """Every animal counted: the estimate is the count, with a zero-width interval."""
+    k = _check_count("count", count)
+    return Estimate(
+        value=float(k), lower=float(k), upper=float(k), confidence=1.0,
+        method=f"Direct count of every animal ({k}); exact.", n=1, counted=k,
+    )
+
+
+def gravimetric_estimate(
+    total_mass_g: float, sample_mass_g: float, sample_count: int, confidence: float = 0.95
+) -> Estimate:
+    """Animals in a weighed mass from a counted, weighed subsample: N = total x count / sample.
+
+    Interval: the exact Poisson (Garwood) interval on the subsample count, scaled by
+    total_mass_g / sample_mass_g. It covers the counting error only; weighing error and
+    variation in worm size between subsample and bulk are not included. The lower bound is
+    never below the animals counted in the subsample.
+    """
+    total = _check_positive("total_mass_g", total_mass_g, "g")
+    sample = _check_positive("sample_mass_g", sample_mass_g, "g")
+    k = _check_count("sample_count", sample_count)
+    c = _check_confidence(confidence)
+    if k < 1:
+        raise ValueError(
+            f"sample_count must be >= 1 animal, got {sample_count}; "
+            "an empty subsample gives no animals per gram"
+        )
+    if sample > total * (1 + _VOLUME_RTOL):
+        raise ValueError(
+            f"sample_mass_g must be <= total_mass_g = {total_mass_g} g, got {sample_mass_g} g"
+        )
+    scale = total / sample
+    lo, hi = poisson_interval(k, c)
+    return Estimate(
+        value=k * scale, lower=max(lo * scale, float(k)), upper=hi * scale, confidence=c,
+        method=(
+            f"Weighed subsample: {k} animals in {sample_mass_g:g} g of {total_mass_g:g} g; "
+            "exact Poisson (Garwood) interval on the subsample count, scaled by total/sample "
+            "mass (weighing error and worm-size variation not included)."
+        ),
+        n=1, counted=k,
+    )
+
+
+# ---------------------------------------------------------------------------
+# Growth
+
+
+def _exponential(t: np.ndarray | float, n0: float, r: float) -> np.ndarray | float:
+    return n0 * np.exp(r * t)
+
+
+def _logistic(t: np.ndarray | float, k: float, n0: float, r: float) -> np.ndarray | float:
+    # N(t) = K / (1 + ((K - N0) / N0) exp(-r t)); an overflowing exp means N -> 0, which is right.
+    with np.errstate(over="ignore"):
+        return k / (1 + (k / n0 - 1) * np.exp(-r * t))
+
+
+def _doubling(rate: float) -> float | None:
+    return math.log(2) / rate if rate > 0 else None
+
+
+def _doubling_ci(rate_ci: tuple[float, float]) -> tuple[float, float] | None:
+    lo, hi = rate_ci
+    if hi <= 0:
+        return None
+    # A rate interval reaching down to zero or below means the doubling time is unbounded.
+    return (math.log(2) / hi, math.log(2) / lo if lo > 0 else math.inf)
+
+
+@dataclass(frozen=True)
+class GrowthFit:
+    """A fitted growth curve; day 0 is day 0 of the `days` given to fit_growth.
+
+    For the logistic model `rate_per_day` and the doubling time are the low-density
+    (intrinsic) values. `r_squared` and `residual_se` are on the scale that was fitted:
+    ln(count) for the exponential model, count for the logistic model.
+    """
+
+    model: str
+    rate_per_day: float
+    rate_ci: tuple[float, float]
+    initial: float
+    initial_ci: tuple[float, float]
+    doubling_time_days: float | None
+    doubling_time_ci: tuple[float, float] | None
+    carrying_capacity: float | None
+    carrying_capacity_ci: tuple[float, float] | None
+    n_points: int
+    r_squared: float
+    residual_se: float
+    confidence: float
+
+    def predict(self, day: float) -> float:
+        t = _check_finite("day", day)
+        if self.model == "exponential":
+            return float(_exponential(t, self.initial, self.rate_per_day))
+        assert self.carrying_capacity is not None
+        return float(_logistic(t, self.carrying_capacity, self.initial, self.rate_per_day))
+
+    def day_reaching(self, size: float) -> float | None:
+        """The day the fitted curve rises through `size` (before day 0 if it already had).
+
+        None when the curve never grows to `size`: a rate of zero or below, a logistic
+        curve starting at or above its carrying capacity, or `size` at or above it.
+        """
+        s = _check_positive("size", size, "animals")
+        r, n0 = self.rate_per_day, self.initial
+        if r <= 0:
+            return None
+        if self.model == "exponential":
+            return math.log(s / n0) / r
+        k = self.carrying_capacity
+        assert k is not None
+        if n0 >= k or s >= k:
+            return None
+        return -math.log((k / s - 1) / (k / n0 - 1)) / r
+
+
+def _check_series(
+    days: Sequence[float], counts: Sequence[float], model: str
+) -> tuple[np.ndarray, np.ndarray]:
+    if model not in MODELS:
+        raise ValueError(f"model must be one of {', '.join(MODELS)}, got {model!r}")
+    if len(days) != len(counts):
+        raise ValueError(
+            f"days and counts must have the same length, got {len(days)} days and {len(counts)} counts"
+        )
+    minimum = 3 if model == "exponential" else 4
+    if len(days) < minimum:
+        raise ValueError(
+            f"a {model} fit needs at least {minimum} points, got {len(days)}"
+        )
+    t = np.array([_check_finite(f"days[{i}]", d) for i, d in enumerate(days)])
+    y = np.array([_check_finite(f"counts[{i}]", c) for i, c in enumerate(counts)])
+    for i, c in enumerate(y):
+        if c < 0:
+            raise ValueError(f"counts[{i}] must be >= 0 animals, got {counts[i]}")
+        if model == "exponential" and c == 0:
+            # ln(0) is undefined; a culture that hit zero is not growing exponentially.
+            raise ValueError(
+                f"counts[{i}] must be > 0 for an exponential fit (it is fitted on ln counts), got {counts[i]}"
+            )
+    distinct = 2 if model == "exponential" else 3
+    if len(np.unique(t)) < distinct:
+        raise ValueError(
+            f"days must hold at least {distinct} different days for a {model} fit, "
+            f"got {sorted(set(t.tolist()))}"
+        )
+    if model == "logistic" and not np.any(y > 0):
+        raise ValueError("counts must include at least one count > 0 for a logistic fit, got all zeros")
+    return t, y
+
+
+def fit_growth(
+    days: Sequence[float], counts: Sequence[float], model: str = "exponential", confidence: float = 0.95
+) -> GrowthFit:
+    """Fit an exponential or logistic growth curve to census counts.
+
+    Exponential: least squares of ln(count) on day (multiplicative, roughly constant relative
+    counting error); rate and ln N0 intervals from their standard errors and t(n - 2).
+    Logistic: nonlinear least squares on counts, N(t) = K / (1 + ((K - N0)/N0) exp(-r t)),
+    intervals from the residual-scaled covariance matrix and t(n - 3). Both are Wald
+    intervals: approximate, and optimistic when the data barely determine a parameter.
+    Raises FitError (a ValueError) when the logistic fit fails or K cannot be determined,
+    typically because the counts have not started to level off.
+    """
+    c = _check_confidence(confidence)
+    t, y = _check_series(days, counts, model)
+    n = len(t)
+
+    if model == "exponential":
+        fit = stats.linregress(t, np.log(y))
+        q = float(stats.t.ppf(0.5 + c / 2, n - 2))
+        rate, ln_n0 = float(fit.slope), float(fit.intercept)
+        rate_ci = (rate - q * float(fit.stderr), rate + q * float(fit.stderr))
+        residuals = np.log(y) - (ln_n0 + rate * t)
+        return GrowthFit(
+            model=model, rate_per_day=rate, rate_ci=rate_ci, initial=math.exp(ln_n0),
+            initial_ci=(
+                math.exp(ln_n0 - q * float(fit.intercept_stderr)),
+                math.exp(ln_n0 + q * float(fit.intercept_stderr)),
+            ),
+            doubling_time_days=_doubling(rate), doubling_time_ci=_doubling_ci(rate_ci),
+            carrying_capacity=None, carrying_capacity_ci=None, n_points=n,
+            r_squared=float(fit.rvalue**2),
+            residual_se=math.sqrt(float(residuals @ residuals) / (n - 2)), confidence=c,
+        )
+
+    k, n0, rate = _fit_logistic(t, y)
+    residuals = y - _logistic(t, k, n0, rate)
+    sse = float(residuals @ residuals)
+    se_k, se_n0, se_r = _logistic_standard_errors(t, (k, n0, rate), sse / (n - 3))
+    q = float(stats.t.ppf(0.5 + c / 2, n - 3))
+    rate_ci = (rate - q * se_r, rate + q * se_r)
+    sst = float(((y - y.mean()) ** 2).sum())
+    return GrowthFit(
+        model=model, rate_per_day=rate, rate_ci=rate_ci, initial=n0,
+        initial_ci=(n0 - q * se_n0, n0 + q * se_n0),
+        doubling_time_days=_doubling(rate), doubling_time_ci=_doubling_ci(rate_ci),
+        carrying_capacity=k, carrying_capacity_ci=(k - q * se_k, k + q * se_k), n_points=n,
+        r_squared=1 - sse / sst if sst > 0 else 1.0,
+        residual_se=math.sqrt(sse / (n - 3)), confidence=c,
+    )
+
+
+def _logistic_standard_errors(
+    t: np.ndarray, params: tuple[float, float, float], s2: float
+) -> tuple[float, float, float]:
+    # Covariance s^2 (J'J)^-1 from the analytic Jacobian. curve_fit's own covariance uses a
+    # truncated pseudo-inverse, which reports a zero-width interval for a carrying capacity the
+    # data cannot determine (counts still rising); a plain inverse reports it as huge instead.
+    k, n0, r = params
+    with np.errstate(over="ignore", invalid="ignore"):
+        e = np.exp(-r * t)
+        d = 1 + (k / n0 - 1) * e
+        jac = np.column_stack((
+            1 / d - k * e / (n0 * d**2),                 # dN/dK
+            k**2 * e / (n0**2 * d**2),                   # dN/dN0
+            k * (k / n0 - 1) * t * e / d**2,             # dN/dr
+        ))
+    # Scale columns by the parameters so J'J is not ill-conditioned by units alone.
+    scale = np.array([abs(p) if p != 0 else 1.0 for p in params])
+    js = jac * scale
+    try:
+        inv = np.linalg.inv(js.T @ js)
+    except np.linalg.LinAlgError:
+        inv = np.full((3, 3), np.inf)
+    se = np.sqrt(np.abs(np.diag(inv)) * s2) * scale
+    if not np.all(np.isfinite(se)):
+        raise FitError(
+            "the logistic fit cannot determine its parameters from these counts "
+            "(have they started to level off?); try model='exponential'"
+        )
+    return float(se[0]), float(se[1]), float(se[2])
+
+
+def _fit_logistic(t: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
+    # Starting values from the logit transform ln(N / (K - N)) = ln(N0 / (K - N0)) + r t for a
+    # few guesses of K above the largest count; keep the best converged fit.
+    top = float(y.max())
+    best: tuple[float, np.ndarray] | None = None
+    for k0 in (1.05 * top, 1.5 * top, 3 * top):
+        pos = y > 0
+        r0, n00 = 0.1, float(y[pos][np.argmin(t[pos])])
+        if np.count_nonzero(pos) >= 2 and len(np.unique(t[pos])) >= 2:
+            line = stats.linregress(t[pos], np.log(y[pos] / (k0 - y[pos])))
+            if math.isfinite(line.slope) and math.isfinite(line.intercept):
+                r0 = float(line.slope)
+                n00 = k0 / (1 + math.exp(-line.intercept))
+        try:
+            with warnings.catch_warnings():
+                # We compute the covariance ourselves; curve_fit's warning about it is moot.
+                warnings.simplefilter("ignore", optimize.OptimizeWarning)
+                params, _ = optimize.curve_fit(
+                    _logistic, t, y, p0=(k0, n00, r0),
+                    bounds=([top * 1e-9, top * 1e-12, -np.inf], [np.inf, np.inf, np.inf]),
+                    x_scale="jac", max_nfev=10_000,
+                )
+        except (RuntimeError, ValueError):
+            continue
+        sse = float(((y - _logistic(t, *params)) ** 2).sum())
+        if best is None or sse < best[0]:
+            best = (sse, params)
+    if best is None:
+        raise FitError("the logistic fit did not converge for these counts; try model='exponential'")
+    k, n0, r = (float(p) for p in best[1])
+    return k, n0, r
+
+
+# ---------------------------------------------------------------------------
+# Mortality and bookkeeping
+
+
+def mortality_rate_per_1000_animal_days(deaths: int, animal_days: float) -> float:
+    """Deaths per 1000 animal-days of exposure (a rate, so cultures of any size compare)."""
+    d = _check_count("deaths", deaths)
+    exposure = _check_positive("animal_days", animal_days, "animal-days")
+    return 1000.0 * d / exposure
+
+
+def animal_days(estimates: Sequence[tuple[float, float]], start_day: float, end_day: float) -> float:
+    """Animal-days between start_day and end_day from dated population estimates (day, N).
+
+    The population is taken to change linearly between estimates (trapezoid rule) and to be
+    held constant at the first estimate before it and at the last estimate after it: with no
+    census outside the observed span, carrying the nearest one forward or back is the
+    least-assuming choice.
+    """
+    if len(estimates) == 0:
+        raise ValueError("estimates must hold at least one (day, N) pair, got an empty list")
+    start = _check_finite("start_day", start_day)
+    end = _check_finite("end_day", end_day)
+    if end < start:
+        raise ValueError(f"end_day must be >= start_day = {start_day}, got {end_day}")
+    points: dict[float, float] = {}
+    for i, pair in enumerate(estimates):
+        if len(pair) != 2:
+            raise ValueError(f"estimates[{i}] must be a (day, N) pair, got {pair!r}")
+        day = _check_finite(f"estimates[{i}] day", pair[0])
+        size = _check_finite(f"estimates[{i}] N", pair[1])
+        if size < 0:
+            raise ValueError(f"estimates[{i}] N must be >= 0 animals, got {pair[1]}")
+        if day in points:
+            raise ValueError(f"estimates has two population values for day {pair[0]}; keep one")
+        points[day] = size
+    known = sorted(points)
+    xp = np.array(known)
+    fp = np.array([points[d] for d in known])
+    # Integrate exactly: the curve is piecewise linear, so knots at every estimate inside the
+    # span plus the ends make the trapezoid rule exact. np.interp holds the end values constant.
+    grid = np.unique(np.concatenate(([start, end], xp[(xp > start) & (xp < end)])))
+    return float(integrate.trapezoid(np.interp(grid, xp, fp), grid))
+
+
+@dataclass(frozen=True)
+class SplitBalance:
+    """Do the books balance for a culture split? difference = parts_total - source_before
+    (positive: more animals in the parts than the source had)."""
+
+    source_before: float
+    parts_total: float
+    difference: float
+    relative_difference: float
+
+
+def split_balance(source_before: float, parts: Sequence[float]) -> SplitBalance:
+    source = _check_positive("source_before", source_before, "animals")
+    if len(parts) == 0:
+        raise ValueError("parts must hold at least one part, got an empty list")
+    sizes = [_check_finite(f"parts[{i}]", p) for i, p in enumerate(parts)]
+    for i, p in enumerate(sizes):
+        if p < 0:
+            raise ValueError(f"parts[{i}] must be >= 0 animals, got {parts[i]}")
+    total = math.fsum(sizes)
+    difference = total - source
+    return SplitBalance(
+        source_before=source, parts_total=total, difference=difference,
+        relative_difference=difference / source,
+    )

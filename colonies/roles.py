@@ -1,0 +1,71 @@
+"""Roles are Django groups. Checks live here and in view decorators, never only in templates.
+
+- technician: records husbandry (checks, feedings, water changes, censuses, the round).
+- researcher: reads husbandry; books animals and logs trials (experiments app).
+- manager: everything, including care profiles and the audit pages.
+A superuser counts as a manager.
+"""
+from functools import wraps
+
+from django.core.exceptions import PermissionDenied
+
+TECHNICIAN = "technician"
+RESEARCHER = "researcher"
+MANAGER = "manager"
+ALL_ROLES = (TECHNICIAN, RESEARCHER, MANAGER)
+
+
+def roles_of(user) -> frozenset[str]:
+    """The user's roles; cached on the user object so a page asks the database once."""
+    if not user.is_authenticated:
+        return frozenset()
+    cached = getattr(user, "_vermilog_roles", None)
+    if cached is None:
+        names = set(user.groups.filter(name__in=ALL_ROLES).values_list("name", flat=True))
+        if user.is_superuser:
+            names.add(MANAGER)
+        cached = frozenset(names)
+        user._vermilog_roles = cached
+    return cached
+
+
+def has_role(user, *roles: str) -> bool:
+    """Managers pass every role check."""
+    mine = roles_of(user)
+    return MANAGER in mine or any(r in mine for r in roles)
+
+
+def can_record_husbandry(user) -> bool:
+    return has_role(user, TECHNICIAN)
+
+
+def can_read_husbandry(user) -> bool:
+    return has_role(user, TECHNICIAN, RESEARCHER)
+
+
+def role_required(*roles: str):
+    """View decorator: 403 unless the user holds one of the roles (managers always pass).
+
+    Login itself is enforced for every view by LoginRequiredMiddleware.
+    """
+    def decorator(view):
+        @wraps(view)
+        def wrapped(request, *args, **kwargs):
+            if not has_role(request.user, *roles):
+                raise PermissionDenied("Your role does not allow this page.")
+            return view(request, *args, **kwargs)
+        return wrapped
+    return decorator
+
+
+def roles_context(request):
+    user = getattr(request, "user", None)
+    if user is None or not user.is_authenticated:
+        return {}
+    mine = roles_of(user)
+    return {
+        "roles": mine,
+        "can_record": can_record_husbandry(user),
+        "can_read": can_read_husbandry(user),
+        "is_manager": MANAGER in mine,
+    }

@@ -1,0 +1,377 @@
+import csv
+
+from django.contrib import messages
+from django.core.exceptions import PermissionDenied
+from django.db import transaction
+from django.db.models import Count, Q
+from django.http import Http404, HttpResponse, StreamingHttpResponse
+from django.shortcuts import get_object_or_404, redirect, render
+from django.utils import timezone
+from django.views.decorators.http import require_GET, require_http_methods, require_POST
+
+from . import parameters, services
+from .filters import CheckFilter, TankFilter
+from .flags import describe, out_of_target
+from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
+                    SpeciesForm, WaterChangeForm)
+from .history import record_history
+from .models import Census, Check, Feeding, Room, Species, Tank, WaterChange
+from .roles import MANAGER, RESEARCHER, TECHNICIAN, can_record_husbandry, role_required
+
+READ_ROLES = (TECHNICIAN, RESEARCHER)
+VOIDABLE = {"check": Check, "feeding": Feeding, "water-change": WaterChange, "census": Census}
+
+
+def _get_tank(code: str) -> Tank:
+    return get_object_or_404(Tank.objects.select_related("room", "species"), code=code)
+
+
+# ---------------------------------------------------------------------------------------------
+# Overview
+# ---------------------------------------------------------------------------------------------
+@require_GET
+@role_required(*READ_ROLES)
+def home(request):
+    now = timezone.now()
+    tanks = list(Tank.objects.for_round())
+    rooms = {}
+    for tank in tanks:
+        entry = rooms.setdefault(tank.room_id, {"room": tank.room, "tanks": 0, "due": {}, "checked_today": 0})
+        entry["tanks"] += 1
+        for item in tank.due(now):
+            if item["is_due"]:
+                entry["due"][item["label"]] = entry["due"].get(item["label"], 0) + 1
+        if tank.last_check_at and timezone.localtime(tank.last_check_at).date() == timezone.localdate():
+            entry["checked_today"] += 1
+    week_ago = now - timezone.timedelta(days=7)
+    pending = (
+        Check.objects.current().filter(observed_at__gte=week_ago).exclude(flags={})
+        .filter(corrective_action="").select_related("tank").order_by("-observed_at")[:20]
+    )
+    ctx = {"rooms": list(rooms.values()), "pending": pending, "now": now}
+    return render(request, "colonies/home.html", ctx)
+
+
+# ---------------------------------------------------------------------------------------------
+# The daily round
+# ---------------------------------------------------------------------------------------------
+ROUND_FIELDS = frozenset(parameters.KEYS) | frozenset(services.OBSERVATION_FIELDS)
+
+
+def _posted_codes(post) -> set[str]:
+    """Every tank code the submitted round refers to: the listed codes and any field's prefix."""
+    codes = {c.strip() for c in post.get("tanks", "").split(",") if c.strip()}
+    for key in post:
+        prefix, _, field = key.rpartition("-")
+        if prefix and field in ROUND_FIELDS:
+            codes.add(prefix)
+    return codes
+
+
+@require_http_methods(["GET", "POST"])
+@role_required(*READ_ROLES)
+def round_view(request, room_code=None):
+    room = get_object_or_404(Room, code=room_code) if room_code else None
+    tanks = list(Tank.objects.for_round().in_room(room))
+    data = None
+    unknown = []
+    if request.method == "POST":
+        if not can_record_husbandry(request.user):
+            raise PermissionDenied("Only technicians and managers record the round.")
+        data = request.POST
+        by_code = {t.code: t for t in tanks}
+        unknown = sorted(_posted_codes(data) - set(by_code))
+    forms = [CheckEntryForm(data, tank=t, prefix=t.code) for t in tanks]
+    when = ObservedAtForm(data, prefix="round")
+    if request.method == "POST":
+        valid = when.is_valid() & all([f.is_valid() for f in forms])
+        if valid and not unknown:
+            rows = [(f.tank, f.row()) for f in forms if f.has_entry()]
+            saved = services.record_round(user=request.user, rows=rows, observed_at=when.cleaned_data.get("observed_at"))
+            flagged = sum(1 for c in saved if c.flags)
+            missing_action = sum(1 for c in saved if c.needs_corrective_action)
+            msg = f"Saved {len(saved)} check{'s' if len(saved) != 1 else ''}; {flagged} with flagged values."
+            if missing_action:
+                msg += f" {missing_action} still need a corrective-action note."
+                messages.warning(request, msg)
+            else:
+                messages.success(request, msg)
+            return redirect(request.path)
+        for code in unknown:
+            messages.error(request, f"Tank code '{code}' does not exist or is retired; nothing was saved.")
+        messages.error(request, "Nothing was saved. Correct the fields marked below and save again.")
+    ctx = {
+        "room": room, "rooms": Room.objects.all(), "rows": _round_rows(forms), "when": when,
+        "tank_codes": ",".join(t.code for t in tanks),
+    }
+    return render(request, "colonies/round.html", ctx, status=400 if request.method == "POST" else 200)
+
+
+def _round_rows(forms):
+    rows = []
+    for form in forms:
+        tank = form.tank
+        live_flags = form.flagged()
+        cells = []
+        for p in form.params:
+            last = getattr(tank, f"last_{p.key}", None)
+            target = form.targets.get(p.key)
+            last_side = out_of_target(last, target)
+            cells.append({"field": form[p.key], "param": p, "last": p.format(last), "last_side": last_side,
+                          "target": target.text(p.unit) if target else "", "side": live_flags.get(p.key)})
+        rows.append({"form": form, "tank": tank, "cells": cells, "flagged": bool(live_flags)})
+    return rows
+
+
+# ---------------------------------------------------------------------------------------------
+# Tanks
+# ---------------------------------------------------------------------------------------------
+@require_GET
+@role_required(*READ_ROLES)
+def tank_list(request):
+    tank_filter = TankFilter(request.GET, queryset=Tank.objects.select_related("room", "species").with_last_events())
+    return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tank_filter.qs})
+
+
+def _tank_page_ctx(request, tank, **forms):
+    tank_with = Tank.objects.for_round().filter(pk=tank.pk).first() or tank
+    checks = list(tank.check_set.current().select_related("recorded_by")[:30])
+    params = tank.relevant_parameters()
+    targets = tank.care_targets()
+    rows = []
+    for c in checks:
+        rows.append({"check": c, "cells": [{"param": p, "value": p.format(getattr(c, p.key)), "side": (c.flags.get(p.key) or {}).get("side")}
+                                           for p in params],
+                     "flag_text": [describe(k, v) for k, v in c.flags.items() if k in parameters.BY_KEY]})
+    ctx = {
+        "tank": tank_with,
+        "due": tank_with.due() if hasattr(tank_with, "last_check_at") else [],
+        "params": params,
+        "targets": [(p, targets.get(p.key)) for p in params],
+        "rows": rows,
+        "feedings": tank.feeding_set.current().select_related("recorded_by")[:10],
+        "water_changes": tank.waterchange_set.current().select_related("recorded_by")[:10],
+        "censuses": tank.census_set.current().select_related("recorded_by")[:10],
+        "check_form": forms.get("check_form") or CheckEntryForm(tank=tank, prefix="check"),
+        "feeding_form": forms.get("feeding_form") or FeedingForm(prefix="feeding"),
+        "water_form": forms.get("water_form") or WaterChangeForm(prefix="water"),
+        "census_form": forms.get("census_form") or CensusForm(prefix="census"),
+        "parents": tank.founded_from.all(),
+        "offspring": tank.offspring.all(),
+    }
+    return ctx
+
+
+@require_GET
+@role_required(*READ_ROLES)
+def tank_detail(request, code):
+    tank = _get_tank(code)
+    return render(request, "colonies/tank_detail.html", _tank_page_ctx(request, tank))
+
+
+@require_POST
+@role_required(TECHNICIAN)
+def tank_add(request, code, kind):
+    tank = _get_tank(code)
+    if tank.status == Tank.Status.RETIRED:
+        messages.error(request, f"Tank {tank.code} is retired; records can no longer be added.")
+        return redirect(tank)
+    user = request.user
+    if kind == "check":
+        form = CheckEntryForm(request.POST, tank=tank, prefix="check")
+        if form.is_valid() and form.has_entry():
+            check = services.record_check(user=user, tank=tank, row=form.row())
+            _flash_check(request, check)
+            return redirect(tank)
+        if form.is_valid():
+            form.add_error(None, "Enter at least one reading or observation.")
+        forms = {"check_form": form}
+    elif kind == "feeding":
+        form = FeedingForm(request.POST, prefix="feeding", instance=Feeding(tank=tank, recorded_by=user))
+        if form.is_valid():
+            services.record_feeding(user=user, feeding=form.instance)
+            messages.success(request, f"Feeding of {tank.code} saved.")
+            return redirect(tank)
+        forms = {"feeding_form": form}
+    elif kind == "water-change":
+        form = WaterChangeForm(request.POST, prefix="water", instance=WaterChange(tank=tank, recorded_by=user))
+        if form.is_valid():
+            services.record_water_change(user=user, change=form.instance)
+            messages.success(request, f"Water change of {tank.code} saved.")
+            return redirect(tank)
+        forms = {"water_form": form}
+    elif kind == "census":
+        form = CensusForm(request.POST, prefix="census", instance=Census(tank=tank, recorded_by=user))
+        if form.is_valid():
+            census = services.record_census(user=user, census=form.instance)
+            messages.success(request, f"Census of {tank.code} saved: about {census.estimate:.0f} animals "
+                                      f"({census.estimate_lower:.0f}–{census.estimate_upper:.0f}).")
+            return redirect(tank)
+        forms = {"census_form": form}
+    else:
+        raise Http404("Unknown record type.")
+    messages.error(request, "Nothing was saved. Correct the fields marked below.")
+    return render(request, "colonies/tank_detail.html", _tank_page_ctx(request, tank, **forms), status=400)
+
+
+def _flash_check(request, check):
+    if check.flags:
+        text = "; ".join(describe(k, v) for k, v in check.flags.items())
+        level = messages.warning if check.needs_corrective_action else messages.info
+        level(request, f"Check of {check.tank.code} saved with flags: {text}."
+                       + (" Please add a corrective action." if check.needs_corrective_action else ""))
+    else:
+        messages.success(request, f"Check of {check.tank.code} saved; all readings within care targets.")
+
+
+@require_GET
+@role_required(*READ_ROLES)
+def tank_history(request, code):
+    tank = _get_tank(code)
+    return render(request, "colonies/history.html", {"tank": tank, "entries": record_history(tank)})
+
+
+# ---------------------------------------------------------------------------------------------
+# One check: view, correct, void
+# ---------------------------------------------------------------------------------------------
+@require_GET
+@role_required(*READ_ROLES)
+def check_detail(request, pk):
+    check = get_object_or_404(Check.objects.select_related("tank__species", "recorded_by", "voided_by"), pk=pk)
+    history = check.history.select_related("history_user").order_by("-history_date")
+    params = check.tank.relevant_parameters()
+    return render(request, "colonies/check_detail.html", {
+        "check": check, "history": _diffs(history, params), "params": params,
+        "flag_text": [describe(k, v) for k, v in check.flags.items() if k in parameters.BY_KEY],
+        "cells": [{"param": p, "value": p.format(getattr(check, p.key)),
+                   "side": (check.flags.get(p.key) or {}).get("side")} for p in params],
+    })
+
+
+def _diffs(history, params):
+    entries = list(history)
+    out = []
+    for i, h in enumerate(entries):
+        prev = entries[i + 1] if i + 1 < len(entries) else None
+        changes = []
+        if prev is not None:
+            delta = h.diff_against(prev)
+            changes = [(c.field, c.old, c.new) for c in delta.changes if c.field not in ("flags",)]
+        out.append({"h": h, "changes": changes})
+    return out
+
+
+@require_http_methods(["GET", "POST"])
+@role_required(TECHNICIAN)
+def check_edit(request, pk):
+    check = get_object_or_404(Check.objects.select_related("tank__species"), pk=pk)
+    if check.is_voided:
+        messages.error(request, "A voided check cannot be changed.")
+        return redirect(check)
+    tank = Tank.objects.prefetch_related("species__targets", "target_overrides").select_related("species").get(pk=check.tank_id)
+    check.tank = tank
+    initial = {p.key: p.format(getattr(check, p.key)) for p in tank.relevant_parameters()}
+    initial.update({f: getattr(check, f) for f in services.OBSERVATION_FIELDS})
+    form = CheckEntryForm(request.POST or None, tank=tank, prefix="check", initial=initial)
+    reason = ReasonForm(request.POST or None)
+    if request.method == "POST" and form.is_valid() & reason.is_valid():
+        services.update_check(user=request.user, check=check, row=form.row(), reason=reason.cleaned_data["reason"])
+        messages.success(request, f"Check corrected; the earlier values stay in its history.")
+        return redirect(check)
+    return render(request, "colonies/check_edit.html", {"check": check, "form": form, "reason": reason},
+                  status=400 if request.method == "POST" else 200)
+
+
+@require_http_methods(["GET", "POST"])
+@role_required(TECHNICIAN)
+def record_void(request, kind, pk):
+    model = VOIDABLE.get(kind)
+    if model is None:
+        raise Http404("Unknown record type.")
+    record = get_object_or_404(model.objects.select_related("tank"), pk=pk)
+    if record.is_voided:
+        messages.info(request, f"{record} is already voided.")
+        return redirect(record.tank)
+    form = ReasonForm(request.POST or None)
+    if request.method == "POST" and form.is_valid():
+        services.void_record(user=request.user, record=record, reason=form.cleaned_data["reason"])
+        messages.success(request, f"Voided: {record}. It stays in the tank's history.")
+        return redirect(record.tank)
+    return render(request, "colonies/void.html", {"record": record, "form": form, "kind": kind},
+                  status=400 if request.method == "POST" else 200)
+
+
+# ---------------------------------------------------------------------------------------------
+# Species care profiles
+# ---------------------------------------------------------------------------------------------
+@require_GET
+@role_required(*READ_ROLES)
+def species_list(request):
+    species = Species.objects.annotate(n_tanks=Count("tanks", filter=~Q(tanks__status=Tank.Status.RETIRED)))
+    return render(request, "colonies/species_list.html", {"species_list": species})
+
+
+@require_GET
+@role_required(*READ_ROLES)
+def species_detail(request, pk):
+    species = get_object_or_404(Species, pk=pk)
+    targets = {t.parameter: t for t in species.targets.all()}
+    rows = [(p, targets.get(p.key)) for p in species.relevant_parameters()]
+    return render(request, "colonies/species_detail.html", {"species": species, "rows": rows,
+                                                             "sources": sorted(species.sources.items())})
+
+
+@require_http_methods(["GET", "POST"])
+@role_required(MANAGER)
+def species_edit(request, pk):
+    species = get_object_or_404(Species, pk=pk)
+    form = SpeciesForm(request.POST or None, instance=species)
+    targets = CareTargetFormSet(request.POST or None, instance=species, prefix="targets")
+    reason = ReasonForm(request.POST or None)
+    if request.method == "POST" and form.is_valid() & targets.is_valid() & reason.is_valid():
+        why = reason.cleaned_data["reason"]
+        with transaction.atomic():
+            species._change_reason = why
+            form.save()
+            for target in targets.save(commit=False):
+                target._change_reason = why
+                target.save()
+        messages.success(request, f"Care profile of {species} updated.")
+        return redirect(species)
+    return render(request, "colonies/species_edit.html", {"species": species, "form": form, "targets": targets,
+                                                           "reason": reason},
+                  status=400 if request.method == "POST" else 200)
+
+
+# ---------------------------------------------------------------------------------------------
+# Export
+# ---------------------------------------------------------------------------------------------
+class _Echo:
+    def write(self, value):
+        return value
+
+
+@require_GET
+@role_required(*READ_ROLES)
+def checks_csv(request):
+    """All checks matching the filter, one row each; columns come from the parameter registry."""
+    check_filter = CheckFilter(request.GET, queryset=Check.objects.select_related("tank__room", "recorded_by"))
+    qs = check_filter.qs.order_by("observed_at", "pk")
+    header = ["check_id", "tank", "room", "observed_at_utc", "recorded_at_utc", "recorded_by"]
+    header += [f"{p.key} [{p.unit}]" if p.unit else p.key for p in parameters.PARAMETERS]
+    header += ["activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "flagged",
+               "corrective_action", "note", "voided", "void_reason"]
+
+    def rows():
+        yield header
+        for c in qs.iterator(chunk_size=2000):
+            yield [c.pk, c.tank.code, c.tank.room.code, c.observed_at.isoformat(), c.recorded_at.isoformat(),
+                   c.recorded_by.get_username()] + [
+                "" if getattr(c, p.key) is None else getattr(c, p.key) for p in parameters.PARAMETERS
+            ] + [c.activity, int(c.clumping), c.dead_removed, int(c.surface_film), c.odour, c.clarity,
+                 " ".join(sorted(c.flags)), c.corrective_action, c.note, int(c.is_voided), c.void_reason]
+
+    writer = csv.writer(_Echo())
+    response = StreamingHttpResponse((writer.writerow(r) for r in rows()), content_type="text/csv; charset=utf-8")
+    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
+    return response

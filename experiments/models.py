@@ -1,0 +1,1 @@
+"""Protocols, bookings, cohorts and aggregation trials live here (see the trials issue)."""
