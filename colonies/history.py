@@ -19,10 +19,18 @@ def _entries_for(history_qs, label):
             if prev is not None:
                 changes = [(c.field, c.old, c.new) for c in h.diff_against(prev).changes if c.field not in FIELD_SKIP]
             out.append({"when": h.history_date, "who": h.history_user, "what": f"{label} #{h.id}",
-                        "action": "voided" if (h.voided_at and (prev is None or not prev.voided_at)) else TYPE_WORD.get(h.history_type, h.history_type),
+                        "action": _action(h, prev),
                         "reason": h.history_change_reason or "", "changes": changes, "object_id": h.id})
             prev = h
     return out
+
+
+def _action(h, prev) -> str:
+    voided_now = getattr(h, "voided_at", None) is not None
+    voided_before = prev is not None and getattr(prev, "voided_at", None) is not None
+    if voided_now and not voided_before:
+        return "voided"
+    return TYPE_WORD.get(h.history_type, h.history_type)
 
 
 def record_history(tank, limit: int = 300) -> list[dict]:
