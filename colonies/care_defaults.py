@@ -29,8 +29,8 @@ DEFAULT_PROFILES = [
             # (parameter, low, high, source)
             ("temp_c", 21.0, 25.0, f"{EU_2016_266}: cultures at 23 °C; the ±2 °C band is a lab setting"),
             ("ph", 6.0, 9.0, f"{OECD_225}: pH 6-9 (from memory; verify against the guideline)"),
-            ("do_mg_l", 2.6, None, f"{OECD_225}: DO not below 30 % of air saturation (from memory); "
-                                   "30 % of 8.6 mg/L at 23 °C (Benson & Krause 1984)"),
+            ("do_pct_sat", 30.0, None, f"{OECD_225}: dissolved oxygen not below 30 % of air saturation "
+                                       "(from memory; verify against the guideline)"),
             ("tan_mg_l", None, 1.9, f"{EPA_AMMONIA}; a conservative alarm level, not a worm LC50"),
         ],
         "sources": {

@@ -12,9 +12,11 @@ from django.db import transaction
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history
 
-from . import care_defaults
+from scipy.optimize import brentq
+
+from . import care_defaults, chemistry, deviations
 from .flags import flags_for
-from .models import CareTarget, Census, Check, Feeding, Room, Species, Tank, TankTarget, WaterChange
+from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Tank, TankTarget, WaterChange
 from .roles import MANAGER, RESEARCHER, TECHNICIAN
 from .services import apply_estimate
 
@@ -44,7 +46,7 @@ PROFILE = {
                                "conductivity_us_cm": (760, 30), "hardness_mg_l": (210, 8)},
     "Platynereis dumerilii": {"temp_c": (18.0, 0.35), "ph": (8.05, 0.07), "do_mg_l": (7.3, 0.3),
                               "tan_mg_l": (0.08, 0.04), "no2_mg_l": (0.02, 0.01), "no3_mg_l": (8.0, 2.0),
-                              "conductivity_us_cm": (46500, 900), "salinity": (30.0, 0.5)},
+                              "conductivity_us_cm": (40000, 800), "salinity": (30.0, 0.5)},
 }
 # Which parameters the technicians measure daily; the rest weekly (day % 7 == 0).
 DAILY = {"temp_c", "ph", "do_mg_l", "salinity"}
@@ -173,10 +175,13 @@ def load(seed: int = 7, today=None) -> dict:
             if exc:
                 key, value, action = exc
                 readings[key] = round(value, 2)
+            if "salinity" in readings and "conductivity_us_cm" in readings:
+                readings["conductivity_us_cm"] = round(
+                    _marine_conductivity_us_cm(readings["salinity"], readings["temp_c"]) * rng.gauss(1, 0.004))
             population = _logistic(day, n0, k, r)
             dead = 0
             if rng.random() < 0.12:
-                dead = rng.randint(1, 3 if population < 200 else 8)
+                dead = rng.randint(1, 2 if population < 200 else 4)
             if exc and exc[0] in ("temp_c", "do_mg_l", "tan_mg_l"):
                 dead += rng.randint(5, 25) if population > 200 else rng.randint(1, 4)
             check = Check(tank=tank, observed_at=when, recorded_by=rng.choice(techs), dead_removed=dead,
@@ -184,7 +189,7 @@ def load(seed: int = 7, today=None) -> dict:
                           clumping=sp.startswith("Lumb") and rng.random() < 0.7,
                           clarity=Check.Clarity.CLEAR if rng.random() < 0.9 else Check.Clarity.CLOUDY,
                           corrective_action=action, **readings)
-            check.flags = flags_for(check.readings(), targets[tank.pk])
+            check.flags = flags_for(check.values(), targets[tank.pk])
             checks.append(check)
             if day % tank.species.feeding_interval_days == 0 and not is_today:
                 food, amount, unit = FOOD[sp]
@@ -204,6 +209,8 @@ def load(seed: int = 7, today=None) -> dict:
     bulk_create_with_history(changes, WaterChange, default_user=techs[0], default_change_reason="Demo data", default_date=stamp)
     bulk_create_with_history(censuses, Census, default_user=techs[0], default_change_reason="Demo data", default_date=stamp)
 
+    _deviations(rng, checks, techs, manager, now)
+
     # One corrected and one voided record, so the history pages have something to show.
     check = Check.objects.filter(tank=by_code["PD-03"]).order_by("-observed_at")[5]
     check.ph, check._history_user, check._change_reason = 8.1, techs[1], "Meter read before it settled; re-measured"
@@ -211,7 +218,41 @@ def load(seed: int = 7, today=None) -> dict:
     duplicate = Feeding.objects.filter(tank=by_code["SM-01"]).order_by("-observed_at").first()
     duplicate.void(user=techs[0], reason="Entered twice by mistake")
     return {"rooms": len(ROOMS), "tanks": len(tanks), "checks": len(checks), "feedings": len(feedings),
-            "water_changes": len(changes), "censuses": len(censuses), "users": len(DEMO_USERS)}
+            "water_changes": len(changes), "censuses": len(censuses), "users": len(DEMO_USERS),
+            "deviations": Deviation.objects.count(),
+            "unresolved_deviations": Deviation.objects.unresolved().count()}
+
+
+def _deviations(rng, checks, techs, manager, now):
+    """Run the rules over the generated history, then answer most of what they found, as a lab would."""
+    deviations.evaluate_checks(checks, now=now)
+    deviations.scan(now)
+    recent = now - timedelta(days=4)
+    for dev in Deviation.objects.select_related("tank").order_by("opened_at"):
+        if dev.last_seen_at < recent:
+            action = _action_for(dev) or "Checked the tank and its equipment; readings back within target at the next check."
+            who = manager if dev.severity == Deviation.Severity.MAJOR else rng.choice(techs)
+            dev.acknowledge(user=who)
+            dev.close(user=who, corrective_action=action)
+            # Back-date the answer to when it happened in the scenario (the history keeps the edit).
+            delay = timedelta(hours=rng.uniform(1, 30))
+            Deviation.objects.filter(pk=dev.pk).update(acknowledged_at=dev.last_seen_at + delay / 3,
+                                                      closed_at=dev.last_seen_at + delay)
+        elif dev.rule in (Deviation.Rule.OUT_OF_TARGET, Deviation.Rule.MORTALITY) and rng.random() < 0.5:
+            dev.acknowledge(user=rng.choice(techs))
+
+
+def _action_for(dev) -> str:
+    for code, first, last, key, fn, action in EXCURSIONS:
+        if dev.tank and dev.tank.code == code and action and dev.parameter in (key, "", "do_pct_sat", "nh3_mg_l"):
+            return action
+    return ""
+
+
+def _marine_conductivity_us_cm(salinity: float, temp_c: float) -> float:
+    """Invert PSS-78 so the demo's marine conductivity agrees with its salinity."""
+    return 1000.0 * brentq(lambda c: chemistry._pss78_salinity(c / chemistry.C_35_15_0_MS_CM, 1.00024 * temp_c, 0.0)
+                           - salinity, 1.0, 80.0)
 
 
 def _census(rng, tank, population, when, user) -> Census:

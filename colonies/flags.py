@@ -2,7 +2,7 @@
 deviation rules all call these, so a value is flagged the same way everywhere."""
 from dataclasses import dataclass
 
-from . import parameters
+from . import derived
 
 
 @dataclass(frozen=True)
@@ -49,7 +49,7 @@ def flags_for(readings: dict[str, float | None], targets: dict[str, Target]) -> 
 
 
 def describe(key: str, flag: dict) -> str:
-    p = parameters.get(key)
+    p = derived.label_for(key)
     target = Target(flag.get("low"), flag.get("high"))
     word = "below" if flag["side"] == "low" else "above"
     return f"{p.label} {p.format(flag['value'])} {p.unit} is {word} the care target {target.text(p.unit)}".replace("  ", " ")

@@ -13,7 +13,7 @@ from django.urls import reverse
 from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
-from . import parameters
+from . import derived, parameters
 from .flags import Target
 
 DEFAULT_CHECK_INTERVAL_HOURS = 24
@@ -149,7 +149,7 @@ class CareTarget(models.Model):
     """A species' care-target range for one water parameter; either end may be open."""
 
     species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="targets")
-    parameter = models.CharField(max_length=32, choices=parameters.CHOICES)
+    parameter = models.CharField(max_length=32, choices=derived.TARGET_CHOICES)
     low = models.FloatField(null=True, blank=True)
     high = models.FloatField(null=True, blank=True)
     source = models.TextField(blank=True, help_text="Document, year and table the range comes from, or 'lab setting'.")
@@ -319,7 +319,7 @@ class TankTarget(models.Model):
     """A tank's own care target for one parameter, replacing the species target."""
 
     tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="target_overrides")
-    parameter = models.CharField(max_length=32, choices=parameters.CHOICES)
+    parameter = models.CharField(max_length=32, choices=derived.TARGET_CHOICES)
     low = models.FloatField(null=True, blank=True)
     high = models.FloatField(null=True, blank=True)
     reason = models.TextField(help_text="Why this tank differs from its species profile.")
@@ -418,6 +418,14 @@ class Check(Readings, Recorded):
     def readings(self) -> dict[str, float | None]:
         return {p.key: getattr(self, p.key) for p in parameters.PARAMETERS}
 
+    def derived(self) -> dict[str, float | None]:
+        """Derived values (un-ionized ammonia, DO saturation, ...); needs tank.species loaded."""
+        return derived.derive(self.readings(), self.tank.species.habitat)
+
+    def values(self) -> dict[str, float | None]:
+        """Raw readings and derived values together, as flags and deviation rules see them."""
+        return {**self.readings(), **self.derived()}
+
     @property
     def needs_corrective_action(self) -> bool:
         return bool(self.flags) and not self.corrective_action.strip()
@@ -511,3 +519,127 @@ class Census(Recorded):
 
     def get_absolute_url(self):
         return self.tank.get_absolute_url()
+
+
+# ---------------------------------------------------------------------------------------------
+# Deviations
+# ---------------------------------------------------------------------------------------------
+EVIDENCE_KEEP = 60  # newest evidence items kept on a deviation; evidence_count keeps the total
+
+
+class DeviationQuerySet(models.QuerySet):
+    def unresolved(self):
+        return self.exclude(status=Deviation.Status.CLOSED)
+
+    def for_tanks(self, tank_ids):
+        return self.filter(tank_id__in=tank_ids)
+
+
+class Deviation(models.Model):
+    """Something about a culture that needs a person's attention, from open to closed.
+
+    Opened by the rules in colonies/deviations.py; one unresolved deviation per tank, rule,
+    parameter and subject at a time, updated with new evidence while the problem lasts. Closing
+    needs a corrective action. Nothing closes a deviation by itself.
+    """
+
+    class Rule(models.TextChoices):
+        OUT_OF_TARGET = "out-of-target", "Reading outside care target"
+        MISSED_CHECK = "missed-check", "Daily check missed"
+        FEEDING_OVERDUE = "feeding-overdue", "Feeding overdue"
+        WATER_CHANGE_OVERDUE = "water-change-overdue", "Water change overdue"
+        CENSUS_OVERDUE = "census-overdue", "Census overdue"
+        MORTALITY = "mortality", "Deaths above baseline"
+        DRIFT = "drift", "Drift toward a target limit"
+        STOCKING_DENSITY = "stocking-density", "Stocking density above maximum"
+        PROTOCOL_LIMIT = "protocol-limit", "Protocol limit overridden"
+
+    class Severity(models.IntegerChoices):
+        MINOR = 1, "Minor"
+        MODERATE = 2, "Moderate"
+        MAJOR = 3, "Major"
+
+    class Status(models.TextChoices):
+        OPEN = "open", "Open"
+        ACKNOWLEDGED = "acknowledged", "Acknowledged"
+        CLOSED = "closed", "Closed"
+
+    tank = models.ForeignKey(Tank, null=True, blank=True, on_delete=models.PROTECT, related_name="deviations")
+    rule = models.CharField(max_length=24, choices=Rule.choices)
+    parameter = models.CharField(max_length=32, blank=True, help_text="The parameter concerned, if any.")
+    subject = models.CharField(max_length=60, blank=True,
+                               help_text="What else the deviation is about (e.g. a cohort), when not a tank alone.")
+    severity = models.PositiveSmallIntegerField(choices=Severity.choices, default=Severity.MINOR)
+    status = models.CharField(max_length=14, choices=Status.choices, default=Status.OPEN)
+    opened_at = models.DateTimeField(default=timezone.now, help_text="When the first evidence was seen.")
+    last_seen_at = models.DateTimeField(default=timezone.now, help_text="When the latest evidence was seen.")
+    summary = models.CharField(max_length=300)
+    evidence = models.JSONField(default=list, blank=True,
+                                help_text="Values, targets and times that triggered the rule, newest last.")
+    evidence_count = models.PositiveIntegerField(default=0)
+    acknowledged_at = models.DateTimeField(null=True, blank=True)
+    acknowledged_by = models.ForeignKey(settings.AUTH_USER_MODEL, null=True, blank=True, on_delete=models.PROTECT,
+                                        related_name="+")
+    closed_at = models.DateTimeField(null=True, blank=True)
+    closed_by = models.ForeignKey(settings.AUTH_USER_MODEL, null=True, blank=True, on_delete=models.PROTECT,
+                                  related_name="+")
+    corrective_action = models.TextField(blank=True, help_text="What was done; required to close.")
+    history = HistoricalRecords()
+
+    objects = DeviationQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["-opened_at"]
+        get_latest_by = "opened_at"
+        constraints = [
+            models.UniqueConstraint(
+                fields=["tank", "rule", "parameter", "subject"], condition=~Q(status="closed"),
+                name="deviation_one_unresolved_per_subject",
+            ),
+            models.CheckConstraint(
+                condition=~Q(status="closed") | (Q(closed_at__isnull=False) & ~Q(corrective_action="")),
+                name="deviation_closed_has_action",
+            ),
+        ]
+        indexes = [
+            # The register's default view and the Today page: unresolved deviations by tank.
+            models.Index(fields=["status", "tank"], name="deviation_status_tank"),
+        ]
+
+    def __str__(self):
+        where = self.tank.code if self.tank_id else self.subject
+        return f"{self.get_rule_display()} · {where}"
+
+    def get_absolute_url(self):
+        return reverse("colonies:deviation-detail", args=[self.pk])
+
+    @property
+    def time_to_close(self):
+        return (self.closed_at - self.opened_at) if self.closed_at else None
+
+    def acknowledge(self, *, user) -> None:
+        if self.status != self.Status.OPEN:
+            raise ValueError(f"Only an open deviation can be acknowledged; this one is {self.get_status_display().lower()}.")
+        self.status = self.Status.ACKNOWLEDGED
+        self.acknowledged_at = timezone.now()
+        self.acknowledged_by = user
+        self._history_user = user
+        self._change_reason = "Acknowledged"
+        self.save()
+
+    def close(self, *, user, corrective_action: str) -> None:
+        action = (corrective_action or "").strip()
+        if not action:
+            raise ValueError("Corrective action: describe what was done before closing the deviation.")
+        if self.status == self.Status.CLOSED:
+            raise ValueError("This deviation is already closed.")
+        now = timezone.now()
+        if self.acknowledged_at is None:
+            self.acknowledged_at, self.acknowledged_by = now, user
+        self.status = self.Status.CLOSED
+        self.closed_at = now
+        self.closed_by = user
+        self.corrective_action = action
+        self._history_user = user
+        self._change_reason = "Closed with corrective action"
+        self.save()

@@ -4,7 +4,9 @@ Conventions (write them on every label so nobody has to guess):
 - Ammonia, nitrite and nitrate are expressed *as nitrogen* (mg/L NH3-N, NO2-N, NO3-N), the
   convention of most test kits' "-N" scales and of the US EPA 2013 ammonia criteria. Total
   ammonia nitrogen (TAN) is NH3-N + NH4+-N.
-- Conductivity is the value the meter shows; most meters compensate to 25 °C already.
+- Conductivity is recorded at the water's temperature, uncompensated (switch the meter's 25 °C
+  compensation off, or read its raw value); Vermilog derives the 25 °C value and, for marine
+  tanks, practical salinity from it (colonies/derived.py).
 - Salinity is practical salinity (PSS-78, dimensionless, numerically close to g/kg or ‰).
 - Hardness is total hardness in mg/L as CaCO3 (Standard Methods 2340).
 
@@ -65,7 +67,7 @@ PARAMETERS: tuple[Parameter, ...] = (
     Parameter("no2_mg_l", "Nitrite", "NO2", "mg/L NO2-N", 3, 0.0, 100.0),
     Parameter("no3_mg_l", "Nitrate", "NO3", "mg/L NO3-N", 1, 0.0, 500.0),
     Parameter("conductivity_us_cm", "Conductivity", "Cond", "µS/cm", 0, 0.0, 100000.0,
-              help="As shown by the meter (usually compensated to 25 °C)."),
+              help="At the water's temperature, uncompensated; Vermilog derives the 25 °C value."),
     Parameter("salinity", "Salinity", "Sal", "PSU", 1, 0.0, 50.0, habitats=(MARINE,),
               help="Practical salinity (PSS-78), numerically close to ‰ or g/kg."),
     Parameter("hardness_mg_l", "Total hardness", "Hard", "mg/L CaCO3", 0, 0.0, 2000.0, habitats=(FRESHWATER,),

@@ -3,7 +3,7 @@ from django.db import transaction
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history
 
-from . import parameters, population
+from . import deviations, parameters, population
 from .flags import flags_for
 from .models import Census, Check, Feeding, WaterChange
 
@@ -17,7 +17,7 @@ def _build_check(tank, row: dict, *, user, observed_at) -> Check:
     for field in OBSERVATION_FIELDS:
         if field in row and row[field] is not None:
             setattr(check, field, row[field])
-    check.flags = flags_for(check.readings(), tank.care_targets())
+    check.flags = flags_for(check.values(), tank.care_targets())
     return check
 
 
@@ -32,10 +32,12 @@ def record_round(*, user, rows: list[tuple], observed_at=None) -> list[Check]:
     checks = [_build_check(tank, row, user=user, observed_at=observed_at) for tank, row in rows]
     if not checks:
         return []
-    return bulk_create_with_history(
+    saved = bulk_create_with_history(
         checks, Check, default_user=user, default_change_reason="Logged on the daily round",
         default_date=timezone.now(),
     )
+    deviations.evaluate_checks(saved)
+    return saved
 
 
 @transaction.atomic
@@ -44,6 +46,7 @@ def record_check(*, user, tank, row: dict, observed_at=None) -> Check:
     check._history_user = user
     check._change_reason = "Logged on the tank page"
     check.save()
+    deviations.evaluate_checks([check])
     return check
 
 
@@ -61,10 +64,11 @@ def update_check(*, user, check: Check, row: dict, reason: str) -> Check:
             setattr(check, field, row[field])
     if "observed_at" in row and row["observed_at"]:
         check.observed_at = row["observed_at"]
-    check.flags = flags_for(check.readings(), check.tank.care_targets())
+    check.flags = flags_for(check.values(), check.tank.care_targets())
     check._history_user = user
     check._change_reason = reason
     check.save()
+    deviations.evaluate_checks([check])
     return check
 
 

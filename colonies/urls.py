@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import views
+from . import deviation_views, views
 
 app_name = "colonies"
 
@@ -16,6 +16,11 @@ urlpatterns = [
     path("checks/<int:pk>/edit/", views.check_edit, name="check-edit"),
     path("checks.csv", views.checks_csv, name="checks-csv"),
     path("void/<slug:kind>/<int:pk>/", views.record_void, name="void"),
+    path("deviations/", deviation_views.register, name="deviation-register"),
+    path("deviations.csv", deviation_views.register_csv, name="deviation-csv"),
+    path("deviations/<int:pk>/", deviation_views.detail, name="deviation-detail"),
+    path("deviations/<int:pk>/acknowledge/", deviation_views.acknowledge, name="deviation-acknowledge"),
+    path("deviations/<int:pk>/close/", deviation_views.close, name="deviation-close"),
     path("species/", views.species_list, name="species-list"),
     path("species/<int:pk>/", views.species_detail, name="species-detail"),
     path("species/<int:pk>/edit/", views.species_edit, name="species-edit"),

@@ -9,13 +9,13 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import parameters, services
+from . import derived, parameters, services
 from .filters import CheckFilter, TankFilter
 from .flags import describe, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
 from .history import record_history
-from .models import Census, Check, Feeding, Room, Species, Tank, WaterChange
+from .models import Census, Check, Deviation, Feeding, Room, Species, Tank, WaterChange
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, can_record_husbandry, role_required
 
 READ_ROLES = (TECHNICIAN, RESEARCHER)
@@ -32,24 +32,38 @@ def _get_tank(code: str) -> Tank:
 @require_GET
 @role_required(*READ_ROLES)
 def home(request):
+    """Today: per room, what is due or overdue, round progress, and unresolved deviations."""
     now = timezone.now()
-    tanks = list(Tank.objects.for_round())
+    today = timezone.localdate()
     rooms = {}
-    for tank in tanks:
-        entry = rooms.setdefault(tank.room_id, {"room": tank.room, "tanks": 0, "due": {}, "checked_today": 0})
+    for tank in Tank.objects.in_use().select_related("room", "species").with_last_events().order_by("room__code", "code"):
+        entry = rooms.setdefault(tank.room_id, {"room": tank.room, "tanks": 0, "checked_today": 0,
+                                                "due": {}, "deviations": []})
         entry["tanks"] += 1
+        if tank.last_check_at and timezone.localtime(tank.last_check_at).date() == today:
+            entry["checked_today"] += 1
         for item in tank.due(now):
             if item["is_due"]:
-                entry["due"][item["label"]] = entry["due"].get(item["label"], 0) + 1
-        if tank.last_check_at and timezone.localtime(tank.last_check_at).date() == timezone.localdate():
-            entry["checked_today"] += 1
-    week_ago = now - timezone.timedelta(days=7)
-    pending = (
-        Check.objects.current().filter(observed_at__gte=week_ago).exclude(flags={})
-        .filter(corrective_action="").select_related("tank").order_by("-observed_at")[:20]
-    )
-    ctx = {"rooms": list(rooms.values()), "pending": pending, "now": now}
+                overdue = item["due_at"] is not None and item["due_at"] < now - timezone.timedelta(hours=2)
+                entry["due"].setdefault(item["label"], []).append({"tank": tank, "overdue": overdue or item["due_at"] is None})
+    for entry in rooms.values():
+        entry["percent"] = round(100 * entry["checked_today"] / entry["tanks"]) if entry["tanks"] else 0
+        entry["due"] = sorted(entry["due"].items(), key=lambda kv: DUE_ORDER.index(kv[0]))
+    unresolved = list(Deviation.objects.unresolved().select_related("tank__room").order_by("-severity", "-last_seen_at"))
+    by_severity = {s.value: 0 for s in Deviation.Severity}
+    for dev in unresolved:
+        by_severity[dev.severity] += 1
+        if dev.tank_id and dev.tank.room_id in rooms:
+            rooms[dev.tank.room_id]["deviations"].append(dev)
+    ctx = {
+        "rooms": list(rooms.values()), "now": now,
+        "severity_counts": [(label, by_severity[value], value) for value, label in reversed(Deviation.Severity.choices)],
+        "deviations": unresolved[:25], "n_unresolved": len(unresolved),
+    }
     return render(request, "colonies/home.html", ctx)
+
+
+DUE_ORDER = ["Daily check", "Feeding", "Water change", "Census"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -119,7 +133,12 @@ def _round_rows(forms):
             last_side = out_of_target(last, target)
             cells.append({"field": form[p.key], "param": p, "last": p.format(last), "last_side": last_side,
                           "target": target.text(p.unit) if target else "", "side": live_flags.get(p.key)})
-        rows.append({"form": form, "tank": tank, "cells": cells, "flagged": bool(live_flags)})
+        last = {p.key: getattr(tank, f"last_{p.key}", None) for p in form.params}
+        derived_last = []
+        for d, value in zip(derived.for_habitat(tank.species.habitat), derived.derive(last, tank.species.habitat).values()):
+            if value is not None:
+                derived_last.append({"d": d, "value": d.format(value), "side": out_of_target(value, form.targets.get(d.key))})
+        rows.append({"form": form, "tank": tank, "cells": cells, "flagged": bool(live_flags), "derived": derived_last})
     return rows
 
 
@@ -137,17 +156,21 @@ def _tank_page_ctx(request, tank, **forms):
     tank_with = Tank.objects.for_round().filter(pk=tank.pk).first() or tank
     checks = list(tank.check_set.current().select_related("recorded_by")[:30])
     params = tank.relevant_parameters()
+    columns = params + derived.for_habitat(tank.species.habitat)
     targets = tank.care_targets()
     rows = []
     for c in checks:
-        rows.append({"check": c, "cells": [{"param": p, "value": p.format(getattr(c, p.key)), "side": (c.flags.get(p.key) or {}).get("side")}
-                                           for p in params],
-                     "flag_text": [describe(k, v) for k, v in c.flags.items() if k in parameters.BY_KEY]})
+        c.tank = tank
+        values = c.values()
+        rows.append({"check": c, "cells": [{"param": p, "value": p.format(values.get(p.key)),
+                                            "side": (c.flags.get(p.key) or {}).get("side")} for p in columns],
+                     "flag_text": _flag_text(c)})
     ctx = {
         "tank": tank_with,
         "due": tank_with.due() if hasattr(tank_with, "last_check_at") else [],
-        "params": params,
-        "targets": [(p, targets.get(p.key)) for p in params],
+        "params": columns,
+        "targets": [(p, targets.get(p.key)) for p in columns],
+        "deviations": tank.deviations.unresolved().select_related("tank").order_by("-severity", "-last_seen_at"),
         "rows": rows,
         "feedings": tank.feeding_set.current().select_related("recorded_by")[:10],
         "water_changes": tank.waterchange_set.current().select_related("recorded_by")[:10],
@@ -214,6 +237,10 @@ def tank_add(request, code, kind):
     return render(request, "colonies/tank_detail.html", _tank_page_ctx(request, tank, **forms), status=400)
 
 
+def _flag_text(check) -> list[str]:
+    return [describe(k, v) for k, v in check.flags.items() if k in parameters.BY_KEY or k in derived.BY_KEY]
+
+
 def _flash_check(request, check):
     if check.flags:
         text = "; ".join(describe(k, v) for k, v in check.flags.items())
@@ -242,9 +269,10 @@ def check_detail(request, pk):
     params = check.tank.relevant_parameters()
     return render(request, "colonies/check_detail.html", {
         "check": check, "history": _diffs(history, params), "params": params,
-        "flag_text": [describe(k, v) for k, v in check.flags.items() if k in parameters.BY_KEY],
-        "cells": [{"param": p, "value": p.format(getattr(check, p.key)),
-                   "side": (check.flags.get(p.key) or {}).get("side")} for p in params],
+        "flag_text": _flag_text(check),
+        "cells": [{"param": p, "value": p.format(check.values().get(p.key)),
+                   "side": (check.flags.get(p.key) or {}).get("side")}
+                  for p in params + derived.for_habitat(check.tank.species.habitat)],
     })
 
 
@@ -346,6 +374,11 @@ def species_edit(request, pk):
 # ---------------------------------------------------------------------------------------------
 # Export
 # ---------------------------------------------------------------------------------------------
+def _derived_cells(check) -> list:
+    values = check.derived()
+    return ["" if values.get(d.key) is None else round(values[d.key], d.decimals + 2) for d in derived.DERIVED]
+
+
 class _Echo:
     def write(self, value):
         return value
@@ -355,10 +388,12 @@ class _Echo:
 @role_required(*READ_ROLES)
 def checks_csv(request):
     """All checks matching the filter, one row each; columns come from the parameter registry."""
-    check_filter = CheckFilter(request.GET, queryset=Check.objects.select_related("tank__room", "recorded_by"))
+    check_filter = CheckFilter(request.GET, queryset=Check.objects.select_related("tank__room", "tank__species",
+                                                                                  "recorded_by"))
     qs = check_filter.qs.order_by("observed_at", "pk")
     header = ["check_id", "tank", "room", "observed_at_utc", "recorded_at_utc", "recorded_by"]
     header += [f"{p.key} [{p.unit}]" if p.unit else p.key for p in parameters.PARAMETERS]
+    header += [f"{d.key} [{d.unit}] (derived)" for d in derived.DERIVED]
     header += ["activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "flagged",
                "corrective_action", "note", "voided", "void_reason"]
 
@@ -368,7 +403,7 @@ def checks_csv(request):
             yield [c.pk, c.tank.code, c.tank.room.code, c.observed_at.isoformat(), c.recorded_at.isoformat(),
                    c.recorded_by.get_username()] + [
                 "" if getattr(c, p.key) is None else getattr(c, p.key) for p in parameters.PARAMETERS
-            ] + [c.activity, int(c.clumping), c.dead_removed, int(c.surface_film), c.odour, c.clarity,
+            ] + _derived_cells(c) + [c.activity, int(c.clumping), c.dead_removed, int(c.surface_film), c.odour, c.clarity,
                  " ".join(sorted(c.flags)), c.corrective_action, c.note, int(c.is_voided), c.void_reason]
 
     writer = csv.writer(_Echo())

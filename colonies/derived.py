@@ -1,0 +1,108 @@
+"""Values derived from a check's raw readings with published methods (see colonies/chemistry.py).
+
+Like the measured parameters, each derived value is one entry in a registry that the round, the
+tank page, the CSV export and care targets read. A derived value is None when an input is missing
+or lies outside the method's validity range: no extrapolated number is shown as if it were real.
+
+Barometric pressure is not recorded per check; oxygen saturation assumes standard pressure
+(101.325 kPa). At 600 m altitude that overstates % saturation by about 7 % of the value.
+"""
+from collections.abc import Callable
+from dataclasses import dataclass
+
+from . import chemistry, parameters
+
+Readings = dict[str, float | None]
+
+
+@dataclass(frozen=True)
+class DerivedValue:
+    key: str
+    label: str
+    short: str
+    unit: str
+    decimals: int
+    method: str
+    compute: Callable[[Readings, str], float]
+    habitats: tuple[str, ...] = parameters.BOTH
+
+    @property
+    def label_with_unit(self) -> str:
+        return f"{self.label} ({self.unit})"
+
+    def format(self, value: float | None) -> str:
+        return "" if value is None else f"{value:.{self.decimals}f}"
+
+    def applies_to(self, habitat: str) -> bool:
+        return habitat in self.habitats
+
+
+def _need(readings: Readings, *keys: str) -> list[float]:
+    values = [readings.get(k) for k in keys]
+    if any(v is None for v in values):
+        raise LookupError
+    return values  # type: ignore[return-value]
+
+
+def _nh3(r: Readings, habitat: str) -> float:
+    tan, ph, temp = _need(r, "tan_mg_l", "ph", "temp_c")
+    return chemistry.unionized_ammonia_mg_l(tan, ph, temp)
+
+
+def _do_pct(r: Readings, habitat: str) -> float:
+    do, temp = _need(r, "do_mg_l", "temp_c")
+    salinity = r.get("salinity") if habitat == parameters.MARINE else 0.0
+    if salinity is None:
+        raise LookupError
+    return chemistry.oxygen_percent_saturation(do, temp, salinity)
+
+
+def _cond25(r: Readings, habitat: str) -> float:
+    cond, temp = _need(r, "conductivity_us_cm", "temp_c")
+    return chemistry.specific_conductance_25(cond, temp)
+
+
+def _salinity_from_cond(r: Readings, habitat: str) -> float:
+    cond, temp = _need(r, "conductivity_us_cm", "temp_c")
+    return chemistry.practical_salinity(cond / 1000.0, temp)
+
+
+DERIVED: tuple[DerivedValue, ...] = (
+    DerivedValue("nh3_mg_l", "Un-ionized ammonia", "NH3", "mg/L NH3-N", 4,
+                 "Emerson et al. 1975 pKa from pH and temperature, times total ammonia-N", _nh3),
+    DerivedValue("do_pct_sat", "Oxygen saturation", "DO %", "% air sat.", 0,
+                 "Benson & Krause 1984 solubility (USGS tables) at standard pressure; salinity from the reading "
+                 "for marine tanks", _do_pct),
+    DerivedValue("cond25_us_cm", "Conductivity at 25 °C", "EC25", "µS/cm", 0,
+                 "Linear compensation, α = 0.0191 /°C (Standard Methods 2510)", _cond25),
+    DerivedValue("salinity_from_cond", "Salinity from conductivity", "Sal(EC)", "PSU", 1,
+                 "PSS-78, UNESCO 1983 Tech. Pap. 44, at 0 dbar", _salinity_from_cond,
+                 habitats=(parameters.MARINE,)),
+)
+BY_KEY = {d.key: d for d in DERIVED}
+KEYS = tuple(BY_KEY)
+
+
+def derive(readings: Readings, habitat: str) -> dict[str, float | None]:
+    """All derived values that apply to the habitat; None where inputs are missing or out of range."""
+    out: dict[str, float | None] = {}
+    for d in DERIVED:
+        if not d.applies_to(habitat):
+            continue
+        try:
+            out[d.key] = d.compute(readings, habitat)
+        except (LookupError, ValueError):
+            out[d.key] = None
+    return out
+
+
+def for_habitat(habitat: str) -> tuple[DerivedValue, ...]:
+    return tuple(d for d in DERIVED if d.applies_to(habitat))
+
+
+def label_for(key: str):
+    """The registry entry (measured or derived) for a target or flag key."""
+    return parameters.BY_KEY.get(key) or BY_KEY[key]
+
+
+TARGET_CHOICES = parameters.CHOICES + [(d.key, f"{d.label_with_unit} (derived)") for d in DERIVED]

@@ -1,0 +1,115 @@
+"""Deviation register (managers), deviation pages, acknowledge and close (technicians and managers)."""
+import pandas as pd
+from django import forms
+from django.contrib import messages
+from django.db.models import Count, F
+from django.http import HttpResponse
+from django.shortcuts import get_object_or_404, redirect, render
+from django.views.decorators.http import require_GET, require_http_methods, require_POST
+
+from .filters import DeviationFilter
+from .models import Deviation
+from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
+
+
+class CloseForm(forms.Form):
+    corrective_action = forms.CharField(
+        widget=forms.Textarea(attrs={"rows": 3}), label="Corrective action",
+        help_text="What was done about it, and what was checked afterwards. Required to close.",
+    )
+
+    def clean_corrective_action(self):
+        text = self.cleaned_data["corrective_action"].strip()
+        if not text:
+            raise forms.ValidationError("Corrective action: describe what was done before closing.")
+        return text
+
+
+def _register_qs():
+    return Deviation.objects.select_related("tank__room", "closed_by", "acknowledged_by")
+
+
+@require_GET
+@role_required(MANAGER)
+def register(request):
+    data = request.GET.copy() if request.GET else {"unresolved": "on"}
+    dfilter = DeviationFilter(data, queryset=_register_qs())
+    qs = dfilter.qs
+    by_rule = {r["rule"]: r["n"] for r in qs.order_by().values("rule").annotate(n=Count("id"))}
+    by_room = list(qs.order_by().values("tank__room__name").annotate(n=Count("id")).order_by("-n"))
+    closed = list(qs.filter(closed_at__isnull=False).order_by().annotate(dt=F("closed_at") - F("opened_at"))
+                  .values_list("dt", flat=True))
+    median_close = pd.Series([d.total_seconds() / 3600 for d in closed]).median() if closed else None
+    page = list(qs[:200])
+    ctx = {
+        "filter": dfilter, "deviations": page, "total": len(page) if len(page) < 200 else qs.count(),
+        "by_rule": [(label, by_rule.get(value, 0)) for value, label in Deviation.Rule.choices if by_rule.get(value)],
+        "by_room": by_room, "median_close_h": median_close, "n_closed": len(closed),
+        "query": request.GET.urlencode(),
+    }
+    return render(request, "colonies/deviation_register.html", ctx)
+
+
+@require_GET
+@role_required(MANAGER)
+def register_csv(request):
+    dfilter = DeviationFilter(request.GET, queryset=_register_qs())
+    rows = [{
+        "id": d.pk, "tank": d.tank.code if d.tank else "", "room": d.tank.room.code if d.tank else "",
+        "subject": d.subject, "rule": d.rule, "parameter": d.parameter, "severity": d.get_severity_display(),
+        "status": d.status, "opened_at_utc": d.opened_at, "last_seen_at_utc": d.last_seen_at,
+        "evidence_count": d.evidence_count, "summary": d.summary,
+        "acknowledged_at_utc": d.acknowledged_at, "acknowledged_by": d.acknowledged_by.get_username() if d.acknowledged_by else "",
+        "closed_at_utc": d.closed_at, "closed_by": d.closed_by.get_username() if d.closed_by else "",
+        "hours_to_close": round(d.time_to_close.total_seconds() / 3600, 2) if d.time_to_close else None,
+        "corrective_action": d.corrective_action,
+    } for d in dfilter.qs.order_by("opened_at")]
+    frame = pd.DataFrame(rows, columns=["id", "tank", "room", "subject", "rule", "parameter", "severity", "status",
+                                        "opened_at_utc", "last_seen_at_utc", "evidence_count", "summary",
+                                        "acknowledged_at_utc", "acknowledged_by", "closed_at_utc", "closed_by",
+                                        "hours_to_close", "corrective_action"])
+    response = HttpResponse(frame.to_csv(index=False), content_type="text/csv; charset=utf-8")
+    response["Content-Disposition"] = 'attachment; filename="vermilog-deviations.csv"'
+    return response
+
+
+@require_GET
+@role_required(TECHNICIAN, RESEARCHER)
+def detail(request, pk):
+    dev = get_object_or_404(_register_qs(), pk=pk)
+    history = dev.history.select_related("history_user").order_by("-history_date")[:50]
+    return render(request, "colonies/deviation_detail.html",
+                  {"dev": dev, "form": CloseForm(), "history": history,
+                   "evidence": list(reversed(dev.evidence))})
+
+
+@require_POST
+@role_required(TECHNICIAN)
+def acknowledge(request, pk):
+    dev = get_object_or_404(Deviation, pk=pk)
+    try:
+        dev.acknowledge(user=request.user)
+    except ValueError as error:
+        messages.error(request, str(error))
+    else:
+        messages.success(request, f"Acknowledged: {dev}.")
+    return redirect(request.POST.get("next") or dev.get_absolute_url())
+
+
+@require_http_methods(["POST"])
+@role_required(TECHNICIAN)
+def close(request, pk):
+    dev = get_object_or_404(_register_qs(), pk=pk)
+    form = CloseForm(request.POST)
+    if form.is_valid():
+        try:
+            dev.close(user=request.user, corrective_action=form.cleaned_data["corrective_action"])
+        except ValueError as error:
+            messages.error(request, str(error))
+        else:
+            messages.success(request, f"Closed: {dev}.")
+            return redirect(dev)
+    history = dev.history.select_related("history_user").order_by("-history_date")[:50]
+    return render(request, "colonies/deviation_detail.html",
+                  {"dev": dev, "form": form, "history": history, "evidence": list(reversed(dev.evidence))},
+                  status=400)

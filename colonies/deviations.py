@@ -1,0 +1,388 @@
+"""The deviation engine: rules that turn husbandry records into deviations.
+
+Two kinds of rule:
+- record rules run when checks are saved (`evaluate_checks`): reading or derived value outside the
+  care target, mortality above baseline, drift on a control chart;
+- scan rules run from `python manage.py scan_deviations` (`scan`): missed checks and overdue
+  feeding, water change and census.
+
+A rule returns `Finding`s; `apply_findings` turns them into deviations. An ongoing problem keeps a
+single unresolved deviation per (tank, rule, parameter, subject), which gains evidence; each piece
+of evidence has a `ref` so running a rule twice on the same records adds nothing. Nothing closes a
+deviation automatically: a value back in range is new evidence, not a corrective action.
+
+Later rules (stocking density, protocol limits) register with `record_rule` / `scan_rule`, or call
+`apply_findings` directly.
+"""
+import math
+from collections import defaultdict
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+
+from django.db import transaction
+from django.db.models import OuterRef, Subquery
+from django.utils import timezone
+from simple_history.utils import bulk_create_with_history, bulk_update_with_history
+
+from . import control_charts, derived
+from .flags import Target, out_of_target
+from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank
+
+Severity = Deviation.Severity
+Rule = Deviation.Rule
+
+# Time rules: how late before a deviation opens, as a fraction of the interval (at least 2 h).
+GRACE_FRACTION = 0.25  # common practice: a quarter of the interval
+MIN_GRACE = timedelta(hours=2)
+
+# Mortality: a check's dead count opens a deviation when it is at least MORTALITY_MIN_DEAD and
+# above the tank's recent baseline by 3 Poisson standard deviations (mean + 3 sqrt(mean)), or above
+# MORTALITY_FRACTION of the latest population estimate.
+MORTALITY_BASELINE_CHECKS = 14
+MORTALITY_MIN_DEAD = 5  # common practice: a handful of dead worms is normal turnover
+MORTALITY_FRACTION = 0.02  # common practice: 2 % of the culture in one day
+
+# Drift: EWMA chart, lambda = 0.3, L = 3 (NIST/SEMATECH e-Handbook of Statistical Methods,
+# §6.3.2.4), baseline mean and sigma (average moving range / 1.128) from the readings before the
+# last DRIFT_WINDOW ones. Fires only while the newest reading is still inside the target and the
+# EWMA has moved toward a target limit and into the outer DRIFT_ZONE of the target band next to
+# it: it warns before a breach. (Real husbandry series are autocorrelated, so a bare EWMA signal
+# with a moving-range sigma alarms too often; the zone condition keeps warnings to drifts that
+# matter for the culture.)
+DRIFT_LAMBDA = 0.3
+DRIFT_L = 3.0
+DRIFT_WINDOW = 7
+DRIFT_MIN_BASELINE = 10
+DRIFT_ZONE = 0.25  # common practice: warn in the outer quarter of the target band
+DRIFT_METHOD = "EWMA chart, λ = 0.3, L = 3 (NIST/SEMATECH e-Handbook §6.3.2.4)"
+HISTORY_DAYS = 35  # how far back record rules look for baselines
+
+
+@dataclass(frozen=True)
+class Finding:
+    tank_id: int | None
+    rule: str
+    severity: int
+    summary: str
+    evidence: dict  # must carry a "ref" that identifies the underlying record/event
+    at: datetime
+    parameter: str = ""
+    subject: str = ""
+
+    @property
+    def key(self) -> tuple:
+        return (self.tank_id, self.rule, self.parameter, self.subject)
+
+
+@dataclass
+class Outcome:
+    created: list = field(default_factory=list)
+    updated: list = field(default_factory=list)
+
+    def __str__(self):
+        return f"{len(self.created)} opened, {len(self.updated)} updated"
+
+
+RecordRule = Callable[[list[Check], "Context"], Iterable[Finding]]
+ScanRule = Callable[[list[Tank], datetime], Iterable[Finding]]
+RECORD_RULES: list[RecordRule] = []
+SCAN_RULES: list[ScanRule] = []
+
+
+def record_rule(fn: RecordRule) -> RecordRule:
+    RECORD_RULES.append(fn)
+    return fn
+
+
+def scan_rule(fn: ScanRule) -> ScanRule:
+    SCAN_RULES.append(fn)
+    return fn
+
+
+# ---------------------------------------------------------------------------------------------
+# Severity
+# ---------------------------------------------------------------------------------------------
+def severity_outside(value: float, target: Target) -> int:
+    """How far outside the target: within 10 % of the band (or of the limit, for a one-sided
+    target) is minor, within 50 % moderate, beyond that major."""
+    if target.low is not None and target.high is not None and target.high > target.low:
+        scale = target.high - target.low
+    else:
+        limit = target.low if target.low is not None else target.high
+        scale = abs(limit) if limit else 1.0
+    if target.low is not None and value < target.low:
+        distance = target.low - value
+    elif target.high is not None and value > target.high:
+        distance = value - target.high
+    else:
+        return 0
+    ratio = distance / scale
+    if ratio <= 0.10:
+        return Severity.MINOR
+    if ratio <= 0.50:
+        return Severity.MODERATE
+    return Severity.MAJOR
+
+
+# ---------------------------------------------------------------------------------------------
+# Record rules
+# ---------------------------------------------------------------------------------------------
+@dataclass
+class Context:
+    """What record rules may read, loaded in a fixed number of queries for a batch of checks."""
+
+    tanks: dict[int, Tank]
+    series: dict[int, list[Check]]  # per tank: earlier stored checks and the batch, oldest first
+    latest_estimate: dict[int, float | None]
+    _values: dict[int, dict] = field(default_factory=dict)
+    _position: dict[int, int] = field(default_factory=dict)
+
+    @classmethod
+    def load(cls, checks: list[Check]) -> "Context":
+        tank_ids = {c.tank_id for c in checks}
+        tanks = {
+            t.pk: t for t in Tank.objects.filter(pk__in=tank_ids).select_related("species")
+            .prefetch_related("species__targets", "target_overrides")
+            .annotate(latest_estimate=Subquery(
+                Census.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at").values("estimate")[:1]
+            ))
+        }
+        oldest = min(c.observed_at for c in checks) - timedelta(days=HISTORY_DAYS)
+        batch = {c.pk for c in checks}
+        series: dict[int, list[Check]] = defaultdict(list)
+        stored = (Check.objects.current().filter(tank_id__in=tank_ids, observed_at__gte=oldest)
+                  .exclude(pk__in=batch))
+        for c in list(stored) + list(checks):
+            c.tank = tanks[c.tank_id]
+            series[c.tank_id].append(c)
+        ctx = cls(tanks, series, {pk: t.latest_estimate for pk, t in tanks.items()})
+        for items in series.values():
+            items.sort(key=lambda c: (c.observed_at, c.pk))
+            for i, c in enumerate(items):
+                ctx._position[id(c)] = i
+        return ctx
+
+    def earlier(self, check: Check) -> list[Check]:
+        return self.series[check.tank_id][:self._position[id(check)]]
+
+    def values(self, check: Check) -> dict:
+        cached = self._values.get(id(check))
+        if cached is None:
+            cached = self._values[id(check)] = check.values()
+        return cached
+
+
+def _local(dt: datetime) -> str:
+    return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M")
+
+
+@record_rule
+def out_of_target_rule(checks, ctx):
+    for check in checks:
+        tank = ctx.tanks[check.tank_id]
+        targets = tank.care_targets()
+        for key, value in ctx.values(check).items():
+            target = targets.get(key)
+            side = out_of_target(value, target)
+            if not side:
+                continue
+            entry = derived.label_for(key)
+            yield Finding(
+                tank.pk, Rule.OUT_OF_TARGET, severity_outside(value, target),
+                f"{entry.label} {entry.format(value)} {entry.unit} {'below' if side == 'low' else 'above'} "
+                f"target {target.text(entry.unit)}",
+                {"ref": f"check:{check.pk}:{key}", "check": check.pk, "at": _local(check.observed_at),
+                 "value": value, "low": target.low, "high": target.high, "side": side},
+                check.observed_at, parameter=key,
+            )
+
+
+@record_rule
+def mortality_rule(checks, ctx):
+    for check in checks:
+        dead = check.dead_removed or 0
+        if dead < MORTALITY_MIN_DEAD:
+            continue
+        earlier = ctx.earlier(check)[-MORTALITY_BASELINE_CHECKS:]
+        baseline = sum(c.dead_removed for c in earlier) / len(earlier) if earlier else 0.0
+        poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
+        estimate = ctx.latest_estimate.get(check.tank_id)
+        fraction = dead / estimate if estimate else None
+        above_baseline = dead > poisson_limit
+        above_fraction = fraction is not None and fraction > MORTALITY_FRACTION
+        if not (above_baseline or above_fraction):
+            continue
+        severity = Severity.MAJOR if (fraction is not None and fraction > 2.5 * MORTALITY_FRACTION) or dead > 2 * poisson_limit else Severity.MODERATE
+        why = [f"baseline {baseline:.1f}/check over {len(earlier)} checks, limit {poisson_limit:.1f}"]
+        if fraction is not None:
+            why.append(f"{100 * fraction:.1f} % of the latest estimate ({estimate:.0f})")
+        yield Finding(
+            check.tank_id, Rule.MORTALITY, severity, f"{dead} dead removed ({'; '.join(why)})",
+            {"ref": f"check:{check.pk}:dead", "check": check.pk, "at": _local(check.observed_at), "dead": dead,
+             "baseline": round(baseline, 2), "limit": round(poisson_limit, 2),
+             "fraction_of_estimate": None if fraction is None else round(fraction, 4)},
+            check.observed_at,
+        )
+
+
+@record_rule
+def drift_rule(checks, ctx):
+    for check in checks:
+        tank = ctx.tanks[check.tank_id]
+        targets = tank.care_targets()
+        series = ctx.earlier(check)[-(DRIFT_WINDOW + 40):] + [check]
+        for key, value in ctx.values(check).items():
+            target = targets.get(key)
+            if value is None or target is None or out_of_target(value, target):
+                continue
+            values = [v for v in (ctx.values(c).get(key) for c in series) if v is not None]
+            if len(values) < DRIFT_MIN_BASELINE + DRIFT_WINDOW:
+                continue
+            baseline, recent = values[:-DRIFT_WINDOW], values[-DRIFT_WINDOW:]
+            try:
+                centre, sigma = control_charts.estimate_baseline(baseline)
+                signals = control_charts.ewma_signals(recent, centre, sigma, DRIFT_LAMBDA, DRIFT_L)
+            except ValueError:
+                continue
+            if not signals or signals[-1].index != len(recent) - 1:
+                continue
+            z = control_charts.ewma(recent, DRIFT_LAMBDA, centre)[-1]
+            toward = ("high" if z > centre else "low")
+            limit = target.high if toward == "high" else target.low
+            if limit is None or not _near_limit(z, target, toward):
+                continue
+            entry = derived.label_for(key)
+            yield Finding(
+                tank.pk, Rule.DRIFT, Severity.MINOR,
+                f"{entry.label} drifting {'up' if toward == 'high' else 'down'} toward {limit:g} {entry.unit} "
+                f"(EWMA {z:.{entry.decimals + 1}f}, baseline {centre:.{entry.decimals + 1}f}); {DRIFT_METHOD}",
+                {"ref": f"check:{check.pk}:{key}:drift", "check": check.pk, "at": _local(check.observed_at),
+                 "value": value, "ewma": round(z, 4), "centre": round(centre, 4), "sigma": round(sigma, 4),
+                 "limit": limit, "method": DRIFT_METHOD},
+                check.observed_at, parameter=key,
+            )
+
+
+def _near_limit(z: float, target: Target, toward: str) -> bool:
+    """Is the EWMA in the outer DRIFT_ZONE of the band next to the limit it moves toward?"""
+    limit = target.high if toward == "high" else target.low
+    if target.low is not None and target.high is not None:
+        margin = DRIFT_ZONE * (target.high - target.low)
+    else:
+        margin = DRIFT_ZONE * abs(limit) if limit else 0.0
+    return (limit - z <= margin) if toward == "high" else (z - limit <= margin)
+
+
+def evaluate_checks(checks: list[Check], now: datetime | None = None) -> Outcome:
+    """Run every record rule on freshly saved checks (fixed number of queries for the batch)."""
+    checks = [c for c in checks if c.pk and not c.is_voided]
+    if not checks:
+        return Outcome()
+    ctx = Context.load(checks)
+    findings = [f for rule in RECORD_RULES for f in rule(checks, ctx)]
+    return apply_findings(findings, now=now)
+
+
+# ---------------------------------------------------------------------------------------------
+# Scan rules (time-based)
+# ---------------------------------------------------------------------------------------------
+def _overdue(tank, now, label, last, interval, rule):
+    if last is None:
+        due_at = timezone.make_aware(datetime.combine(tank.started_on, datetime.min.time())) + interval
+    else:
+        due_at = last + interval
+    grace = max(MIN_GRACE, interval * GRACE_FRACTION)
+    if now <= due_at + grace:
+        return None
+    late = now - due_at
+    periods = late / interval
+    severity = Severity.MAJOR if periods >= 3 else Severity.MODERATE if periods >= 1 else Severity.MINOR
+    hours = late.total_seconds() / 3600
+    late_text = f"{hours:.0f} h" if hours < 48 else f"{hours / 24:.1f} days"
+    return Finding(
+        tank.pk, rule, severity,
+        f"{label} {late_text} overdue (last {_local(last) if last else 'never'}, due {_local(due_at)})",
+        {"ref": f"due:{due_at.isoformat()}", "last": _local(last) if last else None, "due": _local(due_at),
+         "seen": _local(now)},
+        due_at,
+    )
+
+
+@scan_rule
+def overdue_rule(tanks, now):
+    for tank in tanks:
+        s = tank.species
+        plan = (
+            ("Daily check", tank.last_check_at, timedelta(hours=s.check_interval_hours), Rule.MISSED_CHECK),
+            ("Feeding", tank.last_feeding_at, timedelta(days=s.feeding_interval_days), Rule.FEEDING_OVERDUE),
+            ("Water change", tank.last_water_change_at, timedelta(days=s.water_change_interval_days),
+             Rule.WATER_CHANGE_OVERDUE),
+            ("Census", tank.last_census_at, timedelta(days=s.census_interval_days), Rule.CENSUS_OVERDUE),
+        )
+        for label, last, interval, rule in plan:
+            finding = _overdue(tank, now, label, last, interval, rule)
+            if finding:
+                yield finding
+
+
+def scan(now: datetime | None = None, *, dry_run: bool = False) -> tuple[list[Finding], Outcome]:
+    """Run the time-based rules over every tank in use. Idempotent: same records, same result."""
+    now = now or timezone.now()
+    tanks = list(Tank.objects.in_use().select_related("species").with_last_events())
+    findings = [f for rule in SCAN_RULES for f in rule(tanks, now)]
+    if dry_run:
+        return findings, Outcome()
+    return findings, apply_findings(findings, now=now)
+
+
+# ---------------------------------------------------------------------------------------------
+# Findings to deviations
+# ---------------------------------------------------------------------------------------------
+@transaction.atomic
+def apply_findings(findings: list[Finding], now: datetime | None = None, user=None) -> Outcome:
+    """Open a deviation per new problem, or add evidence to the unresolved one (fixed query count)."""
+    outcome = Outcome()
+    if not findings:
+        return outcome
+    now = now or timezone.now()
+    tank_ids = {f.tank_id for f in findings if f.tank_id is not None}
+    subjects = {f.subject for f in findings if f.tank_id is None}
+    unresolved = Deviation.objects.unresolved().filter(rule__in={f.rule for f in findings})
+    existing = {}
+    for dev in unresolved.filter(tank_id__in=tank_ids) if tank_ids else []:
+        existing[(dev.tank_id, dev.rule, dev.parameter, dev.subject)] = dev
+    if subjects:
+        for dev in unresolved.filter(tank__isnull=True, subject__in=subjects):
+            existing[(None, dev.rule, dev.parameter, dev.subject)] = dev
+    new: dict[tuple, Deviation] = {}
+    changed: dict[int, Deviation] = {}
+    for f in sorted(findings, key=lambda f: f.at):
+        dev = existing.get(f.key) or new.get(f.key)
+        if dev is None:
+            new[f.key] = Deviation(
+                tank_id=f.tank_id, rule=f.rule, parameter=f.parameter, subject=f.subject, severity=f.severity,
+                opened_at=f.at, last_seen_at=f.at, summary=f.summary[:300], evidence=[f.evidence], evidence_count=1,
+            )
+            continue
+        if any(e.get("ref") == f.evidence["ref"] for e in dev.evidence):
+            continue
+        dev.evidence = (dev.evidence + [f.evidence])[-EVIDENCE_KEEP:]
+        dev.evidence_count += 1
+        dev.last_seen_at = max(dev.last_seen_at, f.at)
+        dev.severity = max(dev.severity, f.severity)
+        dev.summary = f.summary[:300]
+        if dev.pk:
+            changed[dev.pk] = dev
+    if new:
+        outcome.created = bulk_create_with_history(
+            list(new.values()), Deviation, default_user=user, default_change_reason="Opened by rule", default_date=now,
+        )
+    if changed:
+        bulk_update_with_history(
+            list(changed.values()), Deviation,
+            ["evidence", "evidence_count", "last_seen_at", "severity", "summary"],
+            default_user=user, default_change_reason="New evidence", default_date=now,
+        )
+        outcome.updated = list(changed.values())
+    return outcome
