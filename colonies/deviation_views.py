@@ -25,6 +25,14 @@ class CloseForm(forms.Form):
         return text
 
 
+def _evidence_rows(dev) -> list[dict]:
+    rows = []
+    for e in reversed(dev.evidence):
+        details = [(k, v) for k, v in e.items() if k not in ("ref", "at", "seen", "check")]
+        rows.append({"when": e.get("at") or e.get("seen") or "", "details": details, "check": e.get("check")})
+    return rows
+
+
 def _register_qs():
     return Deviation.objects.select_related("tank__room", "closed_by", "acknowledged_by")
 
@@ -80,7 +88,7 @@ def detail(request, pk):
     history = dev.history.select_related("history_user").order_by("-history_date")[:50]
     return render(request, "colonies/deviation_detail.html",
                   {"dev": dev, "form": CloseForm(), "history": history,
-                   "evidence": list(reversed(dev.evidence))})
+                   "evidence": _evidence_rows(dev)})
 
 
 @require_POST
@@ -111,5 +119,5 @@ def close(request, pk):
             return redirect(dev)
     history = dev.history.select_related("history_user").order_by("-history_date")[:50]
     return render(request, "colonies/deviation_detail.html",
-                  {"dev": dev, "form": form, "history": history, "evidence": list(reversed(dev.evidence))},
+                  {"dev": dev, "form": form, "history": history, "evidence": _evidence_rows(dev)},
                   status=400)

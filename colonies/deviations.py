@@ -40,6 +40,7 @@ MIN_GRACE = timedelta(hours=2)
 # above the tank's recent baseline by 3 Poisson standard deviations (mean + 3 sqrt(mean)), or above
 # MORTALITY_FRACTION of the latest population estimate.
 MORTALITY_BASELINE_CHECKS = 14
+MORTALITY_MIN_BASELINE = 5  # fewer earlier checks than this: only the fraction-of-estimate test applies
 MORTALITY_MIN_DEAD = 5  # common practice: a handful of dead worms is normal turnover
 MORTALITY_FRACTION = 0.02  # common practice: 2 % of the culture in one day
 
@@ -209,7 +210,7 @@ def mortality_rule(checks, ctx):
         poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
         estimate = ctx.latest_estimate.get(check.tank_id)
         fraction = dead / estimate if estimate else None
-        above_baseline = dead > poisson_limit
+        above_baseline = len(earlier) >= MORTALITY_MIN_BASELINE and dead > poisson_limit
         above_fraction = fraction is not None and fraction > MORTALITY_FRACTION
         if not (above_baseline or above_fraction):
             continue

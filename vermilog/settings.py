@@ -111,6 +111,9 @@ DATABASES = {
         conn_max_age=env_int("DB_CONN_MAX_AGE", 0),
     )
 }
+if DATABASES["default"]["ENGINE"] == "django.db.backends.sqlite3":
+    # Same backend, with SQLite's real parameter limit (see vermilog/sqlite3/base.py).
+    DATABASES["default"]["ENGINE"] = "vermilog.sqlite3"
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
 
 AUTH_PASSWORD_VALIDATORS = [

@@ -1,0 +1,43 @@
+"""Derived values shown beside readings: the registry applies the published methods correctly."""
+import pytest
+
+from colonies import chemistry, derived
+
+
+def test_unionized_ammonia_uses_emerson_fraction():
+    # Emerson et al. 1975 (REFERENCES.md check): 25 °C, pH 8.0 -> 5.366 % NH3; 2.0 mg/L TAN -> 0.1073 mg/L NH3-N
+    values = derived.derive({"tan_mg_l": 2.0, "ph": 8.0, "temp_c": 25.0}, "freshwater")
+    assert values["nh3_mg_l"] == pytest.approx(2.0 * 0.05366, rel=1e-3)
+
+
+def test_do_saturation_at_20c_fresh_water():
+    # Benson & Krause 1984 / USGS: 9.092 mg/L at 20 °C, S = 0, 1 atm; 9.092 mg/L is 100 %
+    values = derived.derive({"do_mg_l": 9.092, "temp_c": 20.0}, "freshwater")
+    assert values["do_pct_sat"] == pytest.approx(100.0, abs=0.05)
+
+
+def test_marine_saturation_uses_the_salinity_reading():
+    fresh = derived.derive({"do_mg_l": 7.0, "temp_c": 18.0}, "freshwater")["do_pct_sat"]
+    marine = derived.derive({"do_mg_l": 7.0, "temp_c": 18.0, "salinity": 30.0}, "marine")["do_pct_sat"]
+    assert marine == pytest.approx(100 * 7.0 / chemistry.oxygen_solubility_mg_l(18.0, 30.0))
+    assert marine > fresh  # less oxygen dissolves in seawater, so the same mg/L is a higher %
+
+
+def test_conductivity_at_25c():
+    # Standard Methods 2510 linear compensation, α = 0.0191: 1278 µS/cm at 20 °C -> 1412.9 (REFERENCES.md)
+    assert derived.derive({"conductivity_us_cm": 1278.0, "temp_c": 20.0}, "freshwater")["cond25_us_cm"] == \
+        pytest.approx(1412.9, abs=0.1)
+
+
+def test_salinity_from_conductivity_only_for_marine_tanks():
+    # UNESCO 1983 (Tech. Pap. 44): C(35, 15 °C, 0 dbar) = 42.914 mS/cm -> S = 35
+    marine = derived.derive({"conductivity_us_cm": 42914.0, "temp_c": 15.0 / 1.00024}, "marine")
+    assert marine["salinity_from_cond"] == pytest.approx(35.0, abs=1e-3)
+    assert "salinity_from_cond" not in derived.derive({"conductivity_us_cm": 500.0, "temp_c": 20.0}, "freshwater")
+
+
+def test_missing_or_out_of_range_inputs_give_none_not_a_guess():
+    values = derived.derive({"tan_mg_l": 1.0, "temp_c": 20.0}, "freshwater")  # no pH
+    assert values["nh3_mg_l"] is None
+    hot = derived.derive({"do_mg_l": 5.0, "temp_c": 45.0}, "freshwater")  # Benson & Krause fitted to 40 °C
+    assert hot["do_pct_sat"] is None
