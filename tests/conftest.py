@@ -1,0 +1,44 @@
+"""Personas and speed settings shared by every test. Test data builders live in tests/factories.py."""
+import pytest
+from django.contrib.auth.models import User
+
+from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
+from tests.factories import make_user
+
+
+def pytest_configure(config):
+    # WhiteNoise warns on every new client that STATIC_ROOT is missing; tests never collect static files.
+    config.addinivalue_line("filterwarnings", "ignore:No directory at:UserWarning")
+
+
+@pytest.fixture(autouse=True)
+def _fast_password_hasher(settings):
+    # The default PBKDF2 hasher costs ~0.1 s per user created or logged in; MD5 is fine for tests.
+    settings.PASSWORD_HASHERS = ["django.contrib.auth.hashers.MD5PasswordHasher"]
+
+
+@pytest.fixture
+def technician(db):
+    return make_user("tess", role=TECHNICIAN)
+
+
+@pytest.fixture
+def researcher(db):
+    return make_user("rhea", role=RESEARCHER)
+
+
+@pytest.fixture
+def manager(db):
+    return make_user("mona", role=MANAGER)
+
+
+@pytest.fixture
+def outsider(db):
+    """Logged-in user with no role."""
+    return make_user("otto")
+
+
+@pytest.fixture
+def superuser(db):
+    """Holds no group; counts as a manager."""
+    return User.objects.create_superuser("root", "root@example.invalid", "pw")
