@@ -1,3 +1,5 @@
+from datetime import timedelta
+
 from django import forms
 from django.utils import timezone
 
@@ -78,7 +80,7 @@ class CheckEntryForm(forms.Form):
         value = self.cleaned_data.get("dead_removed")
         if value is not None and value < 0:
             raise forms.ValidationError(
-                f"Tank {self.tank.code}, dead removed: {value} is impossible; a count cannot be negative."
+                f"Tank {self.tank.code}, dead removed: {value} is impossible; allowed range 0 or more."
             )
         return value
 
@@ -99,7 +101,7 @@ class CheckEntryForm(forms.Form):
         return (
             any(c.get(p.key) is not None for p in self.params)
             or bool(c.get("activity") or c.get("dead_removed") or c.get("clumping") or c.get("surface_film")
-                    or c.get("odour") or c.get("clarity") or c.get("note"))
+                    or c.get("odour") or c.get("clarity") or c.get("note") or c.get("corrective_action"))
         )
 
     def row(self) -> dict:
@@ -143,7 +145,7 @@ class ObservedAtForm(forms.Form):
 
     def clean_observed_at(self):
         value = self.cleaned_data.get("observed_at")
-        if value and value > timezone.now() + timezone.timedelta(minutes=5):
+        if value and value > timezone.now() + timedelta(minutes=5):
             raise forms.ValidationError(f"Observed at: {value:%Y-%m-%d %H:%M} is in the future.")
         return value
 
@@ -169,7 +171,7 @@ class FeedingForm(forms.ModelForm):
     def clean_amount(self):
         amount = self.cleaned_data["amount"]
         if amount is not None and amount < 0:
-            raise forms.ValidationError(f"Amount: {amount:g} is impossible; it cannot be negative.")
+            raise forms.ValidationError(f"Amount: {amount:g} is impossible; allowed range 0 or more.")
         return amount
 
 
@@ -209,7 +211,7 @@ class CensusForm(forms.ModelForm):
             except ValueError:
                 raise forms.ValidationError(f"Aliquot counts: '{token}' is not a whole number.") from None
             if n < 0:
-                raise forms.ValidationError(f"Aliquot counts: {n} is impossible; counts cannot be negative.")
+                raise forms.ValidationError(f"Aliquot counts: {n} is impossible; allowed range 0 or more.")
             counts.append(n)
         return counts
 

@@ -1,4 +1,5 @@
 import csv
+from datetime import timedelta
 
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
@@ -9,7 +10,7 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import derived, parameters, services
+from . import derived, health_views, parameters, services
 from .filters import CheckFilter, TankFilter
 from .flags import describe, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
@@ -44,7 +45,7 @@ def home(request):
             entry["checked_today"] += 1
         for item in tank.due(now):
             if item["is_due"]:
-                overdue = item["due_at"] is not None and item["due_at"] < now - timezone.timedelta(hours=2)
+                overdue = item["due_at"] is not None and item["due_at"] < now - timedelta(hours=2)
                 entry["due"].setdefault(item["label"], []).append({"tank": tank, "overdue": overdue or item["due_at"] is None})
     for entry in rooms.values():
         entry["percent"] = round(100 * entry["checked_today"] / entry["tanks"]) if entry["tanks"] else 0
@@ -112,7 +113,8 @@ def round_view(request, room_code=None):
                 messages.success(request, msg)
             return redirect(request.path)
         for code in unknown:
-            messages.error(request, f"Tank code '{code}' does not exist or is retired; nothing was saved.")
+            messages.error(request, f"Tank code '{code}' does not exist or is retired; allowed: the codes of "
+                                    f"tanks in use {'in ' + room.name if room else 'in any room'}. Nothing was saved.")
         messages.error(request, "Nothing was saved. Correct the fields marked below and save again.")
     ctx = {
         "room": room, "rooms": Room.objects.all(), "rows": _round_rows(forms), "when": when,
@@ -154,6 +156,8 @@ def tank_list(request):
 
 def _tank_page_ctx(request, tank, **forms):
     tank_with = Tank.objects.for_round().filter(pk=tank.pk).first() or tank
+    summary = health_views.tank_summary(tank)  # population, growth, forecast, mortality, splits: fixed queries
+    split_form, part_forms = health_views.split_forms(tank, latest=summary.latest.value if summary.latest else None)
     checks = list(tank.check_set.current().select_related("recorded_by")[:30])
     params = tank.relevant_parameters()
     columns = params + derived.for_habitat(tank.species.habitat)
@@ -181,6 +185,9 @@ def _tank_page_ctx(request, tank, **forms):
         "census_form": forms.get("census_form") or CensusForm(prefix="census"),
         "parents": tank.founded_from.all(),
         "offspring": tank.offspring.all(),
+        "summary": summary,
+        "split_form": forms.get("split_form") or split_form,
+        "part_forms": forms.get("part_forms") or part_forms,
     }
     return ctx
 

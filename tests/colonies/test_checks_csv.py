@@ -1,0 +1,62 @@
+"""The checks CSV export: columns from the parameter registry, filters by tank and room."""
+import pytest
+from django.urls import reverse
+
+from colonies import parameters
+from tests.factories import csv_rows, make_check, make_room, make_tank
+
+
+@pytest.fixture
+def tanks(db):
+    return make_tank(code="FW-01", room=make_room(code="fw-1")), make_tank(code="MA-01", room=make_room(code="mar-1"))
+
+
+def test_csv_header_has_a_column_for_every_registered_parameter(client, researcher, db):
+    client.force_login(researcher)
+
+    response = client.get(reverse("colonies:checks-csv"))
+
+    assert response.status_code == 200
+    assert response["Content-Type"] == "text/csv; charset=utf-8"
+    assert response["Content-Disposition"] == 'attachment; filename="vermilog-checks.csv"'
+    header = csv_rows(response)[0]
+    # A column is the key, with the unit in brackets when there is one: "temp_c [°C]", "ph".
+    keys = [column.split(" [")[0] for column in header]
+    for p in parameters.PARAMETERS:
+        expected = f"{p.key} [{p.unit}]" if p.unit else p.key
+        assert expected in header
+    assert len(keys) == len(set(keys))
+
+
+def test_csv_row_holds_the_values_under_their_parameter_columns(client, technician, tanks):
+    check = make_check(tanks[0], user=technician, ph=7.25, temp_c=22.5, dead_removed=3)
+    client.force_login(technician)
+
+    header, row = csv_rows(client.get(reverse("colonies:checks-csv")))
+
+    record = dict(zip(header, row))
+    assert (record["check_id"], record["tank"], record["room"], record["recorded_by"]) == (
+        str(check.pk), "FW-01", "fw-1", technician.username)
+    assert (record["ph"], record["temp_c [°C]"], record["dead_removed"], record["do_mg_l [mg/L]"]) == (
+        "7.25", "22.5", "3", "")
+
+
+@pytest.mark.parametrize("query,expected", [({"tank": "fw-01"}, ["FW-01"]), ({}, ["FW-01", "MA-01"])])
+def test_csv_filters_by_tank(client, technician, tanks, query, expected):
+    for tank in tanks:
+        make_check(tank, user=technician, ph=7.0)
+    client.force_login(technician)
+
+    rows = csv_rows(client.get(reverse("colonies:checks-csv"), query))
+
+    assert sorted(row[1] for row in rows[1:]) == expected
+
+
+def test_csv_filters_by_room(client, technician, tanks):
+    for tank in tanks:
+        make_check(tank, user=technician, ph=7.0)
+    client.force_login(technician)
+
+    rows = csv_rows(client.get(reverse("colonies:checks-csv"), {"room": tanks[1].room.pk}))
+
+    assert [row[1] for row in rows[1:]] == ["MA-01"]

@@ -1,0 +1,93 @@
+"""Species care profiles: read by everyone with a role, edited by managers with a reason."""
+import pytest
+from django.urls import reverse
+
+from colonies.models import CareTarget, Species
+from tests.factories import make_species, make_tank, page_text, species_edit_data
+
+
+@pytest.fixture
+def species(db):
+    return make_species(scientific_name="Testworm exemplaris", common_name="Test worm", targets={"ph": (6.0, 8.0)},
+                        sources={"feeding_interval_days": "lab setting"})
+
+
+def test_species_list_counts_tanks_in_use(client, researcher, species):
+    make_tank(species=species)
+    make_tank(species=species, status="retired")
+    client.force_login(researcher)
+
+    response = client.get(reverse("colonies:species-list"))
+
+    listed = {s.scientific_name: s.n_tanks for s in response.context["species_list"]}
+    assert listed["Testworm exemplaris"] == 1
+
+
+def test_species_page_shows_targets_and_sources(client, researcher, species):
+    client.force_login(researcher)
+
+    response = client.get(reverse("colonies:species-detail", args=[species.pk]))
+
+    text = page_text(response)
+    assert "test value" in text  # the care target's source
+    assert ("feeding_interval_days", "lab setting") in response.context["sources"]
+    rows = {p.key: t for p, t in response.context["rows"]}
+    assert (rows["ph"].low, rows["ph"].high) == (6.0, 8.0)
+    assert rows["temp_c"] is None
+    assert "salinity" not in rows  # marine only
+
+
+def test_manager_edits_profile_and_adds_a_target_with_a_reason(client, manager, species):
+    client.force_login(manager)
+
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]), species_edit_data(
+        species, reason="Aligned with SOP v3", feeding_interval_days=4,
+        new_targets=[("temp_c", 19.0, 23.0, "SOP v3")]))
+
+    assert response.status_code == 302
+    species.refresh_from_db()
+    assert species.feeding_interval_days == 4
+    latest = species.history.order_by("-history_date", "-history_id").first()
+    assert (latest.history_user, latest.history_change_reason) == (manager, "Aligned with SOP v3")
+    target = CareTarget.objects.get(species=species, parameter="temp_c")
+    assert (target.low, target.high, target.source) == (19.0, 23.0, "SOP v3")
+    assert target.history.get().history_change_reason == "Aligned with SOP v3"
+
+
+def test_profile_edit_without_reason_is_refused(client, manager, species):
+    client.force_login(manager)
+
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]),
+                           species_edit_data(species, reason="", feeding_interval_days=4))
+
+    assert response.status_code == 400
+    species.refresh_from_db()
+    assert species.feeding_interval_days != 4
+    assert species.history.count() == 1
+
+
+@pytest.mark.parametrize("new_target,field", [
+    (("temp_c", 25.0, 19.0, "typo"), "high"),  # low above high
+    (("ph", None, None, "x"), None),  # duplicate parameter (ph exists)
+    (("do_mg_l", -1.0, 8.0, "typo"), "low"),  # outside the physical range
+])
+def test_invalid_care_target_is_refused_and_nothing_saved(client, manager, species, new_target, field):
+    client.force_login(manager)
+    key, low, high, source = new_target
+    data = species_edit_data(species, feeding_interval_days=4, new_targets=[(key, "" if low is None else low,
+                                                                             "" if high is None else high, source)])
+
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]), data)
+
+    assert response.status_code == 400
+    assert CareTarget.objects.filter(species=species).count() == 1
+    species.refresh_from_db()
+    assert species.feeding_interval_days != 4
+    if field:
+        assert field in response.context["targets"].forms[1].errors
+
+
+def test_species_edit_of_unknown_species_is_404(client, manager):
+    client.force_login(manager)
+    assert client.get(reverse("colonies:species-edit", args=[999999])).status_code == 404
+    assert Species.objects.filter(pk=999999).count() == 0
