@@ -16,6 +16,7 @@ class CloseForm(forms.Form):
     corrective_action = forms.CharField(
         widget=forms.Textarea(attrs={"rows": 3}), label="Corrective action",
         help_text="What was done about it, and what was checked afterwards. Required to close.",
+        error_messages={"required": "Corrective action: describe what was done before closing."},
     )
 
     def clean_corrective_action(self):
