@@ -230,7 +230,7 @@ def _deviations(rng, checks, techs, manager, now):
     recent = now - timedelta(days=4)
     for dev in Deviation.objects.select_related("tank").order_by("opened_at"):
         if dev.last_seen_at < recent:
-            action = _action_for(dev) or "Checked the tank and its equipment; readings back within target at the next check."
+            action = _action_for(dev) or "Checked the tank and its equipment; all normal at the next check."
             who = manager if dev.severity == Deviation.Severity.MAJOR else rng.choice(techs)
             dev.acknowledge(user=who)
             dev.close(user=who, corrective_action=action)
@@ -242,11 +242,23 @@ def _deviations(rng, checks, techs, manager, now):
             dev.acknowledge(user=rng.choice(techs))
 
 
+GENERIC_ACTIONS = {
+    Deviation.Rule.OUT_OF_TARGET: "Re-measured with a calibrated meter; partial water change; back within target next day.",
+    Deviation.Rule.DRIFT: "Looked at the trend with the technician team; heater and aeration checked; trend levelled off.",
+    Deviation.Rule.MORTALITY: "Dead animals removed and examined; no film or odour; water changed; counts normal since.",
+    Deviation.Rule.STOCKING_DENSITY: "Culture split into a new tank to bring the density back under the maximum.",
+    Deviation.Rule.MISSED_CHECK: "Check done late; rota changed so weekend checks are covered.",
+    Deviation.Rule.FEEDING_OVERDUE: "Fed the same day; feeding added to the shared rota.",
+    Deviation.Rule.WATER_CHANGE_OVERDUE: "Water changed the same day; reserve water prepared a day ahead now.",
+    Deviation.Rule.CENSUS_OVERDUE: "Census done the next morning.",
+}
+
+
 def _action_for(dev) -> str:
     for code, first, last, key, fn, action in EXCURSIONS:
         if dev.tank and dev.tank.code == code and action and dev.parameter in (key, "", "do_pct_sat", "nh3_mg_l"):
             return action
-    return ""
+    return GENERIC_ACTIONS.get(dev.rule, "")
 
 
 def _marine_conductivity_us_cm(salinity: float, temp_c: float) -> float:
