@@ -387,3 +387,88 @@ def apply_findings(findings: list[Finding], now: datetime | None = None, user=No
         )
         outcome.updated = list(changed.values())
     return outcome
+
+
+# ---------------------------------------------------------------------------------------------
+# Stocking density (censuses and splits)
+# ---------------------------------------------------------------------------------------------
+# Severity by how far the density is above the species maximum (a lab setting, not a published
+# value): up to 10 % over is minor, up to 50 % moderate, beyond that major.
+DENSITY_MODERATE_RATIO = 1.10
+DENSITY_MAJOR_RATIO = 1.50
+
+
+def density_finding(tank: Tank, estimate: float | None, at: datetime, ref: str, what: str) -> Finding | None:
+    """A finding when `estimate` animals in the tank exceed its species' maximum density (needs tank.species)."""
+    limit = tank.species.max_density_per_l
+    if not limit or estimate is None or not tank.volume_l:
+        return None
+    density = estimate / tank.volume_l
+    if density <= limit:
+        return None
+    ratio = density / limit
+    severity = (Severity.MAJOR if ratio > DENSITY_MAJOR_RATIO
+                else Severity.MODERATE if ratio > DENSITY_MODERATE_RATIO else Severity.MINOR)
+    return Finding(
+        tank.pk, Rule.STOCKING_DENSITY, severity,
+        f"{density:.0f} animals/L ({what} {estimate:.0f} animals in {tank.volume_l:g} L) is above the maximum "
+        f"{limit} animals/L ({100 * ratio:.0f} %)",
+        {"ref": ref, "at": _local(at), "estimate": round(estimate, 1), "volume_l": tank.volume_l,
+         "density_per_l": round(density, 2), "max_per_l": limit},
+        at,
+    )
+
+
+def evaluate_censuses(censuses) -> Iterable[Finding]:
+    """Record rule for censuses: each current census whose estimate is above the maximum density."""
+    censuses = [c for c in censuses if c.pk and not c.is_voided and c.estimate is not None]
+    if not censuses:
+        return
+    tanks = Tank.objects.select_related("species").in_bulk({c.tank_id for c in censuses})
+    for c in censuses:
+        finding = density_finding(tanks[c.tank_id], c.estimate, c.observed_at, f"census:{c.pk}", "census estimate")
+        if finding:
+            yield finding
+
+
+def latest_estimates(tank_ids) -> dict[int, tuple[float, datetime, str, str]]:
+    """Each tank's newest population estimate: (animals, when, evidence ref, what), three queries.
+
+    The newest of: its latest current census, the animals that stayed at its latest split, and
+    (for a tank set up by a split) the animals moved into it. A split into an existing tank does
+    not say how many animals are there in total, so it is not an estimate of its own.
+    """
+    from .models import Split, SplitPart
+
+    ids = list(tank_ids)
+    out: dict[int, tuple[float, datetime, str, str]] = {}
+
+    def offer(tank_id, value, at, ref, what):
+        if value is not None and (tank_id not in out or at > out[tank_id][1]):
+            out[tank_id] = (value, at, ref, what)
+
+    newest_census = Census.objects.current().filter(tank=OuterRef("tank")).order_by("-observed_at", "-pk")
+    for pk, tank_id, value, at in (Census.objects.current().filter(tank_id__in=ids, pk=Subquery(newest_census.values("pk")[:1]))
+                                   .values_list("pk", "tank_id", "estimate", "observed_at")):
+        offer(tank_id, value, at, f"census:{pk}", "census estimate")
+    newest_split = Split.objects.current().filter(source=OuterRef("source")).order_by("-split_at", "-pk")
+    for pk, tank_id, value, at in (Split.objects.current().filter(source_id__in=ids, pk=Subquery(newest_split.values("pk")[:1]))
+                                   .values_list("pk", "source_id", "stayed", "split_at")):
+        offer(tank_id, value, at, f"split:{pk}", "left after a split:")
+    for pk, tank_id, value, at in (SplitPart.objects.filter(destination_id__in=ids, created_tank=True,
+                                                            split__voided_at__isnull=True)
+                                   .values_list("split_id", "destination_id", "animals", "split__split_at")):
+        offer(tank_id, value, at, f"split:{pk}:in", "moved in at its set-up:")
+    return out
+
+
+@scan_rule
+def stocking_density_rule(tanks, now):
+    """Scan rule: each tank's newest estimate against its species' maximum density."""
+    latest = latest_estimates(t.pk for t in tanks if t.species.max_density_per_l)
+    for tank in tanks:
+        if tank.pk in latest:
+            value, at, ref, what = latest[tank.pk]
+            finding = density_finding(tank, value, at, ref, what)
+            if finding:
+                yield finding

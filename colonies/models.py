@@ -643,3 +643,76 @@ class Deviation(models.Model):
         self._history_user = user
         self._change_reason = "Closed with corrective action"
         self.save()
+
+
+# ---------------------------------------------------------------------------------------------
+# Splits: part of a culture moved to other tanks (lineage and the animal books)
+# ---------------------------------------------------------------------------------------------
+class Split(Voidable):
+    """A culture divided: some animals stay in the source, the rest go to one or more tanks.
+
+    The numbers are estimates (worms are rarely counted one by one), so the books need not
+    balance exactly; the tank page shows the difference. Recorded by services.record_split().
+    """
+
+    source = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="splits_out")
+    split_at = models.DateTimeField(default=timezone.now, help_text="When the animals were divided.")
+    recorded_at = models.DateTimeField(auto_now_add=True)
+    recorded_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+")
+    source_before = models.FloatField(
+        validators=[MinValueValidator(1)],
+        help_text="Estimated animals in the source tank just before the split.",
+    )
+    stayed = models.FloatField(validators=[MinValueValidator(0)],
+                               help_text="Estimated animals left in the source tank.")
+    note = models.TextField(blank=True)
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["-split_at"]
+        get_latest_by = "split_at"
+        constraints = [
+            models.CheckConstraint(condition=Q(source_before__gt=0), name="split_source_before_positive"),
+            models.CheckConstraint(condition=Q(stayed__gte=0), name="split_stayed_not_negative"),
+        ]
+        indexes = [
+            # The tank page's and the overview's population series (latest split per tank).
+            models.Index(fields=["source", "-split_at"], name="split_source_recent"),
+        ]
+
+    def __str__(self):
+        return f"Split of {self.source} on {timezone.localtime(self.split_at):%Y-%m-%d}"
+
+    def get_absolute_url(self):
+        return self.source.get_absolute_url()
+
+    @property
+    def tank(self):
+        """The tank the split is filed under (the source), so generic record pages can link back."""
+        return self.source
+
+
+class SplitPart(models.Model):
+    """One destination of a split and how many animals (estimated) went there."""
+
+    split = models.ForeignKey(Split, on_delete=models.PROTECT, related_name="parts")
+    destination = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="split_parts_in")
+    animals = models.FloatField(validators=[MinValueValidator(0)], help_text="Estimated animals moved to this tank.")
+    created_tank = models.BooleanField(default=False, editable=False,
+                                       help_text="The destination tank was set up by this split.")
+    added_lineage = models.BooleanField(default=False, editable=False,
+                                        help_text="This split added the source to the destination's lineage.")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["split", "destination__code"]
+        constraints = [
+            models.CheckConstraint(condition=Q(animals__gte=0), name="split_part_animals_not_negative"),
+            models.UniqueConstraint(fields=["split", "destination"], name="split_part_one_per_destination"),
+        ]
+
+    def __str__(self):
+        return f"{self.animals:.0f} animals to {self.destination}"
+
+    def get_absolute_url(self):
+        return self.destination.get_absolute_url()

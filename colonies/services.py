@@ -1,11 +1,15 @@
 """Writes that span several rows or models. Each is one transaction: all or nothing."""
+from dataclasses import dataclass
+from datetime import timedelta
+
+from django.core.exceptions import ValidationError
 from django.db import transaction
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history
 
 from . import deviations, parameters, population
 from .flags import flags_for
-from .models import Census, Check, Feeding, WaterChange
+from .models import Census, Check, Feeding, Split, SplitPart, Tank, WaterChange
 
 OBSERVATION_FIELDS = ("activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "note",
                       "corrective_action")
@@ -121,10 +125,111 @@ def apply_estimate(census: Census) -> Census:
 @transaction.atomic
 def record_census(*, user, census: Census) -> Census:
     apply_estimate(census)
-    return _save_simple(census, user=user, reason="Census logged")
+    _save_simple(census, user=user, reason="Census logged")
+    deviations.apply_findings(list(deviations.evaluate_censuses([census])))
+    return census
 
 
 @transaction.atomic
 def void_record(*, user, record, reason: str):
     record.void(user=user, reason=reason)
     return record
+
+
+# ---------------------------------------------------------------------------------------------
+# Splits
+# ---------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class NewTank:
+    """A tank to set up as a split's destination; room, species, system and substrate come from the source."""
+
+    code: str
+    volume_l: float
+    position: str = ""
+
+
+@transaction.atomic
+def record_split(*, user, source: Tank, source_before: float, stayed: float, parts: list[tuple[Tank | NewTank, float]],
+                 split_at=None, note: str = "") -> Split:
+    """Record a split, set up any new destination tanks and add the source to each destination's lineage.
+
+    All or nothing. Raises ValueError (message names the field, value and allowed range) on
+    impossible input; the caller shows it. The books need not balance (estimates): the tank page
+    shows the difference with population.split_balance.
+    """
+    split_at = split_at or timezone.now()
+    if source.status == Tank.Status.RETIRED:
+        raise ValueError(f"Tank {source.code} is retired; it cannot be split.")
+    if split_at > timezone.now() + timedelta(minutes=5):
+        raise ValueError(f"Split at: {timezone.localtime(split_at):%Y-%m-%d %H:%M} is in the future.")
+    if not parts:
+        raise ValueError("Destinations: a split needs at least one destination tank.")
+    population.split_balance(  # raises on impossible numbers
+        source_before, [stayed] + [animals for _, animals in parts])
+    split = Split(source=source, split_at=split_at, recorded_by=user, source_before=source_before, stayed=stayed,
+                  note=note)
+    split._history_user = user
+    split._change_reason = "Split recorded"
+    split.full_clean()
+    split.save()
+    destinations = []
+    for destination, animals in parts:
+        created = isinstance(destination, NewTank)
+        if created:
+            destination = _new_tank_from(source, destination, user=user, started_on=timezone.localdate(split_at))
+        elif destination.pk == source.pk:
+            raise ValueError(f"Destination: {source.code} is the source tank; choose another tank.")
+        elif destination.species_id != source.species_id:
+            raise ValueError(f"Destination: {destination.code} holds {destination.species}, not {source.species}.")
+        elif destination.status == Tank.Status.RETIRED:
+            raise ValueError(f"Destination: {destination.code} is retired.")
+        if destination.pk in {d.pk for d in destinations}:
+            raise ValueError(f"Destination: {destination.code} is listed twice; enter its animals once.")
+        linked = not created and destination.founded_from.filter(pk=source.pk).exists()
+        part = SplitPart(split=split, destination=destination, animals=animals, created_tank=created,
+                         added_lineage=not linked)
+        part._history_user = user
+        part._change_reason = "Split recorded"
+        part.full_clean()
+        part.save()
+        if not linked:
+            destination._history_user = user
+            destination._change_reason = f"Founded from {source.code} by a split"
+            destination.founded_from.add(source)
+        destinations.append(destination)
+    tanks = list(Tank.objects.select_related("species").filter(pk__in=[source.pk] + [d.pk for d in destinations]))
+    deviations.apply_findings(list(deviations.stocking_density_rule(tanks, split_at)), user=user)
+    return split
+
+
+def _new_tank_from(source: Tank, spec: NewTank, *, user, started_on) -> Tank:
+    if Tank.objects.filter(code=spec.code).exists():
+        raise ValueError(f"New tank code: {spec.code} is already in use; choose another code.")
+    tank = Tank(code=spec.code, position=spec.position, volume_l=spec.volume_l, room=source.room,
+                species=source.species, system=source.system, substrate=source.substrate, started_on=started_on,
+                notes=f"Set up from {source.code} by a split.")
+    tank._history_user = user
+    tank._change_reason = f"Set up by a split of {source.code}"
+    try:
+        tank.full_clean()
+    except ValidationError as error:
+        raise ValueError("; ".join(f"New tank {name}: {' '.join(msgs)}" for name, msgs in error.message_dict.items()))
+    tank.save()
+    return tank
+
+
+@transaction.atomic
+def void_split(*, user, split: Split, reason: str) -> Split:
+    """Void a split recorded in error. Tanks it set up stay (retire them if empty); a lineage edge
+    it added is removed unless another current split also links the two tanks (the tank
+    history keeps both changes)."""
+    split.void(user=user, reason=reason)
+    for part in split.parts.filter(added_lineage=True).select_related("destination"):
+        still_linked = SplitPart.objects.filter(
+            split__source_id=split.source_id, destination_id=part.destination_id, split__voided_at__isnull=True,
+        ).exists()
+        if not still_linked:
+            part.destination._history_user = user
+            part.destination._change_reason = f"Split voided: {reason}"
+            part.destination.founded_from.remove(split.source_id)
+    return split

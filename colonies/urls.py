@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import deviation_views, views
+from . import deviation_views, health_views, views
 
 app_name = "colonies"
 
@@ -12,6 +12,15 @@ urlpatterns = [
     path("tanks/<str:code>/", views.tank_detail, name="tank-detail"),
     path("tanks/<str:code>/history/", views.tank_history, name="tank-history"),
     path("tanks/<str:code>/add/<slug:kind>/", views.tank_add, name="tank-add"),
+    path("tanks/<str:code>/split/", health_views.tank_split, name="tank-split"),
+    path("tanks/<str:code>/lineage/", health_views.tank_lineage, name="tank-lineage"),
+    path("tanks/<str:code>/health/", health_views.tank_health, name="tank-health"),
+    path("tanks/<str:code>/health/plot/", health_views.tank_plot, name="tank-plot"),
+    path("tanks/<str:code>/health.csv", health_views.tank_plot_csv, name="tank-plot-csv"),
+    path("splits/<int:pk>/void/", health_views.split_void, name="split-void"),
+    path("health/", health_views.health_overview, name="health-overview"),
+    path("health/plot/", health_views.health_overview_plot, name="health-overview-plot"),
+    path("health.csv", health_views.health_overview_csv, name="health-overview-csv"),
     path("checks/<int:pk>/", views.check_detail, name="check-detail"),
     path("checks/<int:pk>/edit/", views.check_edit, name="check-edit"),
     path("checks.csv", views.checks_csv, name="checks-csv"),

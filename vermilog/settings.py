@@ -145,6 +145,17 @@ STORAGES = {
         )
     },
 }
+# Rendered colony-health plots (colonies/health_views.py); keys carry a records version, so a new
+# record makes a new key. Per-process memory suits one server process; a deployment with several
+# processes can point this at a shared backend.
+CACHES = {
+    "default": {
+        "BACKEND": "django.core.cache.backends.locmem.LocMemCache",
+        "LOCATION": "vermilog-plots",
+        "OPTIONS": {"MAX_ENTRIES": env_int("PLOT_CACHE_ENTRIES", 500)},
+    }
+}
+
 MEDIA_ROOT = Path(os.environ.get("MEDIA_ROOT", BASE_DIR / "media"))
 MEDIA_URL = "media/"
 

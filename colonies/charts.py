@@ -1,0 +1,408 @@
+"""Colony-health plots: tidy rows in, SVG or PNG bytes out.
+
+Pure: no Django import, so the figures can be made from a notebook with the CSV a page offers.
+The views build the rows (tank_frame / overview_frame) and send the same frame as CSV.
+
+Conventions: Okabe & Ito's colour-blind-safe palette ("Color Universal Design", 2008); every
+series also differs by marker shape or line style, so a grey-scale print still reads; axis
+labels carry units from the parameter registry; times are the lab's local time.
+"""
+from __future__ import annotations
+
+import io
+import math
+from collections.abc import Iterable, Mapping
+from datetime import datetime
+
+import matplotlib
+
+matplotlib.use("Agg")  # server-side rendering only; must precede any pyplot import elsewhere
+
+import matplotlib.dates as mdates  # noqa: E402
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+from matplotlib.lines import Line2D  # noqa: E402
+
+from . import parameters  # noqa: E402  (pure registry)
+
+__all__ = ["OVERVIEW_COLUMNS", "TANK_COLUMNS", "OKABE_ITO", "overview_figure", "overview_frame", "tank_figure",
+           "tank_frame", "to_csv"]
+
+OKABE_ITO = {
+    "black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
+    "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7",
+}
+INK = "#1d2a2c"
+GRID = "#d9dcd5"
+BAND = "#009E73"  # care band fill (green, light alpha)
+
+FORMATS = {"svg": "image/svg+xml", "png": "image/png"}
+
+# One tidy table per chart. `series` says what a row is:
+#   population  census or split estimate (value, lower, upper; note = "census" or "split")
+#   fit         the fitted growth curve (value; note = model)
+#   capacity    maximum stocking (value, constant)
+#   reading     a measured parameter (parameter, unit, value, target_low/high, flagged = "", "high", "low")
+#   deaths      dead removed per day (value)
+#   feeding / water_change / split   events (value empty or the amount)
+TANK_COLUMNS = ["series", "at", "parameter", "label", "unit", "value", "lower", "upper",
+                "target_low", "target_high", "flagged", "note"]
+OVERVIEW_COLUMNS = ["tank", "room", "species", "rank", "series", "at", "value", "lower", "upper", "unit", "note"]
+
+# Overview metrics, in the order the health line shows them.
+OVERVIEW_METRICS = {
+    "status": "",
+    "estimate": "animals",
+    "density_pct_of_max": "% of max",
+    "growth_rate_per_day": "per day",
+    "mortality_per_1000_animal_days": "deaths per 1000 animal-days",
+    "deaths": "animals",
+    "flagged_checks_pct": "% of checks",
+    "open_deviations": "deviations",
+}
+
+
+# ---------------------------------------------------------------------------------------------
+# Frames
+# ---------------------------------------------------------------------------------------------
+def tank_frame(rows: Iterable[Mapping]) -> pd.DataFrame:
+    """A tank chart's rows as a DataFrame with exactly TANK_COLUMNS (missing keys empty)."""
+    frame = pd.DataFrame(list(rows), columns=TANK_COLUMNS)
+    return _typed(frame)
+
+
+def overview_frame(rows: Iterable[Mapping]) -> pd.DataFrame:
+    frame = pd.DataFrame(list(rows), columns=OVERVIEW_COLUMNS)
+    return _typed(frame)
+
+
+def _typed(frame: pd.DataFrame) -> pd.DataFrame:
+    for col in ("value", "lower", "upper", "target_low", "target_high"):
+        if col in frame:
+            frame[col] = pd.to_numeric(frame[col], errors="coerce")
+    if "at" in frame:
+        frame["at"] = pd.to_datetime(frame["at"])
+    return frame
+
+
+def to_csv(frame: pd.DataFrame) -> bytes:
+    return frame.to_csv(index=False, date_format="%Y-%m-%dT%H:%M:%S%z").encode("utf-8")
+
+
+def _naive(times: pd.Series) -> pd.Series:
+    """Matplotlib plots local wall-clock time; drop the zone after the view localised the times."""
+    times = pd.to_datetime(times)
+    if getattr(times.dt, "tz", None) is not None:
+        times = times.dt.tz_localize(None)
+    return times
+
+
+def _naive_dt(value: datetime | None) -> datetime | None:
+    if value is None:
+        return None
+    value = pd.Timestamp(value)
+    return (value.tz_localize(None) if value.tzinfo else value).to_pydatetime()
+
+
+# ---------------------------------------------------------------------------------------------
+# Rendering
+# ---------------------------------------------------------------------------------------------
+def _render(fig: Figure, fmt: str) -> bytes:
+    if fmt not in FORMATS:
+        raise ValueError(f"format must be one of {', '.join(FORMATS)}, got {fmt!r}")
+    buffer = io.BytesIO()
+    with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "vermilog"}):
+        # No creation date in the file: the same data give the same bytes.
+        metadata = {"Date": None} if fmt == "svg" else {"Software": "Vermilog"}
+        fig.savefig(buffer, format=fmt, dpi=110, metadata=metadata)
+    return buffer.getvalue()
+
+
+def _style(ax, ylabel: str = "") -> None:
+    ax.set_facecolor("white")
+    ax.grid(True, color=GRID, linewidth=0.6)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(labelsize=8, colors=INK)
+    if ylabel:
+        ax.set_ylabel(ylabel, fontsize=8.5, color=INK)
+
+
+def _date_axis(ax, start: datetime, end: datetime, labels: bool = True) -> None:
+    ax.set_xlim(start, end)
+    locator = mdates.AutoDateLocator(minticks=4, maxticks=9)
+    ax.xaxis.set_major_locator(locator)
+    # No offset ("2026-Dec") under every panel: the period is written in the figure's footer.
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
+    ax.tick_params(axis="x", labelbottom=labels)
+
+
+def _empty(ax, text: str) -> None:
+    ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center", fontsize=9, color="#5b6b6e")
+
+
+def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: datetime, fmt: str = "svg",
+                subtitle: str = "") -> bytes:
+    """Multi-panel health figure of one tank over [start, end].
+
+    Panels, sharing the time axis: population (estimates with interval bars, fitted curve, maximum
+    stocking); husbandry events (feedings, water changes, splits); dead removed per day; then one
+    panel per measured parameter with its care band shaded and out-of-target points marked
+    (▲ above, ▼ below). Works with empty or short data (panels say "no data").
+    """
+    start, end = _naive_dt(start), _naive_dt(end)
+    if end <= start:
+        raise ValueError(f"end must be after start = {start:%Y-%m-%d %H:%M}, got {end:%Y-%m-%d %H:%M}")
+    frame = frame.copy()
+    frame["at"] = _naive(frame["at"])
+    readings = frame[frame["series"] == "reading"]
+    keys = [k for k in parameters.KEYS if k in set(readings["parameter"])]
+    n_param_rows = math.ceil(len(keys) / 2)
+    heights = [2.4, 0.75, 1.1] + [1.45] * n_param_rows
+    fig = Figure(figsize=(11, 0.9 + sum(heights)), layout="constrained")
+    grid = fig.add_gridspec(len(heights), 2, height_ratios=heights)
+    ax_pop = fig.add_subplot(grid[0, :])
+    ax_events = fig.add_subplot(grid[1, :], sharex=ax_pop)
+    ax_dead = fig.add_subplot(grid[2, :], sharex=ax_pop)
+    fig.suptitle(title, x=0.01, ha="left", fontsize=12, fontweight="bold", color=INK)
+    if subtitle:
+        fig.supxlabel(subtitle, x=0.01, ha="left", fontsize=8, color="#5b6b6e")
+
+    _population_panel(ax_pop, frame)
+    _events_panel(ax_events, frame)
+    _deaths_panel(ax_dead, frame)
+    param_axes = []
+    for i, key in enumerate(keys):
+        ax = fig.add_subplot(grid[3 + i // 2, i % 2], sharex=ax_pop)
+        _parameter_panel(ax, readings[readings["parameter"] == key], parameters.BY_KEY[key])
+        param_axes.append(ax)
+    last_row = {len(keys) - 1, len(keys) - 2}  # the bottom panel of each column
+    _date_axis(ax_pop, start, end)
+    _date_axis(ax_events, start, end, labels=False)
+    _date_axis(ax_dead, start, end, labels=not keys)
+    for i, ax in enumerate(param_axes):
+        _date_axis(ax, start, end, labels=i in last_row)
+    return _render(fig, fmt)
+
+
+def _population_panel(ax, frame: pd.DataFrame) -> None:
+    _style(ax, "Population (animals)")
+    pop = frame[frame["series"] == "population"]
+    census = pop[pop["note"] != "split"]
+    split = pop[pop["note"] == "split"]
+    fit = frame[frame["series"] == "fit"].sort_values("at")
+    capacity = frame[frame["series"] == "capacity"]
+    handles = []
+    if not census.empty:
+        low = (census["value"] - census["lower"]).clip(lower=0).fillna(0)
+        high = (census["upper"] - census["value"]).clip(lower=0).fillna(0)
+        ax.errorbar(census["at"], census["value"], yerr=[low, high], fmt="o", color=OKABE_ITO["blue"],
+                    ecolor=OKABE_ITO["blue"], elinewidth=1.2, capsize=3, markersize=5, zorder=3)
+        handles.append(Line2D([], [], color=OKABE_ITO["blue"], marker="o", linestyle="",
+                              label="Census estimate (95 % interval)"))
+    if not split.empty:
+        ax.plot(split["at"], split["value"], linestyle="", marker="D", markersize=6, color=OKABE_ITO["purple"],
+                markeredgecolor=INK, zorder=4)
+        handles.append(Line2D([], [], color=OKABE_ITO["purple"], marker="D", linestyle="",
+                              markeredgecolor=INK, label="After a split (estimate)"))
+    if not fit.empty:
+        model = str(fit["note"].iloc[0] or "fitted")
+        ax.plot(fit["at"], fit["value"], color=OKABE_ITO["orange"], linewidth=2, zorder=2)
+        handles.append(Line2D([], [], color=OKABE_ITO["orange"], linewidth=2, label=f"Fitted {model} curve"))
+    if not capacity.empty:
+        value = float(capacity["value"].iloc[0])
+        ax.axhline(value, color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)), linewidth=1.3)
+        handles.append(Line2D([], [], color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)),
+                              label=f"Maximum stocking ({value:,.0f})"))
+    if census.empty and split.empty:
+        _empty(ax, "No census in this period")
+    else:
+        tops = [pop["upper"].max(), pop["value"].max(), fit["value"].max() if not fit.empty else 0,
+                capacity["value"].max() if not capacity.empty else 0]
+        ax.set_ylim(0, 1.18 * max(float(v) for v in tops if pd.notna(v)))  # room for the legend
+        ax.yaxis.set_major_formatter(matplotlib.ticker.StrMethodFormatter("{x:,.0f}"))
+    if handles:
+        ax.legend(handles=handles, loc="best", fontsize=7.5, framealpha=0.85, edgecolor=GRID, ncol=2)
+
+
+EVENT_STYLE = {
+    # series: (row, label, marker, colour)
+    "feeding": (2, "Feeding", "|", OKABE_ITO["green"]),
+    "water_change": (1, "Water change", "v", OKABE_ITO["sky"]),
+    "split": (0, "Split", "D", OKABE_ITO["purple"]),
+}
+
+
+def _events_panel(ax, frame: pd.DataFrame) -> None:
+    _style(ax)
+    ax.grid(False, axis="y")
+    for series, (row, label, marker, colour) in EVENT_STYLE.items():
+        events = frame[frame["series"] == series]
+        if not events.empty:
+            ax.plot(events["at"], np.full(len(events), row), linestyle="", marker=marker, color=colour,
+                    markersize=8 if marker == "|" else 5, markeredgewidth=1.4 if marker == "|" else 0.4,
+                    markeredgecolor=colour if marker == "|" else INK)
+    ax.set_ylim(-0.6, 2.6)
+    ax.set_yticks([row for row, *_ in EVENT_STYLE.values()])
+    ax.set_yticklabels([label for _, label, *_ in EVENT_STYLE.values()], fontsize=7.5)
+    ax.tick_params(axis="y", length=0)
+
+
+def _deaths_panel(ax, frame: pd.DataFrame) -> None:
+    _style(ax, "Dead removed\n(animals/day)")
+    dead = frame[frame["series"] == "deaths"]
+    if dead.empty:
+        _empty(ax, "No checks in this period")
+        return
+    total = int(dead["value"].sum())
+    ax.set_title(f"{total} dead removed in the period", fontsize=7.5, loc="right", color="#5b6b6e", pad=2)
+    dead = dead[dead["value"] > 0]
+    ax.bar(dead["at"], dead["value"], width=0.8, color=OKABE_ITO["black"], edgecolor=OKABE_ITO["black"])
+    top = float(dead["value"].max() or 0)
+    ax.set_ylim(0, max(3.0, top * 1.15))
+    ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True, nbins=4))
+
+
+def _parameter_panel(ax, rows: pd.DataFrame, p: parameters.Parameter) -> None:
+    _style(ax, _wrap(p.label_with_unit))
+    rows = rows.sort_values("at")
+    low = rows["target_low"].dropna()
+    high = rows["target_high"].dropna()
+    # The band in force at the end of the period (targets rarely change; the CSV has each row's).
+    band_low = float(low.iloc[-1]) if not low.empty else None
+    band_high = float(high.iloc[-1]) if not high.empty else None
+    ax.plot(rows["at"], rows["value"], color=OKABE_ITO["blue"], linewidth=1, marker="o", markersize=2.2)
+    for side, marker in (("high", "^"), ("low", "v")):
+        hits = rows[rows["flagged"] == side]
+        if not hits.empty:
+            ax.plot(hits["at"], hits["value"], linestyle="", marker=marker, markersize=7, clip_on=False,
+                    color=OKABE_ITO["vermillion"], markeredgecolor=INK, markeredgewidth=0.6, zorder=4)
+    values = [v for v in rows["value"].dropna().tolist() + [band_low, band_high] if v is not None]
+    if values:
+        lo, hi = min(values), max(values)
+        pad = (hi - lo) * 0.1 or max(abs(hi) * 0.05, 0.1)
+        lo, hi = max(lo - pad, p.minimum), min(hi + pad, p.maximum)
+        ax.set_ylim(lo, hi)
+        if band_low is not None or band_high is not None:
+            ax.axhspan(band_low if band_low is not None else lo, band_high if band_high is not None else hi,
+                       color=BAND, alpha=0.13, linewidth=0)
+            for limit in (band_low, band_high):
+                if limit is not None:
+                    ax.axhline(limit, color=BAND, linewidth=0.8, linestyle=(0, (2, 2)))
+    target = _target_text(band_low, band_high, p.unit)
+    n_out = int((rows["flagged"].isin(["high", "low"])).sum())
+    note = f"target {target}" if target else "no target set"
+    if n_out:
+        note += f" · {n_out} outside (▲ above, ▼ below)"
+    ax.set_title(note, fontsize=7.5, loc="right", color="#5b6b6e", pad=2)
+
+
+def _wrap(text: str, width: int = 18) -> str:
+    if len(text) <= width or " (" not in text:
+        return text
+    head, _, unit = text.partition(" (")
+    return f"{head}\n({unit}"
+
+
+def _target_text(low: float | None, high: float | None, unit: str) -> str:
+    suffix = f" {unit}" if unit else ""
+    if low is not None and high is not None:
+        return f"{low:g}–{high:g}{suffix}"
+    if low is not None:
+        return f"≥ {low:g}{suffix}"
+    if high is not None:
+        return f"≤ {high:g}{suffix}"
+    return ""
+
+
+# ---------------------------------------------------------------------------------------------
+# Facility overview
+# ---------------------------------------------------------------------------------------------
+STATUS_STYLE = {
+    # status: (label, edge colour, line style of the panel frame)
+    "attention": ("needs attention", OKABE_ITO["vermillion"], "solid"),
+    "watch": ("watch", OKABE_ITO["orange"], "dashed"),
+    "ok": ("ok", "#9aa5a3", "solid"),
+}
+
+
+def overview_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: datetime, fmt: str = "svg",
+                    columns: int = 4) -> bytes:
+    """Small multiples, one per tank in `rank` order (worst first): population trend with the
+    maximum stocking line, and a two-line health summary under the tank code."""
+    start, end = _naive_dt(start), _naive_dt(end)
+    if end <= start:
+        raise ValueError(f"end must be after start = {start:%Y-%m-%d %H:%M}, got {end:%Y-%m-%d %H:%M}")
+    frame = frame.copy()
+    frame["at"] = _naive(frame["at"])
+    tanks = (frame.dropna(subset=["tank"]).sort_values(["rank", "tank"])
+             .drop_duplicates("tank")[["tank", "room", "species"]].to_dict("records"))
+    columns = max(1, min(columns, len(tanks) or 1))
+    n_rows = max(1, math.ceil(len(tanks) / columns))
+    fig = Figure(figsize=(2.9 * columns, 0.8 + 2.15 * n_rows), layout="constrained")
+    fig.suptitle(title, x=0.01, ha="left", fontsize=12, fontweight="bold", color=INK)
+    if not tanks:
+        ax = fig.add_subplot(1, 1, 1)
+        ax.set_axis_off()
+        _empty(ax, "No tanks in use")
+        return _render(fig, fmt)
+    axes = fig.subplots(n_rows, columns, squeeze=False, sharex=True)
+    for ax in axes.flat[len(tanks):]:
+        ax.set_axis_off()
+    for i, (ax, tank) in enumerate(zip(axes.flat, tanks)):
+        rows = frame[frame["tank"] == tank["tank"]]
+        _overview_cell(ax, rows, tank)
+        _date_axis(ax, start, end, labels=i + columns >= len(tanks))
+    for ax in axes[:, 0]:
+        ax.set_ylabel("animals", fontsize=8)
+    handles = [
+        Line2D([], [], color=OKABE_ITO["blue"], marker="o", linestyle="-", markersize=3, label="Estimate"),
+        Line2D([], [], color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)), label="Maximum stocking"),
+    ] + [Line2D([], [], color=edge, linestyle=style, linewidth=2, label=f"Frame: {label}")
+         for label, edge, style in STATUS_STYLE.values()]
+    fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=7.5, frameon=False)
+    return _render(fig, fmt)
+
+
+def _metric(rows: pd.DataFrame, name: str):
+    hit = rows[rows["series"] == name]
+    if hit.empty:
+        return None
+    value = hit["value"].iloc[0]
+    return hit["note"].iloc[0] if name == "status" else (None if pd.isna(value) else float(value))
+
+
+def _overview_cell(ax, rows: pd.DataFrame, tank: Mapping) -> None:
+    _style(ax)
+    pop = rows[rows["series"] == "population"].sort_values("at")
+    if pop.empty:
+        _empty(ax, "no census")
+    else:
+        ax.fill_between(pop["at"], pop["lower"], pop["upper"], color=OKABE_ITO["sky"], alpha=0.25, linewidth=0,
+                        step=None)
+        ax.plot(pop["at"], pop["value"], color=OKABE_ITO["blue"], marker="o", markersize=3, linewidth=1.2)
+    cap = _metric(rows, "capacity")
+    if cap:
+        ax.axhline(cap, color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)), linewidth=1)
+    ax.set_ylim(bottom=0, top=max(cap or 0, float(pop["upper"].max()) if not pop.empty else 0) * 1.12 or 1)
+    ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(nbins=3))
+    ax.yaxis.set_major_formatter(matplotlib.ticker.StrMethodFormatter("{x:,.0f}"))
+    status = _metric(rows, "status") or "ok"
+    label, edge, style = STATUS_STYLE.get(status, STATUS_STYLE["ok"])
+    for spine in ax.spines.values():
+        spine.set_visible(True)
+        spine.set_edgecolor(edge)
+        spine.set_linestyle(style)
+        spine.set_linewidth(2 if status != "ok" else 0.8)
+    pct = _metric(rows, "density_pct_of_max")
+    mort = _metric(rows, "mortality_per_1000_animal_days")
+    flagged = _metric(rows, "flagged_checks_pct")
+    devs = _metric(rows, "open_deviations")
+    line2 = " · ".join([f"{pct:.0f} % of max density" if pct is not None else "density unknown",
+                        f"mortality {mort:.2f}/1000 a-d" if mort is not None else "mortality unknown"])
+    line3 = " · ".join([f"{flagged:.0f} % of checks flagged" if flagged is not None else "no checks",
+                        f"{devs:.0f} open deviation{'s' if devs != 1 else ''}" if devs else "no open deviation"])
+    ax.set_title(f"{tank['tank']} · {label}\n{line2}\n{line3}", fontsize=7.2, loc="left", color=INK, pad=3,
+                 linespacing=1.3)
