@@ -3,7 +3,7 @@ from django import forms
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
-from .models import CareTarget, Census, Check, Feeding, Room, Species, Tank, TankTarget, WaterChange
+from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget, WaterChange
 
 
 class ReasonAdminForm(forms.ModelForm):
@@ -101,3 +101,46 @@ class WaterChangeAdmin(RecordAdmin):
 @admin.register(Census)
 class CensusAdmin(RecordAdmin):
     list_display = ["tank", "observed_at", "method", "estimate", "estimate_lower", "estimate_upper", "voided_at"]
+
+
+class SplitPartInline(NoDeleteMixin, admin.TabularInline):
+    model = SplitPart
+    extra = 0
+    can_delete = False
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_add_permission(self, request, obj=None):
+        return False
+
+
+@admin.register(Split)
+class SplitAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+    list_display = ["source", "split_at", "source_before", "stayed", "recorded_by", "voided_at"]
+    list_filter = ["source__room", ("voided_at", admin.EmptyFieldListFilter)]
+    search_fields = ["source__code", "note"]
+    date_hierarchy = "split_at"
+    inlines = [SplitPartInline]
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_add_permission(self, request):
+        return False
+
+
+@admin.register(Deviation)
+class DeviationAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+    """Read-only here: deviations are opened by rules and closed in the app, with a corrective action."""
+
+    list_display = ["tank", "rule", "parameter", "severity", "status", "opened_at", "closed_at"]
+    list_filter = ["status", "rule", "severity", "tank__room"]
+    search_fields = ["tank__code", "summary", "corrective_action"]
+    date_hierarchy = "opened_at"
+
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_add_permission(self, request):
+        return False

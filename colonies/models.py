@@ -84,7 +84,8 @@ class Recorded(Voidable):
     observed_at = models.DateTimeField(
         default=timezone.now, help_text="When the work was done or the reading taken (may be earlier than entry)."
     )
-    recorded_at = models.DateTimeField(auto_now_add=True, help_text="When the record was entered.")
+    recorded_at = models.DateTimeField(default=timezone.now, editable=False,
+                                       help_text="When the record was entered; set by the server, never by a form.")
     recorded_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+")
     note = models.TextField(blank=True)
 
