@@ -198,7 +198,7 @@ def _population_panel(ax, frame: pd.DataFrame) -> None:
     if not census.empty:
         low = (census["value"] - census["lower"]).clip(lower=0).fillna(0)
         high = (census["upper"] - census["value"]).clip(lower=0).fillna(0)
-        ax.errorbar(census["at"], census["value"], yerr=[low, high], fmt="o", color=OKABE_ITO["blue"],
+        ax.errorbar(census["at"], census["value"].to_numpy(), yerr=[low.to_numpy(), high.to_numpy()], fmt="o", color=OKABE_ITO["blue"],
                     ecolor=OKABE_ITO["blue"], elinewidth=1.2, capsize=3, markersize=5, zorder=3)
         handles.append(Line2D([], [], color=OKABE_ITO["blue"], marker="o", linestyle="",
                               label="Census estimate (95 % interval)"))
