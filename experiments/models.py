@@ -1,1 +1,630 @@
-"""Protocols, bookings, cohorts and aggregation trials live here (see the trials issue)."""
+"""Protocols, animal bookings, cohorts and aggregation trials.
+
+Traceability runs one way: a trial names its cohort, the cohort its booking and origin tank, the
+booking its protocol. Nothing is deleted: bookings are cancelled or expire, trials are voided or
+excluded with a reason, cohorts end (returned, retired, died). Every model keeps a full change
+history (django-simple-history); history_user comes from the request middleware or is set
+explicitly in services.py.
+"""
+from django.conf import settings
+from django.core.validators import MinValueValidator
+from django.db import models
+from django.db.models import Q
+from django.urls import reverse
+from django.utils import timezone
+from simple_history.models import HistoricalRecords
+
+from colonies.models import Species, Tank, Voidable
+
+from . import limits
+from .validators import BOUNDS, Within, within_q
+
+DEFAULT_OBSERVATION_WINDOW_S = 600
+DEFAULT_REPLICATES = 5
+
+UV_BELOW_NM = 400  # light below 400 nm is ultraviolet (ISO 21348 puts the UV/visible edge at 400 nm; from memory)
+
+CAUTION_UV = ("Ultraviolet light: wear eye and skin protection rated for the wavelength, shield the beam and "
+              "never look into the source.")
+CAUTION_ELECTRICAL = ("Electrical stimulus: use only an isolated, current-limited low-voltage supply checked by a "
+                      "competent person; keep hands, water and electrodes apart while powered.")
+CAUTION_DEFER = ("Your institution's rules and its animal-care oversight take precedence over anything shown "
+                 "here.")
+
+
+class Stimulus(models.TextChoices):
+    NONE = "none", "None (sham or control handling)"
+    LIGHT = "light", "Light (visible)"
+    UV = "uv", "Ultraviolet light"
+    ELECTRICAL = "electrical", "Electrical"
+    THERMAL = "thermal", "Thermal"
+    CHEMICAL = "chemical", "Chemical"
+    MECHANICAL = "mechanical", "Mechanical"
+
+
+LIGHT_KINDS = (Stimulus.LIGHT, Stimulus.UV)
+
+
+def cautions_for(kind: str, wavelength_nm: float | None = None) -> list[str]:
+    """Safety notes to show where a stimulus of this kind is configured."""
+    notes = []
+    if kind == Stimulus.UV or (kind == Stimulus.LIGHT and wavelength_nm is not None and wavelength_nm < UV_BELOW_NM):
+        notes.append(CAUTION_UV)
+    if kind == Stimulus.ELECTRICAL:
+        notes.append(CAUTION_ELECTRICAL)
+    return notes + [CAUTION_DEFER] if notes else []
+
+
+def _user_fk(**kwargs):
+    return models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+", **kwargs)
+
+
+# ---------------------------------------------------------------------------------------------
+# Protocols
+# ---------------------------------------------------------------------------------------------
+class ProtocolQuerySet(models.QuerySet):
+    def usable_on(self, day):
+        return self.filter(status=Protocol.Status.APPROVED, starts_on__lte=day, expires_on__gte=day)
+
+
+class Protocol(models.Model):
+    class Status(models.TextChoices):
+        DRAFT = "draft", "Draft"
+        APPROVED = "approved", "Approved"
+        SUSPENDED = "suspended", "Suspended"
+        CLOSED = "closed", "Closed"
+
+    title = models.CharField(max_length=200)
+    reference = models.CharField(max_length=40, unique=True, help_text="The lab's approval reference, e.g. 'AWB-2026-014'.")
+    approver = models.CharField(max_length=120, help_text="Who approved it: person and body.")
+    approved_on = models.DateField(null=True, blank=True)
+    starts_on = models.DateField()
+    expires_on = models.DateField()
+    status = models.CharField(max_length=10, choices=Status.choices, default=Status.DRAFT)
+    max_animals_per_trial = models.PositiveIntegerField(validators=[MinValueValidator(1)],
+                                                        help_text="Most animals in one trial arena.")
+    max_exposures_per_group = models.PositiveIntegerField(
+        validators=[MinValueValidator(1)], help_text="Most trials (exposures, sham included) for one cohort.")
+    min_rest_hours = models.FloatField(default=0, validators=[Within("min_rest_hours")],
+                                       help_text="Least time between two exposures of the same cohort, hours.")
+    max_cumulative_dose_mj_cm2 = models.FloatField(
+        null=True, blank=True, validators=[Within("dose_mj_cm2")],
+        help_text="Most light/UV dose one cohort may receive in total, mJ/cm². Empty: no light stimulus approved.")
+    notes = models.TextField(blank=True)
+    history = HistoricalRecords()
+
+    objects = ProtocolQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["-starts_on", "reference"]
+        constraints = [
+            models.CheckConstraint(condition=Q(expires_on__gte=models.F("starts_on")), name="protocol_expires_after_start"),
+            models.CheckConstraint(condition=Q(max_animals_per_trial__gte=1), name="protocol_max_animals_positive"),
+            models.CheckConstraint(condition=Q(max_exposures_per_group__gte=1), name="protocol_max_exposures_positive"),
+            models.CheckConstraint(condition=within_q("min_rest_hours"), name="protocol_min_rest_bounds"),
+        ]
+
+    def __str__(self):
+        return f"{self.reference} · {self.title}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:protocol-detail", args=[self.pk])
+
+    def terms(self) -> limits.ProtocolTerms:
+        """The limits as plain values; uses prefetched allowances when present."""
+        allowances = {}
+        for a in self.allowances.all():
+            terms = a.terms()
+            if a.kind in allowances and a.kind == Stimulus.CHEMICAL:
+                merged = {**allowances[a.kind].substances, **terms.substances}
+                terms = limits.AllowanceTerms(terms.kind_label, terms.maxima, terms.wavelength_band, merged)
+            allowances[a.kind] = terms
+        return limits.ProtocolTerms(
+            reference=self.reference, status_ok=self.status == self.Status.APPROVED,
+            status_label=self.get_status_display(), starts_on=self.starts_on, expires_on=self.expires_on,
+            max_animals_per_trial=self.max_animals_per_trial, max_exposures_per_group=self.max_exposures_per_group,
+            min_rest_hours=self.min_rest_hours, max_cumulative_dose_mj_cm2=self.max_cumulative_dose_mj_cm2,
+            allowances=allowances,
+        )
+
+    def problem(self, day) -> str:
+        """Why this protocol cannot be booked or used on `day`; "" when it can."""
+        return limits.protocol_problem(self.terms(), day)
+
+    def cautions(self) -> list[str]:
+        notes = []
+        for a in self.allowances.all():
+            notes += [n for n in cautions_for(a.kind, a.wavelength_min_nm) if n not in notes and n != CAUTION_DEFER]
+        return notes + [CAUTION_DEFER] if notes else []
+
+
+# Per-exposure maxima an allowance may set: allowance field -> (trial setting key, label, unit)
+ALLOWANCE_MAXIMA = {
+    "max_irradiance_mw_cm2": ("irradiance_mw_cm2", "Irradiance", "mW/cm²"),
+    "max_duration_s": ("duration_s", "Duration", "s"),
+    "max_dose_mj_cm2": ("dose_mj_cm2", "Dose per exposure", "mJ/cm²"),
+    "max_voltage_v": ("voltage_v", "Voltage", "V"),
+    "max_field_v_cm": ("field_v_cm", "Field strength", "V/cm"),
+    "max_pulse_width_ms": ("pulse_width_ms", "Pulse width", "ms"),
+    "max_pulse_count": ("pulse_count", "Pulse count", "pulses"),
+    "max_temp_step_c": ("temp_step_abs_c", "Temperature step (size)", "°C"),
+    "max_temp_rate_c_min": ("temp_rate_c_min", "Temperature ramp rate", "°C/min"),
+}
+
+
+class Allowance(models.Model):
+    """One stimulus type a protocol allows, with its maximum settings (empty = not limited here)."""
+
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="allowances")
+    kind = models.CharField(max_length=12, choices=Stimulus.choices)
+    wavelength_min_nm = models.FloatField(null=True, blank=True, validators=[Within("wavelength_nm")])
+    wavelength_max_nm = models.FloatField(null=True, blank=True, validators=[Within("wavelength_nm")])
+    max_irradiance_mw_cm2 = models.FloatField(null=True, blank=True, validators=[Within("irradiance_mw_cm2")])
+    max_duration_s = models.FloatField(null=True, blank=True, validators=[Within("duration_s")])
+    max_dose_mj_cm2 = models.FloatField(null=True, blank=True, validators=[Within("dose_mj_cm2")],
+                                        help_text="Most light dose in one exposure, mJ/cm².")
+    max_voltage_v = models.FloatField(null=True, blank=True, validators=[Within("voltage_v")])
+    max_field_v_cm = models.FloatField(null=True, blank=True, validators=[Within("field_v_cm")])
+    max_pulse_width_ms = models.FloatField(null=True, blank=True, validators=[Within("pulse_width_ms")])
+    max_pulse_count = models.PositiveIntegerField(null=True, blank=True)
+    max_temp_step_c = models.FloatField(null=True, blank=True, validators=[MinValueValidator(0)],
+                                        help_text="Largest temperature step either way, °C.")
+    max_temp_rate_c_min = models.FloatField(null=True, blank=True, validators=[Within("temp_rate_c_min")])
+    substance = models.CharField(max_length=80, blank=True, help_text="Chemical stimulus: the approved substance.")
+    max_concentration_um = models.FloatField(null=True, blank=True, validators=[Within("concentration_um")])
+    notes = models.TextField(blank=True, help_text="Mechanical stimulus: what is approved (e.g. 'pipette jet, 1 mL').")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["protocol", "kind", "substance"]
+        constraints = [
+            models.UniqueConstraint(fields=["protocol", "kind", "substance"], name="allowance_one_per_kind"),
+            models.CheckConstraint(
+                condition=Q(wavelength_min_nm__isnull=True) | Q(wavelength_max_nm__isnull=True)
+                | Q(wavelength_min_nm__lte=models.F("wavelength_max_nm")), name="allowance_band_ordered"),
+        ]
+
+    def __str__(self):
+        return f"{self.protocol.reference}: {self.get_kind_display()}{' ' + self.substance if self.substance else ''}"
+
+    def get_absolute_url(self):
+        return self.protocol.get_absolute_url()
+
+    def limit_rows(self) -> list[tuple[str, str]]:
+        """(label, "≤ value unit") for the protocol page."""
+        rows = []
+        if self.wavelength_min_nm is not None or self.wavelength_max_nm is not None:
+            low = f"{self.wavelength_min_nm:g}" if self.wavelength_min_nm is not None else "…"
+            high = f"{self.wavelength_max_nm:g}" if self.wavelength_max_nm is not None else "…"
+            rows.append(("Wavelength band", f"{low}–{high} nm"))
+        for name, (_key, label, unit) in ALLOWANCE_MAXIMA.items():
+            value = getattr(self, name)
+            if value is not None:
+                rows.append((label, f"≤ {value:g} {unit}"))
+        if self.substance:
+            conc = f" ≤ {self.max_concentration_um:g} µM" if self.max_concentration_um is not None else ""
+            rows.append(("Substance", f"{self.substance}{conc}"))
+        return rows
+
+    def terms(self) -> limits.AllowanceTerms:
+        maxima = {}
+        for name, (key, label, unit) in ALLOWANCE_MAXIMA.items():
+            value = getattr(self, name)
+            if value is not None:
+                maxima[key] = (label, unit, value)
+        substances = {self.substance.strip().lower(): self.max_concentration_um} if self.substance else {}
+        return limits.AllowanceTerms(self.get_kind_display(), maxima,
+                                     (self.wavelength_min_nm, self.wavelength_max_nm), substances)
+
+
+# ---------------------------------------------------------------------------------------------
+# Bookings and cohorts
+# ---------------------------------------------------------------------------------------------
+class BookingQuerySet(models.QuerySet):
+    def active(self):
+        return self.filter(status=Booking.Status.ACTIVE)
+
+    def between(self, first, last):
+        return self.filter(needed_on__gte=first, needed_on__lte=last)
+
+    def in_room(self, room):
+        return self.filter(tank__room=room) if room is not None else self
+
+
+class Booking(models.Model):
+    class Status(models.TextChoices):
+        ACTIVE = "booked", "Booked"
+        DRAWN = "drawn", "Drawn"
+        CANCELLED = "cancelled", "Cancelled"
+        EXPIRED = "expired", "Expired (not drawn)"
+
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="bookings")
+    tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="bookings")
+    species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="+")
+    animals = models.PositiveIntegerField(validators=[MinValueValidator(1)], help_text="How many animals to draw.")
+    needed_on = models.DateField(help_text="The day the animals will be drawn. Not drawn by the end of it: expires.")
+    purpose = models.CharField(max_length=200, blank=True)
+    status = models.CharField(max_length=10, choices=Status.choices, default=Status.ACTIVE)
+    booked_by = _user_fk()
+    booked_at = models.DateTimeField(default=timezone.now)
+    cancelled_at = models.DateTimeField(null=True, blank=True)
+    cancelled_by = _user_fk(null=True, blank=True)
+    cancel_reason = models.TextField(blank=True)
+    history = HistoricalRecords()
+
+    objects = BookingQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["needed_on", "tank__code"]
+        constraints = [
+            models.CheckConstraint(condition=Q(animals__gte=1), name="booking_animals_positive"),
+            models.CheckConstraint(condition=~Q(status="cancelled") | ~Q(cancel_reason=""),
+                                   name="booking_cancel_has_reason"),
+        ]
+        indexes = [
+            # Availability (services.tanks_with_availability): active bookings per tank.
+            models.Index(fields=["tank", "status"], name="booking_tank_status"),
+            # The bookings calendar and expire_bookings: bookings by day.
+            models.Index(fields=["needed_on", "status"], name="booking_day_status"),
+        ]
+
+    def __str__(self):
+        return f"Booking {self.pk}: {self.animals} from {self.tank.code} on {self.needed_on:%Y-%m-%d}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:booking-detail", args=[self.pk])
+
+    @property
+    def is_active(self) -> bool:
+        return self.status == self.Status.ACTIVE
+
+
+class Cohort(models.Model):
+    """Animals drawn from one tank for trials, from the draw to their end."""
+
+    class End(models.TextChoices):
+        RETURNED = "returned", "Returned to a tank"
+        RETIRED = "retired", "Retired"
+        DIED = "died", "Died"
+
+    booking = models.OneToOneField(Booking, on_delete=models.PROTECT, related_name="cohort")
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="cohorts")
+    origin_tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="cohorts_drawn")
+    size = models.PositiveIntegerField(validators=[MinValueValidator(1)], help_text="Animals drawn.")
+    drawn_at = models.DateTimeField(default=timezone.now)
+    drawn_by = _user_fk()
+    end = models.CharField(max_length=10, choices=End.choices, blank=True)
+    ended_at = models.DateTimeField(null=True, blank=True)
+    ended_by = _user_fk(null=True, blank=True)
+    returned_to = models.ForeignKey(Tank, null=True, blank=True, on_delete=models.PROTECT,
+                                    related_name="cohorts_returned")
+    returned_count = models.PositiveIntegerField(null=True, blank=True, help_text="Animals put back (alive).")
+    end_method = models.CharField(max_length=200, blank=True, help_text="Retired: the method used.")
+    end_note = models.TextField(blank=True)
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["-drawn_at"]
+        get_latest_by = "drawn_at"
+        constraints = [
+            models.CheckConstraint(condition=Q(size__gte=1), name="cohort_size_positive"),
+            models.CheckConstraint(condition=Q(returned_count__isnull=True) | Q(returned_count__lte=models.F("size")),
+                                   name="cohort_returned_not_above_size"),
+            models.CheckConstraint(
+                condition=~Q(end="returned") | Q(returned_to__isnull=False, returned_count__isnull=False),
+                name="cohort_returned_has_tank_and_count"),
+            models.CheckConstraint(condition=Q(end="") | Q(ended_at__isnull=False), name="cohort_end_has_time"),
+        ]
+        indexes = [
+            # services.current_population: animals drawn from a tank since its last census.
+            models.Index(fields=["origin_tank", "drawn_at"], name="cohort_origin_drawn"),
+            # ... and animals returned to it.
+            models.Index(fields=["returned_to", "ended_at"], name="cohort_returned_ended"),
+        ]
+
+    def __str__(self):
+        return self.label
+
+    @property
+    def label(self) -> str:
+        return f"C-{self.pk:04d}" if self.pk else "new cohort"
+
+    @property
+    def subject(self) -> str:
+        """How a protocol-limit deviation names this cohort."""
+        return f"cohort:{self.pk}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:cohort-detail", args=[self.pk])
+
+    @property
+    def is_active(self) -> bool:
+        return not self.end
+
+
+# ---------------------------------------------------------------------------------------------
+# Studies and trials
+# ---------------------------------------------------------------------------------------------
+class Study(models.Model):
+    """A named set of trials: conditions, replicates, randomised run order and blinding."""
+
+    class Method(models.TextChoices):
+        SIMPLE = "simple", "Simple randomisation of the run order"
+        BLOCK = "block", "Permuted blocks (each condition once per block)"
+
+    code = models.SlugField(max_length=40, unique=True, help_text="Short name used in addresses and exports.")
+    title = models.CharField(max_length=200)
+    owner = _user_fk(help_text="Holds the allocation key; the only person who may unblind.")
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="studies")
+    question = models.TextField(blank=True, help_text="What the study asks; written before allocation.")
+    conditions = models.JSONField(default=list, help_text="Condition labels in order; the first is the reference "
+                                                          "(control) for the log-rank comparisons.")
+    replicates = models.PositiveIntegerField(default=DEFAULT_REPLICATES, validators=[MinValueValidator(1)],
+                                             help_text="Trials (dishes) per condition; the dish is the unit.")
+    primary_outcome = models.CharField(max_length=200, default="Time to disperse (s), right-censored at the window")
+    observation_window_s = models.PositiveIntegerField(default=DEFAULT_OBSERVATION_WINDOW_S,
+                                                       validators=[Within("observation_window_s")])
+    exclusion_criteria = models.TextField(blank=True)
+    method = models.CharField(max_length=10, choices=Method.choices, default=Method.BLOCK)
+    seed = models.BigIntegerField(help_text="Seed of the random generator used for the allocation.")
+    generator = models.CharField(max_length=120, blank=True)
+    allocated_at = models.DateTimeField(null=True, blank=True)
+    allocation = models.JSONField(default=list, blank=True,
+                                  help_text="The realised allocation: slot, code, condition, replicate.")
+    blinded = models.BooleanField(default=True, help_text="Scorers see a code, not the condition, until unblinding.")
+    outcomes_locked_at = models.DateTimeField(null=True, blank=True)
+    unblinded_at = models.DateTimeField(null=True, blank=True)
+    unblinded_by = _user_fk(null=True, blank=True)
+    unblind_reason = models.TextField(blank=True)
+    created_at = models.DateTimeField(default=timezone.now)
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["-created_at"]
+        verbose_name_plural = "studies"
+        constraints = [
+            models.CheckConstraint(condition=Q(unblinded_at__isnull=True) | Q(outcomes_locked_at__isnull=False),
+                                   name="study_unblinded_after_lock"),
+        ]
+
+    def __str__(self):
+        return f"{self.code} · {self.title}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:study-detail", args=[self.code])
+
+    @property
+    def is_blind(self) -> bool:
+        """True while condition labels are hidden from everyone but the owner."""
+        return self.blinded and self.unblinded_at is None
+
+    def hides_conditions_from(self, user) -> bool:
+        return self.is_blind and user.pk != self.owner_id
+
+    @property
+    def is_locked(self) -> bool:
+        return self.outcomes_locked_at is not None
+
+    def slot(self, number: int) -> dict | None:
+        for entry in self.allocation:
+            if entry["slot"] == number:
+                return entry
+        return None
+
+
+class TrialQuerySet(models.QuerySet):
+    def counting(self):
+        """Trials that count as exposures and in analyses: not voided (excluded ones still exposed animals)."""
+        return self.filter(voided_at__isnull=True)
+
+    def analysable(self):
+        return self.counting().filter(excluded_at__isnull=True, disperse_s__isnull=False)
+
+
+# Stimulus settings recorded on a trial: field -> the stimulus kinds it belongs to.
+SETTING_FIELDS = {
+    "wavelength_nm": LIGHT_KINDS, "irradiance_mw_cm2": LIGHT_KINDS, "duration_s": LIGHT_KINDS,
+    "voltage_v": (Stimulus.ELECTRICAL,), "electrode_gap_cm": (Stimulus.ELECTRICAL,),
+    "pulse_width_ms": (Stimulus.ELECTRICAL,), "pulse_count": (Stimulus.ELECTRICAL,),
+    "pulse_frequency_hz": (Stimulus.ELECTRICAL,),
+    "temp_step_c": (Stimulus.THERMAL,), "temp_rate_c_min": (Stimulus.THERMAL,),
+    "concentration_um": (Stimulus.CHEMICAL,),
+}
+BOUNDED_TRIAL_FIELDS = ("wavelength_nm", "irradiance_mw_cm2", "duration_s", "voltage_v", "electrode_gap_cm",
+                        "pulse_width_ms", "pulse_frequency_hz", "temp_step_c", "temp_rate_c_min", "concentration_um",
+                        "arena_diameter_mm", "water_volume_ml", "water_temp_c", "light_lux", "acclimation_min",
+                        "aggregate_s", "disperse_s", "observation_window_s", "dose_mj_cm2", "field_v_cm")
+
+
+def _bounded(key, **kwargs):
+    b = BOUNDS[key]
+    return models.FloatField(null=True, blank=True, validators=[Within(key)],
+                             verbose_name=f"{b.label} ({b.unit})" if b.unit else b.label, **kwargs)
+
+
+class Trial(Voidable):
+    """One aggregation trial: a clump of worms, a stimulus, and when (if) it dispersed.
+
+    Each trial is also one exposure of its cohort, counted against the protocol's limits.
+    """
+
+    study = models.ForeignKey(Study, on_delete=models.PROTECT, related_name="trials")
+    slot = models.PositiveIntegerField(help_text="Position in the randomised run order.")
+    code = models.CharField(max_length=8, help_text="Blind code shown to scorers.")
+    condition = models.CharField(max_length=80)
+    replicate = models.PositiveIntegerField()
+    cohort = models.ForeignKey(Cohort, on_delete=models.PROTECT, related_name="trials")
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="trials")
+    run_at = models.DateTimeField(default=timezone.now, help_text="When the stimulus was applied.")
+    run_by = _user_fk()
+    recorded_at = models.DateTimeField(auto_now_add=True)
+    # arena
+    vessel = models.CharField(max_length=80, default="glass Petri dish")
+    arena_diameter_mm = _bounded("arena_diameter_mm")
+    water_volume_ml = _bounded("water_volume_ml")
+    water_temp_c = _bounded("water_temp_c")
+    light_lux = _bounded("light_lux", help_text="Ambient light level at the arena.")
+    acclimation_min = _bounded("acclimation_min")
+    animals = models.PositiveIntegerField(validators=[MinValueValidator(1)], help_text="Animals in the arena.")
+    # stimulus
+    kind = models.CharField(max_length=12, choices=Stimulus.choices, verbose_name="Stimulus type")
+    wavelength_nm = _bounded("wavelength_nm")
+    irradiance_mw_cm2 = _bounded("irradiance_mw_cm2")
+    duration_s = _bounded("duration_s", help_text="Light exposure time.")
+    voltage_v = _bounded("voltage_v")
+    electrode_gap_cm = _bounded("electrode_gap_cm")
+    pulse_width_ms = _bounded("pulse_width_ms")
+    pulse_count = models.PositiveIntegerField(null=True, blank=True, validators=[Within("pulse_count")])
+    pulse_frequency_hz = _bounded("pulse_frequency_hz")
+    temp_step_c = _bounded("temp_step_c", help_text="Change of water temperature; negative for cooling.")
+    temp_rate_c_min = _bounded("temp_rate_c_min")
+    substance = models.CharField(max_length=80, blank=True)
+    concentration_um = _bounded("concentration_um")
+    mechanical_note = models.CharField(max_length=200, blank=True, help_text="Mechanical stimulus as applied.")
+    # derived (stored with their inputs; stimulus.py says how)
+    dose_mj_cm2 = _bounded("dose_mj_cm2", editable=False)
+    field_v_cm = _bounded("field_v_cm", editable=False)
+    pulse_on_s = models.FloatField(null=True, blank=True, editable=False)
+    train_s = models.FloatField(null=True, blank=True, editable=False)
+    # outcomes
+    aggregate_s = _bounded("aggregate_s", help_text="Time for the animals to form one clump before the stimulus.")
+    observation_window_s = models.PositiveIntegerField(validators=[Within("observation_window_s")])
+    disperse_s = _bounded("disperse_s", help_text="Time from stimulus to dispersal; the window when not dispersed.")
+    censored = models.BooleanField(default=False, help_text="Still clumped when the observation window ended.")
+    clusters = models.JSONField(default=list, blank=True,
+                                help_text="Cluster count and largest-cluster fraction at recorded times.")
+    mortality_24h = models.PositiveIntegerField(null=True, blank=True, help_text="Dead animals 24 h after the trial.")
+    scored_at = models.DateTimeField(null=True, blank=True)
+    scored_by = _user_fk(null=True, blank=True)
+    excluded_at = models.DateTimeField(null=True, blank=True)
+    excluded_by = _user_fk(null=True, blank=True)
+    exclusion_reason = models.TextField(blank=True)
+    note = models.TextField(blank=True)
+    history = HistoricalRecords()
+
+    objects = TrialQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["study_id", "slot"]
+        get_latest_by = "run_at"
+        constraints = [
+            models.UniqueConstraint(fields=["study", "slot"], condition=Q(voided_at__isnull=True),
+                                    name="trial_one_per_slot"),
+            models.CheckConstraint(condition=Q(animals__gte=1), name="trial_animals_positive"),
+            models.CheckConstraint(condition=Q(disperse_s__isnull=True) | Q(disperse_s__lte=models.F("observation_window_s")),
+                                   name="trial_disperse_within_window"),
+            models.CheckConstraint(condition=Q(censored=False) | Q(disperse_s=models.F("observation_window_s")),
+                                   name="trial_censored_at_window"),
+            models.CheckConstraint(condition=Q(mortality_24h__isnull=True) | Q(mortality_24h__lte=models.F("animals")),
+                                   name="trial_mortality_not_above_animals"),
+            models.CheckConstraint(condition=Q(excluded_at__isnull=True) | ~Q(exclusion_reason=""),
+                                   name="trial_exclusion_has_reason"),
+            *[models.CheckConstraint(condition=within_q(f), name=f"trial_{f}_bounds") for f in BOUNDED_TRIAL_FIELDS],
+        ]
+        indexes = [
+            # The exposure ledger and the cohort page: a cohort's exposures in order.
+            models.Index(fields=["cohort", "run_at"], name="trial_cohort_run"),
+        ]
+
+    def __str__(self):
+        return f"Trial {self.study.code} #{self.slot} ({self.code})"
+
+    def get_absolute_url(self):
+        return reverse("experiments:trial-detail", args=[self.pk])
+
+    @property
+    def is_scored(self) -> bool:
+        return self.disperse_s is not None
+
+    @property
+    def is_excluded(self) -> bool:
+        return self.excluded_at is not None
+
+    @property
+    def dispersed(self) -> bool | None:
+        return None if self.disperse_s is None else not self.censored
+
+    def settings(self) -> dict[str, float | None]:
+        """Stimulus settings and derived values as the limit checker sees them."""
+        values = {f: getattr(self, f) for f in SETTING_FIELDS}
+        values.update(dose_mj_cm2=self.dose_mj_cm2, field_v_cm=self.field_v_cm,
+                      temp_step_abs_c=abs(self.temp_step_c) if self.temp_step_c is not None else None)
+        return values
+
+    def cautions(self) -> list[str]:
+        return cautions_for(self.kind, self.wavelength_nm)
+
+    def stimulus_text(self) -> str:
+        k = Stimulus
+        if self.kind in LIGHT_KINDS:
+            parts = [f"{self.wavelength_nm:g} nm" if self.wavelength_nm else "",
+                     f"{self.irradiance_mw_cm2:g} mW/cm² × {self.duration_s:g} s" if self.irradiance_mw_cm2 is not None
+                     and self.duration_s is not None else "",
+                     f"= {self.dose_mj_cm2:.4g} mJ/cm²" if self.dose_mj_cm2 is not None else ""]
+        elif self.kind == k.ELECTRICAL:
+            parts = [f"{self.voltage_v:g} V" if self.voltage_v is not None else "",
+                     f"over {self.electrode_gap_cm:g} cm = {self.field_v_cm:.3g} V/cm" if self.field_v_cm is not None else "",
+                     f"{self.pulse_count} × {self.pulse_width_ms:g} ms" if self.pulse_count and self.pulse_width_ms else "",
+                     f"at {self.pulse_frequency_hz:g} Hz" if self.pulse_frequency_hz else ""]
+        elif self.kind == k.THERMAL:
+            parts = [f"step {self.temp_step_c:+g} °C" if self.temp_step_c is not None else "",
+                     f"at {self.temp_rate_c_min:g} °C/min" if self.temp_rate_c_min is not None else ""]
+        elif self.kind == k.CHEMICAL:
+            parts = [self.substance, f"{self.concentration_um:g} µM" if self.concentration_um is not None else ""]
+        elif self.kind == k.MECHANICAL:
+            parts = [self.mechanical_note]
+        else:
+            parts = []
+        return f"{self.get_kind_display()}: " + " ".join(p for p in parts if p) if parts else self.get_kind_display()
+
+
+class Override(models.Model):
+    """A manager's decision to let a trial go beyond a protocol limit, with the reason; opens a deviation."""
+
+    trial = models.OneToOneField(Trial, on_delete=models.PROTECT, related_name="override")
+    cohort = models.ForeignKey(Cohort, on_delete=models.PROTECT, related_name="overrides")
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="overrides")
+    breaches = models.JSONField(default=list, help_text="The limits broken, as shown to the manager.")
+    reason = models.TextField()
+    recorded_by = _user_fk()
+    recorded_at = models.DateTimeField(default=timezone.now)
+    deviation = models.ForeignKey("colonies.Deviation", null=True, blank=True, on_delete=models.PROTECT,
+                                  related_name="+")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["-recorded_at"]
+        constraints = [models.CheckConstraint(condition=~Q(reason=""), name="override_has_reason")]
+
+    def __str__(self):
+        return f"Override for {self.trial}"
+
+    def get_absolute_url(self):
+        return self.trial.get_absolute_url()
+
+
+class Attachment(Voidable):
+    class Kind(models.TextChoices):
+        PHOTO = "photo", "Photo"
+        VIDEO = "video", "Video"
+        OTHER = "other", "Other"
+
+    trial = models.ForeignKey(Trial, on_delete=models.PROTECT, related_name="attachments")
+    file = models.FileField(upload_to="trials/%Y/%m/")
+    name = models.CharField(max_length=200, help_text="The file name as uploaded.")
+    kind = models.CharField(max_length=8, choices=Kind.choices, default=Kind.PHOTO)
+    sha256 = models.CharField(max_length=64, editable=False, help_text="SHA-256 of the file as received.")
+    size_bytes = models.PositiveBigIntegerField(editable=False)
+    caption = models.CharField(max_length=200, blank=True)
+    uploaded_by = _user_fk()
+    uploaded_at = models.DateTimeField(default=timezone.now)
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["uploaded_at"]
+
+    def __str__(self):
+        return f"{self.name} ({self.sha256[:12]}…)"
+
+    def get_absolute_url(self):
+        return reverse("experiments:attachment", args=[self.pk])

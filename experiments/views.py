@@ -1,10 +1,545 @@
-from django.shortcuts import render
-from django.views.decorators.http import require_GET
+"""Screens for protocols, bookings, cohorts, studies, trials and the exposure ledger.
 
-from colonies.roles import RESEARCHER, role_required
+Roles: researchers and managers book, draw and run trials; managers also record overrides and
+see the ledger; technicians read. Login is enforced by LoginRequiredMiddleware.
+"""
+import csv
+import io
+import random
+from datetime import date, timedelta
+
+import pandas as pd
+
+from django.contrib import messages
+from django.core.exceptions import PermissionDenied, ValidationError
+from django.db.models import Count, Q
+from django.http import FileResponse, Http404, HttpResponse
+from django.shortcuts import get_object_or_404, redirect, render
+from django.utils import timezone
+from django.views.decorators.http import require_GET, require_http_methods, require_POST
+
+from colonies.models import Room
+from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
+
+from . import charts, reports, services
+from .filters import LedgerFilter
+from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
+                    ScoreForm, StudyForm, TrialForm)
+from .models import Attachment, Booking, Cohort, Protocol, Stimulus, Study, Trial, cautions_for
+
+READ = (TECHNICIAN, RESEARCHER)
+RUN = (RESEARCHER,)
+TRIAL_RELATED = ("study", "cohort__origin_tank", "protocol", "run_by", "scored_by", "override__recorded_by")
+
+
+def _error_text(error) -> str:
+    if isinstance(error, ValidationError):
+        return " ".join(m for msgs in error.message_dict.values() for m in msgs) if hasattr(error, "error_dict") \
+            else " ".join(error.messages)
+    return str(error)
+
+
+# ---------------------------------------------------------------------------------------------
+# Access helpers: one per model; 404 when missing
+# ---------------------------------------------------------------------------------------------
+def _get_study(code: str) -> Study:
+    return get_object_or_404(Study.objects.select_related("owner", "protocol", "unblinded_by"), code=code)
+
+
+def _get_trial(pk: int) -> Trial:
+    return get_object_or_404(Trial.objects.select_related(*TRIAL_RELATED, "study__owner", "excluded_by",
+                                                          "voided_by", "override__deviation"), pk=pk)
+
+
+def _get_booking(pk: int) -> Booking:
+    return get_object_or_404(Booking.objects.select_related("tank__room", "tank__species", "protocol", "booked_by",
+                                                            "cancelled_by"), pk=pk)
+
+
+def _get_cohort(pk: int) -> Cohort:
+    return get_object_or_404(Cohort.objects.select_related("origin_tank__species", "protocol", "booking", "drawn_by",
+                                                           "returned_to", "ended_by"), pk=pk)
+
+
+def _may_change_booking(user, booking) -> bool:
+    return booking.booked_by_id == user.pk or has_role(user, MANAGER)
+
+
+# ---------------------------------------------------------------------------------------------
+# Index and protocols
+# ---------------------------------------------------------------------------------------------
+@require_GET
+@role_required(*READ)
+def index(request):
+    today = timezone.localdate()
+    services.expire_bookings(today)  # lazy expiry; the expire_bookings command does the same on a schedule
+    studies = Study.objects.select_related("owner", "protocol").annotate(
+        n_trials=Count("trials", filter=Q(trials__voided_at__isnull=True)),
+        n_scored=Count("trials", filter=Q(trials__voided_at__isnull=True, trials__disperse_s__isnull=False)))
+    ctx = {
+        "studies": studies,
+        "bookings": Booking.objects.active().select_related("tank__room", "booked_by", "protocol")
+                                   .filter(needed_on__lte=today + timedelta(days=31)),
+        "cohorts": Cohort.objects.filter(end="").select_related("origin_tank", "protocol")
+                                 .annotate(n_exposures=Count("trials", filter=Q(trials__voided_at__isnull=True))),
+        "protocols": Protocol.objects.all(),
+        "today": today,
+    }
+    return render(request, "experiments/index.html", ctx)
 
 
 @require_GET
-@role_required(RESEARCHER)
-def index(request):
-    return render(request, "experiments/index.html")
+@role_required(*READ)
+def protocol_detail(request, pk):
+    protocol = get_object_or_404(Protocol.objects.prefetch_related("allowances"), pk=pk)
+    ctx = {"protocol": protocol, "problem": protocol.problem(timezone.localdate()), "cautions": protocol.cautions(),
+           "studies": protocol.studies.select_related("owner"),
+           "cohorts": protocol.cohorts.select_related("origin_tank")[:50]}
+    return render(request, "experiments/protocol_detail.html", ctx)
+
+
+# ---------------------------------------------------------------------------------------------
+# Bookings
+# ---------------------------------------------------------------------------------------------
+@require_http_methods(["GET", "POST"])
+@role_required(*RUN)
+def booking_new(request):
+    data = request.POST.copy() if request.method == "POST" else None
+    if data is not None and data.get("pick"):
+        data["tank"] = data["pick"]
+    form = BookingForm(data)
+    suggestions = None
+    if request.method == "POST" and form.is_valid():
+        d = form.cleaned_data
+        if request.POST.get("action") == "suggest" or not d["tank"]:
+            suggestions = services.suggest_tanks(d["species"], d["animals"])
+            if not suggestions:
+                messages.warning(request, f"No active tank of {d['species']} has {d['animals']} animals available.")
+        else:
+            try:
+                booking = services.book(user=request.user, protocol=d["protocol"], tank=d["tank"],
+                                        animals=d["animals"], needed_on=d["needed_on"], purpose=d["purpose"])
+            except services.Refused as refusal:
+                messages.error(request, str(refusal))
+                return render(request, "experiments/booking_new.html", {"form": form}, status=409)
+            messages.success(request, f"Booked {booking.animals} animals from {booking.tank.code} for "
+                                      f"{booking.needed_on:%Y-%m-%d}.")
+            return redirect(booking)
+    status = 400 if request.method == "POST" and not form.is_valid() else 200
+    return render(request, "experiments/booking_new.html", {"form": form, "suggestions": suggestions}, status=status)
+
+
+@require_GET
+@role_required(*READ)
+def booking_detail(request, pk):
+    booking = _get_booking(pk)
+    ctx = {"booking": booking, "cohort": Cohort.objects.filter(booking=booking).first(),
+           "available": services.available(booking.tank), "population": services.current_population(booking.tank),
+           "draw_form": DrawForm(booking=booking), "cancel_form": ReasonForm(),
+           "may_change": _may_change_booking(request.user, booking) and has_role(request.user, *RUN)}
+    return render(request, "experiments/booking_detail.html", ctx)
+
+
+@require_POST
+@role_required(*RUN)
+def booking_cancel(request, pk):
+    booking = _get_booking(pk)
+    if not _may_change_booking(request.user, booking):
+        raise PermissionDenied("Only the researcher who booked or a manager may cancel a booking.")
+    form = ReasonForm(request.POST)
+    if not form.is_valid():
+        messages.error(request, "Give a reason to cancel the booking; nothing was changed.")
+        return redirect(booking)
+    try:
+        services.cancel_booking(user=request.user, booking=booking, reason=form.cleaned_data["reason"])
+        messages.success(request, f"Booking {booking.pk} cancelled; the animals are available again.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    return redirect(booking)
+
+
+@require_POST
+@role_required(*RUN)
+def booking_draw(request, pk):
+    booking = _get_booking(pk)
+    if not _may_change_booking(request.user, booking):
+        raise PermissionDenied("Only the researcher who booked or a manager may draw the animals.")
+    form = DrawForm(request.POST, booking=booking)
+    if not form.is_valid():
+        messages.error(request, " ".join(m for msgs in form.errors.values() for m in msgs))
+        return redirect(booking)
+    try:
+        cohort = services.draw(user=request.user, booking=booking, count=form.cleaned_data["count"],
+                               at=form.cleaned_data.get("drawn_at"))
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+        return redirect(booking)
+    messages.success(request, f"Drew {cohort.size} animals from {cohort.origin_tank.code}: cohort {cohort.label}.")
+    return redirect(cohort)
+
+
+def _calendar_days(view: str, start: date) -> list[date]:
+    if view == "month":
+        first = start.replace(day=1)
+        grid_start = first - timedelta(days=first.weekday())
+        next_month = (first + timedelta(days=32)).replace(day=1)
+        grid_end = next_month + timedelta(days=(6 - next_month.weekday()) % 7 or 0)
+        if grid_end < next_month:
+            grid_end = next_month
+        n = (grid_end - grid_start).days
+        return [grid_start + timedelta(days=i) for i in range(((n + 6) // 7) * 7)]
+    monday = start - timedelta(days=start.weekday())
+    return [monday + timedelta(days=i) for i in range(7)]
+
+
+@require_GET
+@role_required(*READ)
+def calendar(request):
+    services.expire_bookings()
+    form = CalendarForm(request.GET or None)
+    form.is_valid()
+    data = getattr(form, "cleaned_data", {}) or {}
+    view = data.get("view") or "week"
+    start = data.get("start") or timezone.localdate()
+    room = data.get("room")
+    days = _calendar_days(view, start)
+    bookings = (Booking.objects.between(days[0], days[-1]).in_room(room).exclude(status=Booking.Status.CANCELLED)
+                .select_related("tank__room", "booked_by", "protocol"))
+    by_day: dict[date, list] = {d: [] for d in days}
+    for b in bookings:
+        by_day[b.needed_on].append(b)
+    step = timedelta(days=7) if view == "week" else timedelta(days=31)
+    base = start if view == "week" else start.replace(day=1)
+    prev_start, next_start = base - step, base + step
+    if view == "month":
+        prev_start, next_start = prev_start.replace(day=1), next_start.replace(day=1)
+    ctx = {"form": form, "view": view, "room": room, "start": start, "rooms": Room.objects.all(),
+           "weeks": [[(d, by_day[d]) for d in days[i:i + 7]] for i in range(0, len(days), 7)],
+           "month": start.month if view == "month" else None, "today": timezone.localdate(),
+           "prev": prev_start, "next": next_start, "total": sum(b.animals for b in bookings)}
+    return render(request, "experiments/calendar.html", ctx)
+
+
+# ---------------------------------------------------------------------------------------------
+# Cohorts
+# ---------------------------------------------------------------------------------------------
+@require_GET
+@role_required(*READ)
+def cohort_detail(request, pk):
+    cohort = _get_cohort(pk)
+    trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("run_at"))
+    rows = reports.ledger_rows(trials, trials)
+    protocol = cohort.protocol
+    ctx = {"cohort": cohort, "rows": rows, "protocol": protocol,
+           "n_exposures": len(trials), "cumulative": sum(t.dose_mj_cm2 or 0 for t in trials),
+           "last": trials[-1].run_at if trials else None,
+           "next_allowed": trials[-1].run_at + timedelta(hours=protocol.min_rest_hours) if trials else None,
+           "end_form": CohortEndForm(cohort=cohort), "can_run": has_role(request.user, *RUN)}
+    return render(request, "experiments/cohort_detail.html", ctx)
+
+
+@require_POST
+@role_required(*RUN)
+def cohort_end(request, pk):
+    cohort = _get_cohort(pk)
+    form = CohortEndForm(request.POST, cohort=cohort)
+    if not form.is_valid():
+        messages.error(request, "Nothing was saved: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+        return redirect(cohort)
+    d = form.cleaned_data
+    try:
+        services.end_cohort(user=request.user, cohort=cohort, end=d["end"], returned_to=d.get("returned_to"),
+                            returned_count=d.get("returned_count"), method=d.get("method", ""), note=d.get("note", ""))
+        messages.success(request, f"Cohort {cohort.label} ended.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    return redirect(cohort)
+
+
+# ---------------------------------------------------------------------------------------------
+# Studies
+# ---------------------------------------------------------------------------------------------
+@require_http_methods(["GET", "POST"])
+@role_required(*RUN)
+def study_new(request):
+    form = StudyForm(request.POST or None)
+    if request.method == "POST" and form.is_valid():
+        d = form.cleaned_data
+        seed = d["seed"] if d["seed"] is not None else random.SystemRandom().randrange(2**31)
+        study = services.create_study(
+            user=request.user, code=d["code"], title=d["title"], protocol=d["protocol"], conditions=d["conditions"],
+            replicates=d["replicates"], method=d["method"], seed=seed, blinded=d["blinded"],
+            observation_window_s=d["observation_window_s"], question=d["question"],
+            exclusion_criteria=d["exclusion_criteria"])
+        messages.success(request, f"Study {study.code} created: {len(study.allocation)} trials allocated "
+                                  f"({study.get_method_display().lower()}, seed {study.seed}).")
+        return redirect(study)
+    return render(request, "experiments/study_new.html", {"form": form}, status=400 if form.errors else 200)
+
+
+def _study_trials(study):
+    return list(study.trials.select_related(*TRIAL_RELATED).order_by("slot", "pk"))
+
+
+@require_GET
+@role_required(*READ)
+def study_detail(request, code):
+    study = _get_study(code)
+    trials = _study_trials(study)
+    blind = study.hides_conditions_from(request.user)
+    ctx = {"study": study, "trials": trials, "blind": blind, "is_owner": request.user.pk == study.owner_id,
+           "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
+           "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided)}
+    if not blind:
+        frame = reports.tidy_frame(trials)
+        result = reports.analyse(frame, study.conditions)
+        ctx.update(result=result, n_analysed=len(reports.analysable(frame)),
+                   allocation=study.allocation)
+    return render(request, "experiments/study_detail.html", ctx)
+
+
+@require_POST
+@role_required(*RUN)
+def study_unblind(request, code):
+    study = _get_study(code)
+    form = ReasonForm(request.POST)
+    if not form.is_valid():
+        messages.error(request, "Give a reason to unblind; nothing was changed.")
+        return redirect(study)
+    try:
+        services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"])
+        messages.success(request, f"Study {study.code} unblinded; outcomes are locked.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    return redirect(study)
+
+
+def _analysis_for(request, code):
+    study = _get_study(code)
+    if study.hides_conditions_from(request.user):
+        raise PermissionDenied("The study is blinded: analyses by condition appear after its owner unblinds it.")
+    trials = _study_trials(study)
+    frame = reports.tidy_frame(trials)
+    return study, frame, reports.analyse(frame, study.conditions)
+
+
+def _csv_response(frame, filename: str) -> HttpResponse:
+    buffer = io.StringIO()
+    frame.to_csv(buffer, index=False, quoting=csv.QUOTE_MINIMAL, float_format="%.6g")
+    response = HttpResponse(buffer.getvalue(), content_type="text/csv; charset=utf-8")
+    response["Content-Disposition"] = f'attachment; filename="{filename}"'
+    return response
+
+
+@require_GET
+@role_required(*READ)
+def study_csv(request, code):
+    study, frame, _ = _analysis_for(request, code)
+    return _csv_response(frame, f"{study.code}-trials.csv")
+
+
+CHARTS = ("km", "dose")
+
+
+@require_GET
+@role_required(*READ)
+def study_chart(request, code, kind, fmt):
+    if kind not in CHARTS or fmt not in charts.FORMATS:
+        raise Http404("Unknown chart.")
+    study, frame, result = _analysis_for(request, code)
+    if kind == "km":
+        labels = {r.condition: f"log-rank p = {r.logrank['p']:.2g}" for r in result.conditions
+                  if r.logrank and "p" in r.logrank}
+        body = charts.km_chart(result.km_table, order=[c.condition for c in result.conditions],
+                               window_s=study.observation_window_s, labels=labels, fmt=fmt,
+                               title=f"Clump dispersal by condition · {study.code} (log-rank vs {result.reference})")
+    else:
+        if not result.varies_dose:
+            raise Http404("This study does not vary the light dose.")
+        fit = result.dose_fit
+        body = charts.dose_response_chart(
+            result.dose_groups, curve=result.dose_curve, ec50=fit.ec50 if fit else None,
+            ec50_lower=fit.ec50_lower if fit else None, ec50_upper=fit.ec50_upper if fit else None,
+            control=result.control, title=f"Dose-response · {study.code}",
+            note=_dose_note(fit, result.dose_error), fmt=fmt)
+    response = HttpResponse(body, content_type=charts.FORMATS[fmt])
+    if request.GET.get("download"):
+        response["Content-Disposition"] = f'attachment; filename="{study.code}-{kind}.{fmt}"'
+    return response
+
+
+def _dose_note(fit, error: str) -> str:
+    if fit is None:
+        return f"No fit: {error}"
+    interval = "Fieller" if fit.interval_method == "fieller" else "delta method (Fieller unbounded: unreliable)"
+    return (f"Response: clump dispersed within the window. Two-parameter log-logistic fit, binomial maximum "
+            f"likelihood; EC50 95 % interval by {interval}; goodness of fit p = {fit.gof_p:.2g}.")
+
+
+@require_GET
+@role_required(*READ)
+def study_chart_csv(request, code, kind):
+    if kind not in CHARTS:
+        raise Http404("Unknown chart.")
+    study, frame, result = _analysis_for(request, code)
+    if kind == "km":
+        return _csv_response(result.km_table, f"{study.code}-km.csv")
+    if not result.varies_dose:
+        raise Http404("This study does not vary the light dose.")
+    return _csv_response(reports.dose_table(result), f"{study.code}-dose-response.csv")
+
+
+# ---------------------------------------------------------------------------------------------
+# Trials
+# ---------------------------------------------------------------------------------------------
+def _open_slots(study) -> list[dict]:
+    taken = set(study.trials.counting().values_list("slot", flat=True))
+    return [s for s in study.allocation if s["slot"] not in taken]
+
+
+def _trial_page(request, study, form, status=200, refusal=None):
+    ctx = {"study": study, "form": form, "groups": form.groups(), "refusal": refusal,
+           "caution_uv": cautions_for(Stimulus.UV), "caution_electrical": cautions_for(Stimulus.ELECTRICAL),
+           "protocol_cautions": study.protocol.cautions(),
+           "allowances": study.protocol.allowances.all(), "is_manager": has_role(request.user, MANAGER)}
+    return render(request, "experiments/trial_new.html", ctx, status=status)
+
+
+@require_http_methods(["GET", "POST"])
+@role_required(*RUN)
+def trial_new(request, code):
+    study = _get_study(code)
+    slots = _open_slots(study)
+    if not slots or study.is_locked:
+        messages.info(request, f"Study {study.code} has no open slots.")
+        return redirect(study)
+    cohorts = Cohort.objects.filter(end="", protocol=study.protocol).select_related("origin_tank")
+    form = TrialForm(request.POST or None, study=study, slots=slots, cohorts=cohorts,
+                     can_override=has_role(request.user, MANAGER), initial={"kind": request.GET.get("kind")})
+    if request.method != "POST":
+        return _trial_page(request, study, form)
+    if not form.is_valid():
+        messages.error(request, "Nothing was saved. Correct the fields marked below.")
+        return _trial_page(request, study, form, status=400)
+    try:
+        result = services.record_trial(user=request.user, study=study, slot=form.cleaned_data["slot"],
+                                       cohort=form.cleaned_data["cohort"], values=form.trial_values(),
+                                       override_reason=form.cleaned_data.get("override_reason", ""))
+    except services.LimitRefused as refusal:
+        messages.error(request, "Nothing was saved: a protocol limit stands in the way.")
+        return _trial_page(request, study, form, status=409, refusal=refusal)
+    except (services.Refused, ValidationError) as error:
+        if isinstance(error, ValidationError) and hasattr(error, "error_dict"):
+            for field, errors in error.message_dict.items():
+                form.add_error(field if field in form.fields else None, errors)
+        else:
+            messages.error(request, _error_text(error))
+        messages.error(request, "Nothing was saved.")
+        return _trial_page(request, study, form, status=400)
+    trial = result.trial
+    if result.override:
+        messages.warning(request, f"Trial {trial.code} saved with your override; deviation #{result.deviation.pk} "
+                                  "is open for follow-up.")
+    else:
+        messages.success(request, f"Trial #{trial.slot} ({trial.code}) saved.")
+    return redirect(trial)
+
+
+@require_GET
+@role_required(*READ)
+def trial_detail(request, pk):
+    trial = _get_trial(pk)
+    blind = trial.study.hides_conditions_from(request.user)
+    ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
+           "attachment_form": AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
+           "cautions": [] if blind else trial.cautions(),
+           "override": trial.override if reports._has_override(trial) else None}
+    return render(request, "experiments/trial_detail.html", ctx)
+
+
+@require_http_methods(["GET", "POST"])
+@role_required(*RUN)
+def trial_score(request, pk):
+    trial = _get_trial(pk)
+    form = ScoreForm(request.POST or None, instance=trial)
+    if request.method == "POST" and form.is_valid():
+        try:
+            services.score_trial(user=request.user, trial=trial, values=form.outcome_values())
+        except (services.Refused, ValidationError) as error:
+            messages.error(request, "Nothing was saved: " + _error_text(error))
+            return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=400)
+        messages.success(request, f"Score for {trial.code} saved.")
+        return redirect(trial)
+    status = 400 if request.method == "POST" else 200
+    return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=status)
+
+
+@require_POST
+@role_required(*RUN)
+def trial_set_aside(request, pk, action):
+    trial = _get_trial(pk)
+    form = ReasonForm(request.POST)
+    if not form.is_valid():
+        messages.error(request, "Give a reason; nothing was changed.")
+        return redirect(trial)
+    handler = {"exclude": services.exclude_trial, "void": services.void_trial}.get(action)
+    if handler is None:
+        raise Http404("Unknown action.")
+    try:
+        handler(user=request.user, trial=trial, reason=form.cleaned_data["reason"])
+        messages.success(request, f"Trial {trial.code} {'excluded' if action == 'exclude' else 'voided'}.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    return redirect(trial)
+
+
+@require_POST
+@role_required(*RUN)
+def attachment_add(request, pk):
+    trial = _get_trial(pk)
+    form = AttachmentForm(request.POST, request.FILES)
+    if form.is_valid():
+        a = services.add_attachment(user=request.user, trial=trial, upload=form.cleaned_data["file"],
+                                    kind=form.cleaned_data["kind"], caption=form.cleaned_data["caption"])
+        messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
+    else:
+        messages.error(request, "Nothing was stored: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+    return redirect(trial)
+
+
+@require_GET
+@role_required(*READ)
+def attachment(request, pk):
+    # Photos and videos carry the code, not the condition: blinded scorers need them.
+    item = get_object_or_404(Attachment.objects.current(), pk=pk)
+    return FileResponse(item.file.open("rb"), as_attachment=True, filename=item.name)
+
+
+# ---------------------------------------------------------------------------------------------
+# Exposure ledger (managers)
+# ---------------------------------------------------------------------------------------------
+def _ledger(request):
+    qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "run_at")
+    ledger_filter = LedgerFilter(request.GET or None, queryset=qs)
+    shown = list(ledger_filter.qs[:2000])
+    cohort_ids = {t.cohort_id for t in shown}
+    every = list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).only("pk", "cohort_id", "run_at",
+                                                                                  "dose_mj_cm2"))
+    return ledger_filter, reports.ledger_rows(shown, every)
+
+
+@require_GET
+@role_required(MANAGER)
+def ledger(request):
+    ledger_filter, rows = _ledger(request)
+    return render(request, "experiments/ledger.html", {"filter": ledger_filter, "rows": rows,
+                                                       "csv_query": request.GET.urlencode()})
+
+
+@require_GET
+@role_required(MANAGER)
+def ledger_csv(request):
+    _, rows = _ledger(request)
+    frame = pd.DataFrame([{k: r[k] for k in reports.LEDGER_COLUMNS} for r in rows], columns=reports.LEDGER_COLUMNS)
+    return _csv_response(frame, "exposure-ledger.csv")
+

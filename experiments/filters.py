@@ -1,0 +1,36 @@
+import django_filters
+from django import forms
+
+from colonies.models import Tank
+
+from .models import Protocol, Stimulus, Trial
+
+
+class LedgerFilter(django_filters.FilterSet):
+    """The exposure ledger: every exposure (trial) by protocol, cohort, tank, stimulus and date."""
+
+    protocol = django_filters.ModelChoiceFilter(queryset=Protocol.objects.all())
+    cohort = django_filters.NumberFilter(field_name="cohort_id", label="Cohort number",
+                                         widget=forms.NumberInput(attrs={"min": 1}))
+    tank = django_filters.ModelChoiceFilter(field_name="cohort__origin_tank", queryset=Tank.objects.all(),
+                                            label="Origin tank")
+    kind = django_filters.ChoiceFilter(choices=Stimulus.choices, label="Stimulus")
+    start = django_filters.DateFilter(field_name="run_at", lookup_expr="date__gte", label="From",
+                                      widget=forms.DateInput(attrs={"type": "date"}))
+    end = django_filters.DateFilter(field_name="run_at", lookup_expr="date__lte", label="To",
+                                    widget=forms.DateInput(attrs={"type": "date"}))
+    overridden = django_filters.BooleanFilter(method="filter_overridden", label="Overrides only",
+                                              widget=forms.CheckboxInput)
+    active_cohorts = django_filters.BooleanFilter(method="filter_active", label="Active cohorts only",
+                                                  widget=forms.CheckboxInput)
+
+    class Meta:
+        model = Trial
+        fields = ["protocol", "cohort", "tank", "kind", "start", "end"]
+
+    def filter_overridden(self, queryset, name, value):
+        return queryset.filter(override__isnull=False) if value else queryset
+
+    def filter_active(self, queryset, name, value):
+        return queryset.filter(cohort__end="") if value else queryset
+

@@ -1,0 +1,370 @@
+from django import forms
+from django.utils import timezone
+
+from colonies.models import Species, Tank
+
+from .allocation import BLOCK
+from .models import Attachment, Cohort, Protocol, Stimulus, Study, Trial
+from .validators import BOUNDS, outside_message
+
+DATE = forms.DateInput(attrs={"type": "date"}, format="%Y-%m-%d")
+DATETIME = forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M")
+MAX_CLUSTER_POINTS = 50
+
+
+class ReasonForm(forms.Form):
+    reason = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), help_text="Required; kept in the history.")
+
+    def clean_reason(self):
+        reason = self.cleaned_data["reason"].strip()
+        if not reason:
+            raise forms.ValidationError("Give a reason.")
+        return reason
+
+
+class BookingForm(forms.Form):
+    protocol = forms.ModelChoiceField(queryset=Protocol.objects.none(),
+                                      help_text="Only approved protocols in force are listed.")
+    species = forms.ModelChoiceField(queryset=Species.objects.all())
+    animals = forms.IntegerField(
+        min_value=1, max_value=100000, help_text="How many animals to draw.",
+        error_messages={"min_value": "Animals %(value)s is not possible: allowed range 1–100000.",
+                        "max_value": "Animals %(value)s is not possible: allowed range 1–100000."})
+    needed_on = forms.DateField(widget=DATE, help_text="The day you will draw them.")
+    tank = forms.ModelChoiceField(queryset=Tank.objects.active().select_related("species"), required=False,
+                                  help_text="Leave empty and press 'Suggest tanks' to see tanks with enough animals.")
+    purpose = forms.CharField(max_length=200, required=False)
+
+    def __init__(self, *args, today=None, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.today = today or timezone.localdate()
+        self.fields["protocol"].queryset = Protocol.objects.usable_on(self.today)
+        self.fields["needed_on"].initial = self.today
+
+    def clean_needed_on(self):
+        day = self.cleaned_data["needed_on"]
+        if day < self.today:
+            raise forms.ValidationError(f"Date {day:%Y-%m-%d} is in the past; book for {self.today:%Y-%m-%d} or later.")
+        return day
+
+    def clean(self):
+        data = super().clean()
+        tank, species = data.get("tank"), data.get("species")
+        if tank and species and tank.species_id != species.pk:
+            self.add_error("tank", f"Tank {tank.code} holds {tank.species}, not {species}.")
+        return data
+
+
+class DrawForm(forms.Form):
+    count = forms.IntegerField(min_value=1, label="Animals drawn",
+                               error_messages={"min_value": "Animals drawn %(value)s is not possible: at least 1."})
+    drawn_at = forms.DateTimeField(widget=DATETIME, required=False, help_text="Empty: now.")
+
+    def __init__(self, *args, booking, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.booking = booking
+        self.fields["count"].initial = booking.animals
+        self.fields["count"].max_value = booking.animals
+        self.fields["count"].widget.attrs["max"] = booking.animals
+
+    def clean_count(self):
+        count = self.cleaned_data["count"]
+        if count > self.booking.animals:
+            raise forms.ValidationError(f"Animals drawn {count} is more than booked: allowed range 1–{self.booking.animals}.")
+        return count
+
+
+class CohortEndForm(forms.Form):
+    end = forms.ChoiceField(choices=Cohort.End.choices)
+    returned_to = forms.ModelChoiceField(queryset=Tank.objects.in_use(), required=False)
+    returned_count = forms.IntegerField(min_value=0, required=False, label="Animals returned",
+                                        error_messages={"min_value": "Animals returned %(value)s is not possible: "
+                                                                     "at least 0."})
+    method = forms.CharField(max_length=200, required=False, label="Retirement method")
+    note = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
+
+    def __init__(self, *args, cohort, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.cohort = cohort
+        self.fields["returned_to"].queryset = Tank.objects.in_use().filter(species_id=cohort.origin_tank.species_id)
+        self.fields["returned_to"].initial = cohort.origin_tank_id
+
+    def clean(self):
+        data = super().clean()
+        end = data.get("end")
+        if end == Cohort.End.RETURNED:
+            if not data.get("returned_to"):
+                self.add_error("returned_to", "Choose the tank the animals went back to.")
+            count = data.get("returned_count")
+            if count is None:
+                self.add_error("returned_count", "Give the number of animals returned.")
+            elif count > self.cohort.size:
+                self.add_error("returned_count", f"Animals returned {count} is not possible: allowed range "
+                                                 f"0–{self.cohort.size} (the cohort).")
+        if end == Cohort.End.RETIRED and not data.get("method", "").strip():
+            self.add_error("method", "Say which method was used.")
+        return data
+
+
+class StudyForm(forms.Form):
+    code = forms.SlugField(max_length=40, help_text="Short name for addresses and exports, e.g. 'uv-dose-2026'.")
+    title = forms.CharField(max_length=200)
+    protocol = forms.ModelChoiceField(queryset=Protocol.objects.none())
+    question = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
+    conditions = forms.CharField(widget=forms.Textarea(attrs={"rows": 4}),
+                                 help_text="One condition per line; the first is the reference (control).")
+    replicates = forms.IntegerField(
+        min_value=1, max_value=200, initial=5, help_text="Trials (dishes) per condition.",
+        error_messages={"min_value": "Replicates %(value)s is not possible: allowed range 1–200.",
+                        "max_value": "Replicates %(value)s is not possible: allowed range 1–200."})
+    method = forms.ChoiceField(choices=Study.Method.choices, initial=BLOCK)
+    seed = forms.IntegerField(required=False, min_value=0, max_value=2**62,
+                              help_text="Empty: drawn at random now and recorded.")
+    observation_window_s = forms.IntegerField(min_value=1, max_value=86400, initial=600,
+                                              error_messages={
+                                                  "min_value": "Observation window %(value)s s is not possible: "
+                                                               "allowed range 1–86400 s.",
+                                                  "max_value": "Observation window %(value)s s is not possible: "
+                                                               "allowed range 1–86400 s."},
+                                              label="Observation window (s)",
+                                              help_text="Still clumped at the end: censored at the window.")
+    exclusion_criteria = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
+    blinded = forms.BooleanField(required=False, initial=True, help_text="Scorers see a code, not the condition.")
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.fields["protocol"].queryset = Protocol.objects.usable_on(timezone.localdate())
+
+    def clean_code(self):
+        code = self.cleaned_data["code"]
+        if Study.objects.filter(code=code).exists():
+            raise forms.ValidationError(f"A study called '{code}' exists already.")
+        return code
+
+    def clean_conditions(self):
+        labels = [line.strip() for line in self.cleaned_data["conditions"].splitlines() if line.strip()]
+        if len(labels) < 2:
+            raise forms.ValidationError("Give at least two conditions, one per line.")
+        if len(set(labels)) != len(labels):
+            raise forms.ValidationError("Each condition needs its own label.")
+        if any(len(label) > 80 for label in labels):
+            raise forms.ValidationError("Keep each condition label to 80 characters.")
+        return labels
+
+
+def parse_clusters(text: str, animals: int | None) -> list[dict]:
+    """Lines of 'time_s clusters largest_fraction' → [{"t_s", "clusters", "largest_fraction"}]."""
+    points = []
+    for number, line in enumerate(text.splitlines(), start=1):
+        if not line.strip():
+            continue
+        parts = line.replace(",", " ").split()
+        if len(parts) != 3:
+            raise forms.ValidationError(f"Cluster line {number} '{line.strip()}': write time (s), cluster count and "
+                                        "largest-cluster fraction, e.g. '60 3 0.55'.")
+        try:
+            t_s, clusters, fraction = float(parts[0]), int(parts[1]), float(parts[2])
+        except ValueError:
+            raise forms.ValidationError(f"Cluster line {number} '{line.strip()}' is not three numbers.") from None
+        b = BOUNDS["disperse_s"]
+        if not b.low <= t_s <= b.high:
+            raise forms.ValidationError(f"Cluster line {number}: time {t_s:g} s is not possible: allowed range {b.text()}.")
+        upper = animals or 100000
+        if not 0 <= clusters <= upper:
+            raise forms.ValidationError(f"Cluster line {number}: cluster count {clusters} is not possible: allowed "
+                                        f"range 0–{upper} (the animals in the arena).")
+        if not 0 <= fraction <= 1:
+            raise forms.ValidationError(f"Cluster line {number}: " + outside_message("largest_fraction", fraction))
+        points.append({"t_s": t_s, "clusters": clusters, "largest_fraction": fraction})
+    if len(points) > MAX_CLUSTER_POINTS:
+        raise forms.ValidationError(f"At most {MAX_CLUSTER_POINTS} cluster time points.")
+    return sorted(points, key=lambda p: p["t_s"])
+
+
+def clusters_text(points: list[dict]) -> str:
+    return "\n".join(f"{p['t_s']:g} {p['clusters']} {p['largest_fraction']:g}" for p in points or [])
+
+
+class OutcomeFields(forms.ModelForm):
+    clusters_text = forms.CharField(
+        widget=forms.Textarea(attrs={"rows": 3, "placeholder": "60 3 0.55\n120 6 0.30"}), required=False,
+        label="Clusters over time", help_text="One line per time point: time (s), cluster count, largest-cluster fraction.")
+
+    def window(self) -> int:
+        raise NotImplementedError
+
+    def animals(self) -> int | None:
+        raise NotImplementedError
+
+    def clean(self):
+        data = super().clean()
+        window = self.window()
+        if "clusters_text" in data:
+            try:
+                data["clusters"] = parse_clusters(data.get("clusters_text") or "", self.animals())
+            except forms.ValidationError as error:
+                self.add_error("clusters_text", error)
+        disperse, censored = data.get("disperse_s"), data.get("censored")
+        if censored:
+            data["disperse_s"] = float(window)
+        elif disperse is not None and window and disperse > window:
+            self.add_error("disperse_s", f"Time to disperse {disperse:g} s is after the observation window "
+                                         f"(0–{window} s). Tick 'still clumped' to record it as censored.")
+        mortality, animals = data.get("mortality_24h"), self.animals()
+        if mortality is not None and animals and mortality > animals:
+            self.add_error("mortality_24h", f"Mortality at 24 h {mortality} is not possible: allowed range 0–{animals} "
+                                            "(the animals in the arena).")
+        return data
+
+
+ARENA_FIELDS = ["vessel", "arena_diameter_mm", "water_volume_ml", "water_temp_c", "light_lux", "acclimation_min",
+                "animals"]
+STIMULUS_FIELDS = ["kind", "wavelength_nm", "irradiance_mw_cm2", "duration_s", "voltage_v", "electrode_gap_cm",
+                   "pulse_width_ms", "pulse_count", "pulse_frequency_hz", "temp_step_c", "temp_rate_c_min",
+                   "substance", "concentration_um", "mechanical_note"]
+OUTCOME_FORM_FIELDS = ["aggregate_s", "disperse_s", "censored", "mortality_24h"]
+
+# Which stimulus fields each kind needs; the form asks for them and the page shows only those.
+REQUIRED_FOR_KIND = {
+    Stimulus.LIGHT: ("wavelength_nm", "irradiance_mw_cm2", "duration_s"),
+    Stimulus.UV: ("wavelength_nm", "irradiance_mw_cm2", "duration_s"),
+    Stimulus.ELECTRICAL: ("voltage_v", "electrode_gap_cm", "pulse_width_ms", "pulse_count"),
+    Stimulus.THERMAL: ("temp_step_c",),
+    Stimulus.CHEMICAL: ("substance", "concentration_um"),
+    Stimulus.MECHANICAL: ("mechanical_note",),
+    Stimulus.NONE: (),
+}
+
+
+class TrialForm(OutcomeFields):
+    slot = forms.TypedChoiceField(coerce=int, help_text="Open slots in the randomised run order; the first is next.")
+    cohort = forms.ModelChoiceField(queryset=Cohort.objects.none(), help_text="Active cohorts under the study's protocol.")
+    run_at = forms.DateTimeField(widget=DATETIME, label="Stimulus applied at")
+    override_reason = forms.CharField(
+        widget=forms.Textarea(attrs={"rows": 2}), required=False, label="Manager's override: reason",
+        help_text="Only when a protocol limit is broken; recorded with your name and opens a deviation.")
+
+    class Meta:
+        model = Trial
+        fields = ARENA_FIELDS + STIMULUS_FIELDS + OUTCOME_FORM_FIELDS + ["note"]
+        widgets = {"note": forms.Textarea(attrs={"rows": 2})}
+        labels = {"censored": "Still clumped at the end of the window (censored)", "mortality_24h": "Dead at 24 h"}
+
+    def __init__(self, *args, study: Study, slots: list[dict], cohorts, can_override: bool, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.study = study
+        self.fields["slot"].choices = [(s["slot"], f"#{s['slot']} · {s['code']} · {s['condition']} "
+                                                   f"(replicate {s['replicate']})") for s in slots]
+        self.fields["cohort"].queryset = cohorts
+        self.fields["run_at"].initial = timezone.localtime().replace(second=0, microsecond=0)
+        self.fields["kind"].widget.attrs["data-stimulus-kind"] = "1"
+        self.fields["animals"].widget.attrs["min"] = 1
+        if not can_override:
+            del self.fields["override_reason"]
+
+    def window(self) -> int:
+        return self.study.observation_window_s
+
+    def animals(self):
+        return self.cleaned_data.get("animals")
+
+    def group(self, names) -> list:
+        return [self[name] for name in names if name in self.fields]
+
+    def groups(self) -> dict[str, list]:
+        """Bound fields by section of the page, so the template lists no field names."""
+        return {
+            "arena": self.group(ARENA_FIELDS),
+            "light": self.group(["wavelength_nm", "irradiance_mw_cm2", "duration_s"]),
+            "electrical": self.group(["voltage_v", "electrode_gap_cm", "pulse_width_ms", "pulse_count",
+                                      "pulse_frequency_hz"]),
+            "thermal": self.group(["temp_step_c", "temp_rate_c_min"]),
+            "chemical": self.group(["substance", "concentration_um"]),
+            "outcome": self.group(OUTCOME_FORM_FIELDS),
+        }
+
+    def clean(self):
+        data = super().clean()
+        kind = data.get("kind")
+        for name in REQUIRED_FOR_KIND.get(kind, ()):
+            if data.get(name) in (None, ""):
+                self.add_error(name, f"Required for a {Stimulus(kind).label.lower()} stimulus.")
+        return data
+
+    def _post_clean(self):
+        # Model validation runs in services.record_trial, where the slot, cohort and derived
+        # values are known; here only the fields themselves are checked.
+        for name, value in list(self.cleaned_data.items()):
+            field = Trial._meta.get_field(name) if name in self._meta.fields else None
+            if field is not None and value not in (None, ""):
+                for validator in field.validators:
+                    try:
+                        validator(value)
+                    except forms.ValidationError as error:
+                        self.add_error(name, error)
+
+    def trial_values(self) -> dict:
+        data = self.cleaned_data
+        values = {name: data.get(name) for name in ARENA_FIELDS + STIMULUS_FIELDS + ["note"]}
+        values["substance"] = values["substance"] or ""
+        values["mechanical_note"] = values["mechanical_note"] or ""
+        values["note"] = values["note"] or ""
+        values["run_at"] = data["run_at"]
+        for name in ("aggregate_s", "disperse_s", "censored", "mortality_24h", "clusters"):
+            values[name] = data.get(name)
+        values["censored"] = bool(values["censored"])
+        values["clusters"] = values["clusters"] or []
+        return values
+
+
+class ScoreForm(OutcomeFields):
+    class Meta:
+        model = Trial
+        fields = OUTCOME_FORM_FIELDS
+        labels = {"censored": "Still clumped at the end of the window (censored)", "mortality_24h": "Dead at 24 h"}
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.fields["clusters_text"].initial = clusters_text(self.instance.clusters)
+
+    def window(self) -> int:
+        return self.instance.observation_window_s
+
+    def animals(self):
+        return self.instance.animals
+
+    def _post_clean(self):
+        pass  # services.score_trial runs the model validation with the order checks
+
+    def outcome_values(self) -> dict:
+        data = self.cleaned_data
+        return {"aggregate_s": data.get("aggregate_s"), "disperse_s": data.get("disperse_s"),
+                "censored": bool(data.get("censored")), "mortality_24h": data.get("mortality_24h"),
+                "clusters": data.get("clusters") or []}
+
+
+class AttachmentForm(forms.ModelForm):
+    class Meta:
+        model = Attachment
+        fields = ["file", "kind", "caption"]
+
+    MAX_BYTES = 500 * 1024 * 1024
+
+    def clean_file(self):
+        upload = self.cleaned_data["file"]
+        if upload.size > self.MAX_BYTES:
+            raise forms.ValidationError(f"File size {upload.size / 1e6:.0f} MB is above the limit of "
+                                        f"{self.MAX_BYTES / 1e6:.0f} MB.")
+        return upload
+
+
+class CalendarForm(forms.Form):
+    room = forms.ModelChoiceField(queryset=None, required=False, empty_label="All rooms", to_field_name="code")
+    view = forms.ChoiceField(choices=[("week", "Week"), ("month", "Month")], required=False)
+    start = forms.DateField(widget=DATE, required=False)
+
+    def __init__(self, *args, **kwargs):
+        from colonies.models import Room
+        super().__init__(*args, **kwargs)
+        self.fields["room"].queryset = Room.objects.all()
+

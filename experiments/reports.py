@@ -1,0 +1,239 @@
+"""Study tables and statistics: trials to tidy rows, rows to summaries, curves and fits.
+
+The views pick the trials (a fixed number of queries); everything here works on the rows.
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from django.utils import timezone
+
+from . import analysis
+from .charts import KM_TABLE_COLUMNS
+from .models import Trial
+
+# Tidy export: one row per trial, every setting, derived value and outcome. Units in the names.
+TIDY_COLUMNS = [
+    "study", "slot", "code", "condition", "replicate", "status", "exclusion_reason", "cohort", "origin_tank",
+    "protocol", "run_at", "run_by", "vessel", "arena_diameter_mm", "water_volume_ml", "water_temp_c", "light_lux",
+    "acclimation_min", "animals", "stimulus", "wavelength_nm", "irradiance_mw_cm2", "duration_s", "dose_mj_cm2",
+    "voltage_v", "electrode_gap_cm", "field_v_cm", "pulse_width_ms", "pulse_count", "pulse_frequency_hz",
+    "pulse_on_s", "train_s", "temp_step_c", "temp_rate_c_min", "substance", "concentration_um", "mechanical_note",
+    "aggregate_s", "observation_window_s", "disperse_s", "censored", "dispersed", "clusters", "mortality_24h",
+    "scored_by", "scored_at", "override_reason",
+]
+NUMERIC = ("arena_diameter_mm", "water_volume_ml", "water_temp_c", "light_lux", "acclimation_min", "wavelength_nm",
+           "irradiance_mw_cm2", "duration_s", "dose_mj_cm2", "voltage_v", "electrode_gap_cm", "field_v_cm",
+           "pulse_width_ms", "pulse_count", "pulse_frequency_hz", "pulse_on_s", "train_s", "temp_step_c",
+           "temp_rate_c_min", "concentration_um", "aggregate_s", "disperse_s", "mortality_24h")
+
+
+def _when(dt) -> str:
+    return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M") if dt else ""
+
+
+def trial_status(t: Trial) -> str:
+    if t.is_voided:
+        return "voided"
+    if t.is_excluded:
+        return "excluded"
+    return "scored" if t.is_scored else "awaiting score"
+
+
+def tidy_frame(trials: list[Trial]) -> pd.DataFrame:
+    """One row per trial; trials need study, cohort__origin_tank, protocol, run_by, scored_by and
+    override loaded (select_related) so that this runs no query."""
+    rows = []
+    for t in trials:
+        override = getattr(t, "override", None) if _has_override(t) else None
+        row = {
+            "study": t.study.code, "slot": t.slot, "code": t.code, "condition": t.condition, "replicate": t.replicate,
+            "status": trial_status(t), "exclusion_reason": t.exclusion_reason or t.void_reason,
+            "cohort": t.cohort.label, "origin_tank": t.cohort.origin_tank.code, "protocol": t.protocol.reference,
+            "run_at": _when(t.run_at), "run_by": t.run_by.get_username(), "vessel": t.vessel, "animals": t.animals,
+            "stimulus": t.kind, "substance": t.substance, "mechanical_note": t.mechanical_note,
+            "observation_window_s": t.observation_window_s,
+            "censored": t.censored if t.is_scored else None, "dispersed": t.dispersed,
+            "clusters": json.dumps(t.clusters) if t.clusters else "",
+            "scored_by": t.scored_by.get_username() if t.scored_by_id else "", "scored_at": _when(t.scored_at),
+            "override_reason": override.reason if override else "",
+        }
+        row.update({name: getattr(t, name) for name in NUMERIC})
+        rows.append(row)
+    return pd.DataFrame(rows, columns=TIDY_COLUMNS)
+
+
+def _has_override(trial: Trial) -> bool:
+    try:
+        trial.override
+    except Trial.override.RelatedObjectDoesNotExist:
+        return False
+    return True
+
+
+def analysable(frame: pd.DataFrame) -> pd.DataFrame:
+    """Scored trials that are neither voided nor excluded."""
+    return frame[frame["status"] == "scored"]
+
+
+@dataclass
+class ConditionRow:
+    condition: str
+    summary: dict
+    logrank: dict | None = None  # vs the reference condition: statistic, p, or error
+
+
+@dataclass
+class StudyAnalysis:
+    conditions: list[ConditionRow]
+    reference: str
+    km_table: pd.DataFrame
+    dose_groups: pd.DataFrame | None = None
+    dose_fit: analysis.DoseResponseFit | None = None
+    dose_curve: pd.DataFrame | None = None
+    dose_error: str = ""
+    control: tuple[int, int] | None = None
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def varies_dose(self) -> bool:
+        return self.dose_groups is not None
+
+
+def km_table(frame: pd.DataFrame, order: list[str]) -> pd.DataFrame:
+    parts = []
+    for condition in order:
+        rows = frame[frame["condition"] == condition]
+        if rows.empty:
+            continue
+        km = analysis.kaplan_meier(rows["disperse_s"].astype(float), rows["dispersed"].astype(bool))
+        km.insert(0, "condition", condition)
+        parts.append(km)
+    if not parts:
+        return pd.DataFrame(columns=list(KM_TABLE_COLUMNS))
+    return pd.concat(parts, ignore_index=True)
+
+
+def analyse(frame: pd.DataFrame, conditions: list[str]) -> StudyAnalysis:
+    data = analysable(frame)
+    order = [c for c in conditions if c in set(data["condition"])] + \
+        [c for c in dict.fromkeys(data["condition"]) if c not in conditions]
+    reference = order[0] if order else (conditions[0] if conditions else "")
+    ref_rows = data[data["condition"] == reference]
+    rows = []
+    for condition in conditions + [c for c in order if c not in conditions]:
+        sub = data[data["condition"] == condition]
+        summary = analysis.condition_summary(sub["disperse_s"].astype(float).to_numpy(),
+                                             sub["dispersed"].astype(bool).to_numpy())
+        row = ConditionRow(condition, dict(summary))
+        if condition != reference and not sub.empty and not ref_rows.empty:
+            try:
+                stat, p = analysis.logrank_test(sub["disperse_s"].astype(float), sub["dispersed"].astype(bool),
+                                                ref_rows["disperse_s"].astype(float), ref_rows["dispersed"].astype(bool))
+                row.logrank = {"statistic": stat, "p": p}
+            except ValueError as error:
+                row.logrank = {"error": str(error)}
+        rows.append(row)
+    result = StudyAnalysis(rows, reference, km_table(data, order))
+    _dose_response(data, result)
+    return result
+
+
+def dose_groups(data: pd.DataFrame) -> pd.DataFrame:
+    light = data[data["stimulus"].isin(["light", "uv"]) & data["dose_mj_cm2"].notna()]
+    rounded = light.assign(dose=light["dose_mj_cm2"].astype(float).round(6))
+    grouped = rounded.groupby("dose").agg(n_responding=("dispersed", "sum"), n_total=("dispersed", "size"))
+    out = grouped.reset_index()
+    out["n_responding"] = out["n_responding"].astype(int)
+    return out
+
+
+def _dose_response(data: pd.DataFrame, result: StudyAnalysis) -> None:
+    """Fit when the study varies the light dose over at least three positive levels."""
+    if data.empty:
+        return
+    groups = dose_groups(data)
+    positive = groups[groups["dose"] > 0]
+    if len(positive) < 3:
+        return
+    result.dose_groups = groups
+    zero = groups[groups["dose"] == 0]
+    sham = data[data["stimulus"] == "none"]
+    n_ctrl = int(zero["n_total"].sum()) + len(sham)
+    if n_ctrl:
+        result.control = (int(zero["n_responding"].sum()) + int(sham["dispersed"].sum()), n_ctrl)
+    try:
+        fit = analysis.fit_dose_response(positive["dose"], positive["n_responding"], positive["n_total"])
+    except ValueError as error:
+        result.dose_error = str(error)
+        return
+    result.dose_fit = fit
+    grid = np.logspace(np.log10(positive["dose"].min() / 3), np.log10(positive["dose"].max() * 3), 200)
+    result.dose_curve = pd.DataFrame({"dose": grid, "fitted": fit.predict(grid)})
+
+
+def dose_table(result: StudyAnalysis) -> pd.DataFrame:
+    """The data behind the dose-response chart: groups with observed and fitted fractions."""
+    groups = result.dose_groups.copy()
+    groups["observed_fraction"] = groups["n_responding"] / groups["n_total"]
+    if result.dose_fit is not None:
+        fit = result.dose_fit
+        groups["fitted_fraction"] = [fit.predict(d) if d > 0 else None for d in groups["dose"]]
+        groups["ec50_mj_cm2"] = fit.ec50
+        groups["ec50_lower"] = fit.ec50_lower
+        groups["ec50_upper"] = fit.ec50_upper
+        groups["method"] = fit.method
+    return groups.rename(columns={"dose": "dose_mj_cm2"})
+
+
+# ---------------------------------------------------------------------------------------------
+# Exposure ledger
+# ---------------------------------------------------------------------------------------------
+LEDGER_COLUMNS = ["cohort", "origin_tank", "protocol", "run_at", "study", "slot", "stimulus", "settings", "animals",
+                  "dose_mj_cm2", "exposure_number", "max_exposures", "cumulative_dose_mj_cm2",
+                  "max_cumulative_dose_mj_cm2", "rest_h", "min_rest_h", "over_limit", "override_reason",
+                  "override_by", "deviation"]
+
+
+def ledger_rows(shown: list[Trial], every: list[Trial]) -> list[dict]:
+    """Rows for the shown exposures, with running totals over *all* exposures of their cohorts.
+
+    `every` holds every counting trial of the cohorts in `shown` (so a date filter does not
+    restart the count); both need cohort, protocol and override loaded.
+    """
+    running: dict[int, dict] = {}
+    by_trial: dict[int, dict] = {}
+    for t in sorted(every, key=lambda t: (t.cohort_id, t.run_at, t.pk)):
+        state = running.setdefault(t.cohort_id, {"n": 0, "dose": 0.0, "last": None})
+        state["n"] += 1
+        state["dose"] += t.dose_mj_cm2 or 0.0
+        rest = (t.run_at - state["last"]).total_seconds() / 3600 if state["last"] else None
+        state["last"] = t.run_at
+        by_trial[t.pk] = {"n": state["n"], "dose": state["dose"], "rest": rest}
+    rows = []
+    for t in shown:
+        totals = by_trial.get(t.pk, {"n": None, "dose": None, "rest": None})
+        p = t.protocol
+        override = t.override if _has_override(t) else None
+        over = []
+        if totals["n"] is not None and totals["n"] > p.max_exposures_per_group:
+            over.append("exposures")
+        if p.max_cumulative_dose_mj_cm2 is not None and totals["dose"] and totals["dose"] > p.max_cumulative_dose_mj_cm2:
+            over.append("cumulative dose")
+        if totals["rest"] is not None and totals["rest"] < p.min_rest_hours:
+            over.append("rest")
+        rows.append({
+            "trial": t, "cohort": t.cohort.label, "origin_tank": t.cohort.origin_tank.code,
+            "protocol": p.reference, "run_at": _when(t.run_at), "study": t.study.code, "slot": t.slot,
+            "stimulus": t.get_kind_display(), "settings": t.stimulus_text(), "animals": t.animals,
+            "dose_mj_cm2": t.dose_mj_cm2, "exposure_number": totals["n"], "max_exposures": p.max_exposures_per_group,
+            "cumulative_dose_mj_cm2": totals["dose"], "max_cumulative_dose_mj_cm2": p.max_cumulative_dose_mj_cm2,
+            "rest_h": None if totals["rest"] is None else round(totals["rest"], 1), "min_rest_h": p.min_rest_hours,
+            "over_limit": ", ".join(over), "override_reason": override.reason if override else "",
+            "override_by": override.recorded_by.get_username() if override else "",
+            "deviation": override.deviation_id if override else None,
+        })
+    return rows

@@ -1,0 +1,487 @@
+"""Writes that span several rows or models, each one transaction, and the population arithmetic.
+
+Population of a tank
+    current_population(tank) = latest current census estimate (its direct count when an old
+    census has no stored estimate) − animals drawn from the tank after that census + animals
+    returned to it after that census. None when the tank has never been counted. A census taken
+    after a draw already reflects it, so only draws after the census are subtracted.
+
+    available = current_population − the species' reserve (reserve_min_animals) − animals in
+    active bookings on the tank not yet drawn.
+
+Races
+    Two researchers booking the last animals of a tank at the same moment: `book` and `draw` take
+    a row lock on the tank (SELECT ... FOR UPDATE) inside the transaction before counting, so the
+    second waits, then counts again with the first booking in place and is refused with a message.
+    Under PostgreSQL's READ COMMITTED each statement after the lock sees the other's committed
+    rows. SQLite has no row locks but serialises writers, and is not the multi-user database.
+    `record_trial` locks the cohort row the same way, so two trials cannot both take its last
+    permitted exposure.
+"""
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from datetime import date, datetime, timedelta
+
+from django.core.exceptions import PermissionDenied, ValidationError
+from django.db import transaction
+from django.db.models import FloatField, IntegerField, OuterRef, Subquery, Sum, Value
+from django.db.models.functions import Cast, Coalesce
+from django.utils import timezone
+from simple_history.utils import bulk_update_with_history
+
+from colonies.deviations import Finding, apply_findings
+from colonies.models import Census, Deviation, Tank
+from colonies.roles import MANAGER, has_role
+
+from . import allocation, limits, stimulus
+from .models import (LIGHT_KINDS, SETTING_FIELDS, Attachment, Booking, Cohort, Override, Protocol, Stimulus, Study,
+                     Trial)
+
+
+class Refused(Exception):
+    """An action the records do not allow; the message is shown to the user as it is."""
+
+
+class LimitRefused(Refused):
+    def __init__(self, breaches: list[limits.Breach]):
+        self.breaches = breaches
+        hard = [b for b in breaches if not b.overridable]
+        if hard:
+            lead = "Refused: the protocol does not cover this trial."
+        else:
+            lead = "Refused: this trial would break a protocol limit. A manager may record an override with a reason."
+        super().__init__(" ".join([lead] + [b.message for b in breaches]))
+
+    @property
+    def overridable(self) -> bool:
+        return all(b.overridable for b in self.breaches)
+
+
+# ---------------------------------------------------------------------------------------------
+# Population and availability
+# ---------------------------------------------------------------------------------------------
+def tanks_with_availability(queryset=None):
+    """Annotate census_at, census_estimate, drawn_since, returned_since and booked (one query).
+
+    Call `population_of(tank)` / `available_of(tank)` on the rows (needs species loaded).
+    """
+    qs = queryset if queryset is not None else Tank.objects.all()
+    latest = Census.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at", "-pk")
+    value = Coalesce("estimate", Cast("direct_count", FloatField()))
+    drawn = (Cohort.objects.filter(origin_tank=OuterRef("pk"), drawn_at__gt=OuterRef("census_at"))
+             .order_by().values("origin_tank").annotate(n=Sum("size")).values("n"))
+    returned = (Cohort.objects.filter(returned_to=OuterRef("pk"), end=Cohort.End.RETURNED,
+                                      ended_at__gt=OuterRef("census_at"))
+                .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
+    booked = (Booking.objects.active().filter(tank=OuterRef("pk"))
+              .order_by().values("tank").annotate(n=Sum("animals")).values("n"))
+    zero = Value(0, output_field=IntegerField())
+    return qs.annotate(
+        census_at=Subquery(latest.values("observed_at")[:1]),
+        census_estimate=Subquery(latest.annotate(v=value).values("v")[:1], output_field=FloatField()),
+    ).annotate(
+        drawn_since=Coalesce(Subquery(drawn, output_field=IntegerField()), zero),
+        returned_since=Coalesce(Subquery(returned, output_field=IntegerField()), zero),
+        booked=Coalesce(Subquery(booked, output_field=IntegerField()), zero),
+    )
+
+
+def population_of(tank) -> int | None:
+    if tank.census_estimate is None:
+        return None
+    return max(0, round(tank.census_estimate) - tank.drawn_since + tank.returned_since)
+
+
+def available_of(tank) -> int | None:
+    population = population_of(tank)
+    if population is None:
+        return None
+    return max(0, population - tank.species.reserve_min_animals - tank.booked)
+
+
+def current_population(tank) -> int | None:
+    """Latest census estimate − animals drawn after it + animals returned after it (one query)."""
+    return population_of(tanks_with_availability(Tank.objects.filter(pk=tank.pk)).get())
+
+
+def available(tank) -> int | None:
+    row = tanks_with_availability(Tank.objects.filter(pk=tank.pk).select_related("species")).get()
+    return available_of(row)
+
+
+def suggest_tanks(species, animals: int) -> list:
+    """Active tanks of the species with at least `animals` available, most spare first (one query)."""
+    rows = tanks_with_availability(Tank.objects.active().filter(species=species).select_related("room", "species"))
+    out = []
+    for t in rows:
+        t.population = population_of(t)
+        t.available = available_of(t)
+        if t.available is not None and t.available >= animals:
+            out.append(t)
+    return sorted(out, key=lambda t: (-t.available, t.code))
+
+
+# ---------------------------------------------------------------------------------------------
+# Bookings
+# ---------------------------------------------------------------------------------------------
+def _save(obj, user, reason: str):
+    obj._history_user = user
+    obj._change_reason = reason
+    obj.save()
+    return obj
+
+
+def book(*, user, protocol: Protocol, tank: Tank, animals: int, needed_on: date, purpose: str = "",
+         today: date | None = None) -> Booking:
+    """Book animals from a tank; refused with a message when the protocol or the numbers do not allow it."""
+    today = today or timezone.localdate()
+    if animals < 1:
+        raise Refused(f"Animals {animals} is not possible: book at least 1.")
+    if needed_on < today:
+        raise Refused(f"Date {needed_on:%Y-%m-%d} is in the past; book for today or later.")
+    problem = Protocol.objects.prefetch_related("allowances").get(pk=protocol.pk).problem(needed_on)
+    if problem:
+        raise Refused(problem)
+    with transaction.atomic():
+        locked = Tank.objects.select_for_update().get(pk=tank.pk)  # serialises bookings and draws on this tank
+        if locked.status != Tank.Status.ACTIVE:
+            raise Refused(f"Tank {locked.code} is {locked.get_status_display().lower()}; animals cannot be booked from it.")
+        row = tanks_with_availability(Tank.objects.filter(pk=tank.pk).select_related("species")).get()
+        population, free = population_of(row), available_of(row)
+        if population is None:
+            raise Refused(f"Tank {row.code} has no census yet, so nothing can be booked from it.")
+        if animals > free:
+            raise Refused(
+                f"Tank {row.code} has only {free} animals available (about {population} in the tank − reserve "
+                f"{row.species.reserve_min_animals} − {row.booked} already booked); you asked for {animals}. "
+                f"Nothing was booked.")
+        booking = Booking(protocol=protocol, tank=row, species=row.species, animals=animals, needed_on=needed_on,
+                          purpose=purpose, booked_by=user)
+        return _save(booking, user, "Booked")
+
+
+def cancel_booking(*, user, booking: Booking, reason: str) -> Booking:
+    reason = (reason or "").strip()
+    if not reason:
+        raise Refused("A reason is required to cancel a booking.")
+    with transaction.atomic():
+        booking = Booking.objects.select_for_update().get(pk=booking.pk)
+        if not booking.is_active:
+            raise Refused(f"Booking {booking.pk} is {booking.get_status_display().lower()}; it cannot be cancelled.")
+        booking.status = Booking.Status.CANCELLED
+        booking.cancelled_at, booking.cancelled_by, booking.cancel_reason = timezone.now(), user, reason
+        return _save(booking, user, f"Cancelled: {reason}")
+
+
+def draw(*, user, booking: Booking, count: int | None = None, at: datetime | None = None) -> Cohort:
+    """The booked animals leave the tank and become a cohort."""
+    at = at or timezone.now()
+    day = timezone.localdate(at)
+    with transaction.atomic():
+        Tank.objects.select_for_update().get(pk=booking.tank_id)
+        booking = Booking.objects.select_for_update().select_related("protocol", "tank").get(pk=booking.pk)
+        if not booking.is_active:
+            raise Refused(f"Booking {booking.pk} is {booking.get_status_display().lower()}; nothing can be drawn.")
+        if day > booking.needed_on:
+            raise Refused(f"Booking {booking.pk} was for {booking.needed_on:%Y-%m-%d} and has expired; book again.")
+        problem = booking.protocol.problem(day)
+        if problem:
+            raise Refused(problem)
+        count = booking.animals if count is None else count
+        if not 1 <= count <= booking.animals:
+            raise Refused(f"Animals drawn {count} is not possible: allowed range 1–{booking.animals} (the booking).")
+        booking.status = Booking.Status.DRAWN
+        _save(booking, user, "Drawn")
+        cohort = Cohort(booking=booking, protocol=booking.protocol, origin_tank=booking.tank, size=count,
+                        drawn_at=at, drawn_by=user)
+        return _save(cohort, user, f"Drawn from {booking.tank.code}")
+
+
+def expire_bookings(today: date | None = None, *, dry_run: bool = False) -> int:
+    """Bookings still active after their day expire. Returns how many (would) expire."""
+    today = today or timezone.localdate()
+    stale = list(Booking.objects.active().filter(needed_on__lt=today))
+    if dry_run or not stale:
+        return len(stale)
+    for b in stale:
+        b.status = Booking.Status.EXPIRED
+    with transaction.atomic():
+        bulk_update_with_history(stale, Booking, ["status"], default_change_reason="Expired: not drawn by its date")
+    return len(stale)
+
+
+# ---------------------------------------------------------------------------------------------
+# Cohorts
+# ---------------------------------------------------------------------------------------------
+def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = None, returned_count: int | None = None,
+               method: str = "", note: str = "", at: datetime | None = None) -> Cohort:
+    at = at or timezone.now()
+    with transaction.atomic():
+        if end == Cohort.End.RETURNED and returned_to is not None:
+            Tank.objects.select_for_update().get(pk=returned_to.pk)
+        cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=cohort.pk)
+        if not cohort.is_active:
+            raise Refused(f"Cohort {cohort.label} has already ended ({cohort.get_end_display().lower()}).")
+        if at < cohort.drawn_at:
+            raise Refused(f"End time {timezone.localtime(at):%Y-%m-%d %H:%M} is before the cohort was drawn.")
+        if end == Cohort.End.RETURNED:
+            if returned_to is None or returned_count is None:
+                raise Refused("Returned: give the tank and the number of animals put back.")
+            if not 0 <= returned_count <= cohort.size:
+                raise Refused(f"Animals returned {returned_count} is not possible: allowed range 0–{cohort.size}.")
+            if returned_to.species_id != cohort.origin_tank.species_id:
+                raise Refused(f"Tank {returned_to.code} holds another species; animals go back to a tank of their own.")
+            if returned_to.status == Tank.Status.RETIRED:
+                raise Refused(f"Tank {returned_to.code} is retired.")
+            cohort.returned_to, cohort.returned_count = returned_to, returned_count
+        elif end == Cohort.End.RETIRED:
+            if not method.strip():
+                raise Refused("Retired: say which method was used.")
+        elif end != Cohort.End.DIED:
+            raise Refused(f"Unknown end {end!r}.")
+        cohort.end, cohort.ended_at, cohort.ended_by = end, at, user
+        cohort.end_method, cohort.end_note = method.strip(), note.strip()
+        return _save(cohort, user, f"Ended: {cohort.get_end_display()}")
+
+
+def cohort_state(cohort: Cohort, at: datetime, *, exclude_trial: int | None = None) -> limits.CohortState:
+    """The cohort's exposures as the limit checker needs them (one query)."""
+    trials = cohort.trials.counting()
+    if exclude_trial:
+        trials = trials.exclude(pk=exclude_trial)
+    rows = list(trials.values_list("run_at", "dose_mj_cm2"))
+    before = [r for r, _ in rows if r <= at]
+    after = [r for r, _ in rows if r > at]
+    return limits.CohortState(
+        label=cohort.label, size=cohort.size, ended=not cohort.is_active, exposures=len(rows),
+        last_exposure_at=max(before) if before else None,
+        next_exposure_at=min(after) if after else None,
+        cumulative_dose_mj_cm2=sum(d or 0.0 for _, d in rows),
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# Studies
+# ---------------------------------------------------------------------------------------------
+def create_study(*, user, code: str, title: str, protocol: Protocol, conditions: list[str], replicates: int,
+                 method: str, seed: int, blinded: bool = True, observation_window_s: int = 600, question: str = "",
+                 exclusion_criteria: str = "") -> Study:
+    """The study and its realised allocation, written together."""
+    plan = allocation.allocate(conditions, replicates, method, seed)
+    study = Study(code=code, title=title, owner=user, protocol=protocol, conditions=[c.strip() for c in conditions],
+                  replicates=replicates, method=method, seed=seed, generator=allocation.GENERATOR,
+                  allocated_at=timezone.now(), allocation=plan, blinded=blinded,
+                  observation_window_s=observation_window_s, question=question, exclusion_criteria=exclusion_criteria)
+    with transaction.atomic():
+        return _save(study, user, "Study created and allocation generated")
+
+
+def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> Study:
+    """Only the owner unblinds; outcomes are locked first (unblinding never precedes the lock)."""
+    reason = (reason or "").strip()
+    if user.pk != study.owner_id:
+        raise PermissionDenied("Only the study's owner may unblind it.")
+    if not reason:
+        raise Refused("A reason is required to unblind a study.")
+    with transaction.atomic():
+        study = Study.objects.select_for_update().get(pk=study.pk)
+        if not study.is_blind:
+            raise Refused(f"Study {study.code} is not blinded or was already unblinded.")
+        at = at or timezone.now()
+        study.outcomes_locked_at = study.outcomes_locked_at or at
+        study.unblinded_at, study.unblinded_by, study.unblind_reason = at, user, reason
+        return _save(study, user, f"Outcomes locked and unblinded: {reason}")
+
+
+# ---------------------------------------------------------------------------------------------
+# Trials
+# ---------------------------------------------------------------------------------------------
+OUTCOME_FIELDS = ("aggregate_s", "disperse_s", "censored", "clusters", "mortality_24h")
+
+
+def derive(trial: Trial) -> Trial:
+    """Fill the derived stimulus values from the settings; clear settings of other stimulus types."""
+    for name, kinds in SETTING_FIELDS.items():
+        if trial.kind not in kinds:
+            setattr(trial, name, None)
+    if trial.kind != Stimulus.CHEMICAL:
+        trial.substance = ""
+    if trial.kind != Stimulus.MECHANICAL:
+        trial.mechanical_note = ""
+    trial.dose_mj_cm2 = stimulus.light_dose_mj_cm2(trial.irradiance_mw_cm2, trial.duration_s) \
+        if trial.kind in LIGHT_KINDS else None
+    trial.field_v_cm = stimulus.field_strength_v_cm(trial.voltage_v, trial.electrode_gap_cm)
+    try:
+        train = stimulus.pulse_train(trial.pulse_width_ms, trial.pulse_count, trial.pulse_frequency_hz)
+    except ValueError as error:
+        raise ValidationError({"pulse_width_ms": str(error)}) from None
+    trial.pulse_on_s, trial.train_s = train.on_s, train.train_s
+    return trial
+
+
+def normalise_outcome(trial: Trial) -> None:
+    """Censored means still clumped at the end of the window: the dispersal time is the window."""
+    if trial.censored:
+        trial.disperse_s = float(trial.observation_window_s)
+
+
+def _check_order(trial: Trial, cohort: Cohort, now: datetime) -> None:
+    if trial.run_at < cohort.drawn_at.replace(second=0, microsecond=0):  # forms record whole minutes
+        raise ValidationError({"run_at": f"Run at {timezone.localtime(trial.run_at):%Y-%m-%d %H:%M} is before cohort "
+                                         f"{cohort.label} was drawn ({timezone.localtime(cohort.drawn_at):%Y-%m-%d %H:%M})."})
+    if trial.run_at > now + timedelta(minutes=5):
+        raise ValidationError({"run_at": "Run at is in the future; record a trial once it has run."})
+    if trial.mortality_24h is not None and now < trial.run_at + timedelta(hours=24):
+        raise ValidationError({"mortality_24h": "Mortality at 24 h can only be recorded from 24 h after the trial ran."})
+
+
+@dataclass
+class TrialResult:
+    trial: Trial
+    override: Override | None = None
+    deviation: Deviation | None = None
+
+
+def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict, override_reason: str = "",
+                 now: datetime | None = None) -> TrialResult:
+    """Save a trial if the protocol allows it; a manager's override with a reason opens a deviation.
+
+    `values` are arena, stimulus and (optionally) outcome fields. Raises ValidationError for
+    impossible or out-of-order values and LimitRefused when a protocol limit stands in the way.
+    """
+    now = now or timezone.now()
+    override_reason = (override_reason or "").strip()
+    with transaction.atomic():
+        cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=cohort.pk)
+        protocol = Protocol.objects.prefetch_related("allowances").get(pk=cohort.protocol_id)
+        if study.protocol_id != protocol.pk:
+            raise Refused(f"Cohort {cohort.label} was drawn under protocol {protocol.reference}, but study "
+                          f"{study.code} runs under {study.protocol.reference}.")
+        entry = study.slot(slot)
+        if entry is None:
+            raise Refused(f"Slot {slot} is not in the allocation of study {study.code} (1–{len(study.allocation)}).")
+        if study.trials.counting().filter(slot=slot).exists():
+            raise Refused(f"Slot {slot} ({entry['code']}) of study {study.code} already has a trial.")
+        if study.is_locked:
+            raise Refused(f"Study {study.code} has locked outcomes; no more trials can be added.")
+        trial = Trial(study=study, slot=slot, code=entry["code"], condition=entry["condition"],
+                      replicate=entry["replicate"], cohort=cohort, protocol=protocol, run_by=user,
+                      observation_window_s=study.observation_window_s, **values)
+        derive(trial)
+        normalise_outcome(trial)
+        if trial.disperse_s is not None:
+            trial.scored_at, trial.scored_by = now, user
+        _check_order(trial, cohort, now)
+        trial.full_clean()
+        proposal = limits.Proposal(at=trial.run_at, animals=trial.animals, kind=trial.kind,
+                                   settings=trial.settings(), substance=trial.substance)
+        breaches = limits.check_exposure(protocol.terms(), cohort_state(cohort, trial.run_at), proposal,
+                                         timezone.localdate(trial.run_at))
+        if breaches and (not all(b.overridable for b in breaches) or not override_reason):
+            raise LimitRefused(breaches)
+        if breaches and not has_role(user, MANAGER):
+            raise PermissionDenied("Only a manager may override a protocol limit.")
+        _save(trial, user, "Trial recorded" + (" with a manager's override" if breaches else ""))
+        if not breaches:
+            return TrialResult(trial)
+        override = Override(trial=trial, cohort=cohort, protocol=protocol, reason=override_reason,
+                            breaches=[b.message for b in breaches], recorded_by=user, recorded_at=now)
+        _save(override, user, "Override recorded")
+        deviation = _open_deviation(override, breaches, now, user)
+        override.deviation = deviation
+        _save(override, user, "Deviation linked")
+        return TrialResult(trial, override, deviation)
+
+
+def _open_deviation(override: Override, breaches: list[limits.Breach], now: datetime, user) -> Deviation:
+    cohort = override.cohort
+    severity = Deviation.Severity.MODERATE
+    for b in breaches:
+        if b.value is not None and b.allowed and b.limit != "rest" and b.value > 1.5 * b.allowed:
+            severity = Deviation.Severity.MAJOR
+        if b.limit == "rest" and b.value is not None and b.allowed and b.value < 0.5 * b.allowed:
+            severity = Deviation.Severity.MAJOR
+    summary = f"Protocol {override.protocol.reference} limit overridden for cohort {cohort.label}: " + \
+              "; ".join(b.message for b in breaches)
+    finding = Finding(
+        tank_id=cohort.origin_tank_id, rule=Deviation.Rule.PROTOCOL_LIMIT, severity=severity, summary=summary,
+        evidence={"ref": f"trial:{override.trial_id}", "trial": override.trial_id, "override": override.pk,
+                  "protocol": override.protocol.reference, "limits": [b.limit for b in breaches],
+                  "breaches": [b.message for b in breaches], "reason": override.reason,
+                  "manager": user.get_username(), "at": timezone.localtime(now).strftime("%Y-%m-%d %H:%M")},
+        at=now, subject=cohort.subject,
+    )
+    apply_findings([finding], now=now, user=user)
+    return Deviation.objects.unresolved().get(tank_id=cohort.origin_tank_id, rule=Deviation.Rule.PROTOCOL_LIMIT,
+                                              parameter="", subject=cohort.subject)
+
+
+def score_trial(*, user, trial: Trial, values: dict, now: datetime | None = None) -> Trial:
+    """Enter or correct the outcomes (blinded scorers see only the code)."""
+    now = now or timezone.now()
+    with transaction.atomic():
+        trial = Trial.objects.select_for_update().select_related("study", "cohort").get(pk=trial.pk)
+        if trial.is_voided:
+            raise Refused(f"{trial} is voided.")
+        if trial.study.is_locked:
+            raise Refused(f"Study {trial.study.code} has locked outcomes; scores can no longer change.")
+        correcting = trial.is_scored
+        for name in OUTCOME_FIELDS:
+            if name in values:
+                setattr(trial, name, values[name])
+        normalise_outcome(trial)
+        _check_order(trial, trial.cohort, now)
+        trial.full_clean()
+        trial.scored_at, trial.scored_by = now, user
+        return _save(trial, user, "Outcome corrected" if correcting else "Outcome scored")
+
+
+def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:
+    reason = (reason or "").strip()
+    if not reason:
+        raise Refused("A reason is required to exclude a trial.")
+    if trial.is_excluded:
+        raise Refused(f"{trial} is already excluded.")
+    if trial.study.is_locked:
+        raise Refused(f"Study {trial.study.code} has locked outcomes; exclusions can no longer change.")
+    trial.excluded_at, trial.excluded_by, trial.exclusion_reason = timezone.now(), user, reason
+    with transaction.atomic():
+        return _save(trial, user, f"Excluded: {reason}")
+
+
+def void_trial(*, user, trial: Trial, reason: str) -> Trial:
+    """A trial entered in error (wrong study, never ran): hidden from analyses and from exposure counts."""
+    if trial.study.is_locked:
+        raise Refused(f"Study {trial.study.code} has locked outcomes; trials can no longer be voided.")
+    if hasattr(trial, "override"):
+        raise Refused(f"{trial} carries a manager's override; it cannot be voided.")
+    try:
+        with transaction.atomic():
+            trial.void(user=user, reason=reason)
+    except ValueError as error:
+        raise Refused(str(error)) from None
+    return trial
+
+
+def add_attachment(*, user, trial: Trial, upload, kind: str, caption: str = "") -> Attachment:
+    """Store a photo or video with the SHA-256 of the bytes as received."""
+    digest = hashlib.sha256()
+    size = 0
+    for chunk in upload.chunks():
+        digest.update(chunk)
+        size += len(chunk)
+    upload.seek(0)
+    attachment = Attachment(trial=trial, file=upload, name=upload.name[:200], kind=kind, caption=caption,
+                            sha256=digest.hexdigest(), size_bytes=size, uploaded_by=user)
+    with transaction.atomic():
+        return _save(attachment, user, "Attachment added")
+
+
+def file_checksum(attachment: Attachment) -> str:
+    digest = hashlib.sha256()
+    with attachment.file.open("rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 16), b""):
+            digest.update(chunk)
+    return digest.hexdigest()

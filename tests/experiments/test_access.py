@@ -1,0 +1,180 @@
+"""Who may open or submit each trials page: anonymous, each role, and the wrong HTTP method.
+
+One table for every URL name of experiments/urls.py; a new page not added here fails
+test_every_experiments_url_name_is_in_the_access_table.
+"""
+from types import SimpleNamespace
+
+import pytest
+from django.core.files.uploadedfile import SimpleUploadedFile
+from django.urls import get_resolver, reverse
+
+from experiments import models
+from experiments.models import Cohort
+from tests.experiments.builders import days_ago, make_cohort, make_study, record, today
+
+READ = {"technician", "researcher", "manager"}
+RUN = {"researcher", "manager"}
+MANAGE = {"manager"}
+OWNER = {"researcher"}  # the study's owner in this world
+PERSONAS = ("technician", "researcher", "manager", "outsider")
+
+
+@pytest.fixture
+def world(db, researcher, protocol, tank, settings, tmp_path):
+    from experiments import services
+    settings.MEDIA_ROOT = tmp_path
+    booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=10, needed_on=today())
+    cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(5))
+    study = make_study(user=researcher, protocol=protocol, code="access-study", blinded=True)
+    trial = record(study, cohort, researcher, at=days_ago(4)).trial
+    attachment = services.add_attachment(user=researcher, trial=trial, kind="photo",
+                                         upload=SimpleUploadedFile("a.png", b"png bytes"))
+    return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
+                           attachment=attachment)
+
+
+URLS = {
+    "experiments:index": lambda w: reverse("experiments:index"),
+    "experiments:protocol-detail": lambda w: reverse("experiments:protocol-detail", args=[w.protocol.pk]),
+    "experiments:booking-new": lambda w: reverse("experiments:booking-new"),
+    "experiments:calendar": lambda w: reverse("experiments:calendar"),
+    "experiments:booking-detail": lambda w: reverse("experiments:booking-detail", args=[w.booking.pk]),
+    "experiments:booking-cancel": lambda w: reverse("experiments:booking-cancel", args=[w.booking.pk]),
+    "experiments:booking-draw": lambda w: reverse("experiments:booking-draw", args=[w.booking.pk]),
+    "experiments:cohort-detail": lambda w: reverse("experiments:cohort-detail", args=[w.cohort.pk]),
+    "experiments:cohort-end": lambda w: reverse("experiments:cohort-end", args=[w.cohort.pk]),
+    "experiments:study-new": lambda w: reverse("experiments:study-new"),
+    "experiments:study-detail": lambda w: reverse("experiments:study-detail", args=[w.study.code]),
+    "experiments:study-unblind": lambda w: reverse("experiments:study-unblind", args=[w.study.code]),
+    "experiments:study-csv": lambda w: reverse("experiments:study-csv", args=[w.study.code]),
+    "experiments:study-chart": lambda w: reverse("experiments:study-chart", args=[w.study.code, "km", "svg"]),
+    "experiments:study-chart-csv": lambda w: reverse("experiments:study-chart-csv", args=[w.study.code, "km"]),
+    "experiments:trial-new": lambda w: reverse("experiments:trial-new", args=[w.study.code]),
+    "experiments:trial-detail": lambda w: reverse("experiments:trial-detail", args=[w.trial.pk]),
+    "experiments:trial-score": lambda w: reverse("experiments:trial-score", args=[w.trial.pk]),
+    "experiments:trial-set-aside": lambda w: reverse("experiments:trial-set-aside", args=[w.trial.pk, "exclude"]),
+    "experiments:attachment-add": lambda w: reverse("experiments:attachment-add", args=[w.trial.pk]),
+    "experiments:attachment": lambda w: reverse("experiments:attachment", args=[w.attachment.pk]),
+    "experiments:ledger": lambda w: reverse("experiments:ledger"),
+    "experiments:ledger-csv": lambda w: reverse("experiments:ledger-csv"),
+}
+
+
+def _trial_post(w):
+    return {"slot": "2", "cohort": str(w.cohort.pk), "run_at": days_ago(2).strftime("%Y-%m-%dT%H:%M"),
+            "vessel": "dish", "animals": "10", "kind": "uv", "wavelength_nm": "365", "irradiance_mw_cm2": "2",
+            "duration_s": "10", "disperse_s": "100"}
+
+
+POST_DATA = {
+    "experiments:booking-new": lambda w: {"protocol": w.protocol.pk, "species": w.tank.species_id, "animals": 5,
+                                          "needed_on": today().isoformat(), "tank": w.tank.pk, "action": "book"},
+    "experiments:booking-cancel": lambda w: {"reason": "Not needed"},
+    "experiments:booking-draw": lambda w: {"count": 10},
+    "experiments:cohort-end": lambda w: {"end": Cohort.End.DIED, "note": "found dead"},
+    "experiments:study-new": lambda w: {"code": "new-study", "title": "New", "protocol": w.protocol.pk,
+                                        "conditions": "a\nb", "replicates": 2, "method": "block",
+                                        "observation_window_s": 600, "blinded": "on"},
+    "experiments:study-unblind": lambda w: {"reason": "All scored"},
+    "experiments:trial-new": _trial_post,
+    "experiments:trial-score": lambda w: {"disperse_s": "150", "aggregate_s": "200"},
+    "experiments:trial-set-aside": lambda w: {"reason": "Clump never formed"},
+    "experiments:attachment-add": lambda w: {"file": SimpleUploadedFile("b.png", b"more bytes"), "kind": "photo"},
+}
+
+ACCESS = [
+    ("experiments:index", "get", READ),
+    ("experiments:protocol-detail", "get", READ),
+    ("experiments:booking-new", "get", RUN),
+    ("experiments:booking-new", "post", RUN),
+    ("experiments:calendar", "get", READ),
+    ("experiments:booking-detail", "get", READ),
+    ("experiments:booking-cancel", "post", RUN),
+    ("experiments:booking-draw", "post", RUN),
+    ("experiments:cohort-detail", "get", READ),
+    ("experiments:cohort-end", "post", RUN),
+    ("experiments:study-new", "get", RUN),
+    ("experiments:study-new", "post", RUN),
+    ("experiments:study-detail", "get", READ),
+    ("experiments:study-unblind", "post", OWNER),
+    ("experiments:study-csv", "get", OWNER),  # blinded: only the owner sees conditions
+    ("experiments:study-chart", "get", OWNER),
+    ("experiments:study-chart-csv", "get", OWNER),
+    ("experiments:trial-new", "get", RUN),
+    ("experiments:trial-new", "post", RUN),
+    ("experiments:trial-detail", "get", READ),
+    ("experiments:trial-score", "get", RUN),
+    ("experiments:trial-score", "post", RUN),
+    ("experiments:trial-set-aside", "post", RUN),
+    ("experiments:attachment-add", "post", RUN),
+    ("experiments:attachment", "get", READ),
+    ("experiments:ledger", "get", MANAGE),
+    ("experiments:ledger-csv", "get", MANAGE),
+]
+
+WRONG_METHODS = [
+    ("experiments:index", "post"), ("experiments:protocol-detail", "post"), ("experiments:booking-new", "put"),
+    ("experiments:calendar", "post"), ("experiments:booking-detail", "post"), ("experiments:booking-cancel", "get"),
+    ("experiments:booking-draw", "get"), ("experiments:cohort-detail", "post"), ("experiments:cohort-end", "get"),
+    ("experiments:study-new", "put"), ("experiments:study-detail", "post"), ("experiments:study-unblind", "get"),
+    ("experiments:study-csv", "post"), ("experiments:study-chart", "post"), ("experiments:study-chart-csv", "post"),
+    ("experiments:trial-new", "delete"), ("experiments:trial-detail", "post"), ("experiments:trial-score", "put"),
+    ("experiments:trial-set-aside", "get"), ("experiments:attachment-add", "get"), ("experiments:attachment", "post"),
+    ("experiments:ledger", "post"), ("experiments:ledger-csv", "post"),
+]
+
+
+def _state():
+    """Counts any saved change would alter (every write leaves a history row)."""
+    return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Study, models.Trial,
+                                             models.Override, models.Attachment))
+
+
+def _request(client, world, name, method):
+    url = URLS[name](world)
+    if method == "post":
+        return client.post(url, POST_DATA[name](world))
+    return getattr(client, method)(url)
+
+
+def test_every_experiments_url_name_is_in_the_access_table():
+    names = {f"experiments:{n}" for n in get_resolver("experiments.urls").reverse_dict if isinstance(n, str)}
+    assert names == set(URLS)
+    assert {name for name, _, _ in ACCESS} == set(URLS)
+    assert {name for name, _ in WRONG_METHODS} == set(URLS)
+    assert {name for name, method, _ in ACCESS if method == "post"} == set(POST_DATA)
+
+
+@pytest.mark.parametrize("name,method", [(n, m) for n, m, _ in ACCESS])
+def test_anonymous_is_redirected_to_login_and_nothing_is_saved(client, world, name, method):
+    before = _state()
+    response = _request(client, world, name, method)
+    assert response.status_code == 302
+    assert response["Location"] == f"{reverse('login')}?next={URLS[name](world)}"
+    assert _state() == before
+
+
+@pytest.mark.parametrize("persona", PERSONAS)
+@pytest.mark.parametrize("name,method,allowed", ACCESS, ids=[f"{n}-{m}" for n, m, _ in ACCESS])
+def test_role_is_allowed_or_forbidden(client, request, world, persona, name, method, allowed):
+    client.force_login(request.getfixturevalue(persona))
+    before = _state()
+    response = _request(client, world, name, method)
+    if persona not in allowed:
+        assert response.status_code == 403
+        assert _state() == before
+    elif method == "get":
+        assert response.status_code == 200
+    else:
+        assert response.status_code == 302, response.content.decode()[:3000]
+        assert _state() != before
+
+
+@pytest.mark.parametrize("name,method", WRONG_METHODS)
+def test_wrong_method_is_refused_with_405(client, world, manager, name, method):
+    client.force_login(manager)
+    before = _state()
+    response = getattr(client, method)(URLS[name](world))
+    assert response.status_code == 405
+    assert _state() == before

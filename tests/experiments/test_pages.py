@@ -1,0 +1,271 @@
+"""Trials pages: booking, drawing, recording with refusals and overrides, study page, exports, ledger, cautions."""
+import csv
+import io
+
+import pytest
+from django.urls import reverse
+
+from colonies.models import Deviation
+from experiments import services
+from experiments.models import Booking, Cohort, Override, Stimulus, Trial
+from experiments.models import CAUTION_ELECTRICAL, CAUTION_UV
+from experiments.reports import LEDGER_COLUMNS, TIDY_COLUMNS
+from tests.experiments.builders import days_ago, make_cohort, make_stocked_tank, make_study, record, today
+from tests.factories import page_text
+
+
+def _post_trial(client, study, cohort, **overrides):
+    data = {"slot": str(next(s["slot"] for s in study.allocation
+                             if not Trial.objects.counting().filter(study=study, slot=s["slot"]).exists())),
+            "cohort": str(cohort.pk), "run_at": days_ago(2).strftime("%Y-%m-%dT%H:%M"), "vessel": "glass Petri dish",
+            "animals": "10", "kind": "uv", "wavelength_nm": "365", "irradiance_mw_cm2": "2", "duration_s": "10",
+            "aggregate_s": "240", "disperse_s": "130", "clusters_text": "60 2 0.8\n300 7 0.2"}
+    data.update(overrides)
+    return client.post(reverse("experiments:trial-new", args=[study.code]), data)
+
+
+# --- bookings ---------------------------------------------------------------------------------------
+def test_suggest_then_book_from_a_suggested_tank(client, researcher, protocol, tank):
+    client.force_login(researcher)
+    data = {"protocol": protocol.pk, "species": tank.species_id, "animals": 50, "needed_on": today().isoformat(),
+            "action": "suggest"}
+    response = client.post(reverse("experiments:booking-new"), data)
+    assert response.status_code == 200
+    assert "Book from LV-T1" in page_text(response) and ">900<" in response.content.decode()
+    response = client.post(reverse("experiments:booking-new"), {**data, "action": "", "pick": tank.pk})
+    booking = Booking.objects.get()
+    assert response.status_code == 302 and response["Location"] == booking.get_absolute_url()
+    assert (booking.tank, booking.animals, booking.booked_by) == (tank, 50, researcher)
+
+
+def test_booking_more_than_available_shows_the_reason_and_saves_nothing(client, researcher, protocol, tank):
+    client.force_login(researcher)
+    response = client.post(reverse("experiments:booking-new"), {
+        "protocol": protocol.pk, "species": tank.species_id, "animals": 901, "needed_on": today().isoformat(),
+        "tank": tank.pk, "action": "book"})
+    assert response.status_code == 409
+    assert "Tank LV-T1 has only 900 animals available" in page_text(response)
+    assert not Booking.objects.exists()
+
+
+def test_draw_from_the_booking_page_makes_a_cohort(client, researcher, protocol, tank):
+    booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=12, needed_on=today())
+    client.force_login(researcher)
+    response = client.post(reverse("experiments:booking-draw", args=[booking.pk]), {"count": 12})
+    cohort = Cohort.objects.get()
+    assert response["Location"] == cohort.get_absolute_url()
+    assert services.current_population(tank) == 988
+
+
+def test_another_researcher_cannot_cancel_or_draw_my_booking(client, researcher, protocol, tank):
+    from colonies.roles import RESEARCHER
+    from tests.factories import make_user
+    booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=12, needed_on=today())
+    client.force_login(make_user("rival", role=RESEARCHER))
+    assert client.post(reverse("experiments:booking-cancel", args=[booking.pk]), {"reason": "x"}).status_code == 403
+    assert client.post(reverse("experiments:booking-draw", args=[booking.pk]), {"count": 1}).status_code == 403
+    booking.refresh_from_db()
+    assert booking.is_active
+
+
+def test_calendar_shows_bookings_of_the_week_by_room(client, technician, researcher, protocol, tank):
+    services.book(user=researcher, protocol=protocol, tank=tank, animals=12, needed_on=today())
+    client.force_login(technician)
+    response = client.get(reverse("experiments:calendar"), {"room": tank.room.code, "view": "week"})
+    assert "LV-T1" in page_text(response) and "12 animals booked or drawn" in page_text(response)
+    response = client.get(reverse("experiments:calendar"), {"view": "month"})
+    assert response.status_code == 200 and "LV-T1" in page_text(response)
+
+
+# --- trials -----------------------------------------------------------------------------------------
+@pytest.fixture
+def bench(researcher, protocol, tank):
+    cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(10))
+    study = make_study(user=researcher, protocol=protocol, code="bench-study", replicates=3)
+    return cohort, study
+
+
+def test_recording_a_trial_through_the_form(client, researcher, bench):
+    cohort, study = bench
+    client.force_login(researcher)
+    response = _post_trial(client, study, cohort)
+    trial = Trial.objects.get()
+    assert response.status_code == 302 and response["Location"] == trial.get_absolute_url()
+    assert trial.dose_mj_cm2 == 20 and trial.clusters == [
+        {"t_s": 60.0, "clusters": 2, "largest_fraction": 0.8}, {"t_s": 300.0, "clusters": 7, "largest_fraction": 0.2}]
+
+
+def test_impossible_value_in_the_form_is_named_with_its_range(client, researcher, bench):
+    cohort, study = bench
+    client.force_login(researcher)
+    response = _post_trial(client, study, cohort, water_temp_c="80", clusters_text="60 2 1.4")
+    assert response.status_code == 400
+    text = page_text(response)
+    assert "Water temperature 80 °C is not possible here: allowed range 0–45 °C." in text
+    assert "Largest-cluster fraction 1.4 is not possible here: allowed range 0–1." in text
+    assert not Trial.objects.exists()
+
+
+def test_missing_stimulus_settings_are_asked_for(client, researcher, bench):
+    cohort, study = bench
+    client.force_login(researcher)
+    response = _post_trial(client, study, cohort, kind="electrical", voltage_v="")
+    assert response.status_code == 400
+    assert "Required for a electrical stimulus." in page_text(response)
+
+
+def test_limit_refusal_lists_the_breach_and_a_manager_overrides_it(client, researcher, manager, bench):
+    cohort, study = bench
+    client.force_login(researcher)
+    assert _post_trial(client, study, cohort).status_code == 302
+    response = _post_trial(client, study, cohort, run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"))
+    assert response.status_code == 409
+    text = page_text(response)
+    assert "Rest since the last exposure of cohort" in text and "Only a manager may record an override" in text
+    assert Trial.objects.count() == 1
+    client.force_login(manager)
+    response = _post_trial(client, study, cohort, run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"),
+                           override_reason="Second dish of the same pair; agreed with the welfare officer")
+    assert response.status_code == 302
+    override = Override.objects.get()
+    assert override.deviation.rule == Deviation.Rule.PROTOCOL_LIMIT
+    assert override.deviation.subject == f"cohort:{cohort.pk}"
+    detail = page_text(client.get(response["Location"]))
+    assert "agreed with the welfare officer" in detail and f"deviation #{override.deviation.pk}" in detail
+
+
+def test_cautions_appear_where_uv_or_electrical_stimulus_is_configured(client, researcher, bench):
+    cohort, study = bench
+    client.force_login(researcher)
+    form_page = page_text(client.get(reverse("experiments:trial-new", args=[study.code])))
+    assert CAUTION_UV in form_page and CAUTION_ELECTRICAL in form_page
+    assert "take precedence over anything shown here" in form_page
+    uv = record(study, cohort, researcher, at=days_ago(9)).trial
+    assert CAUTION_UV in page_text(client.get(uv.get_absolute_url()))
+    assert CAUTION_ELECTRICAL in page_text(client.get(study.protocol.get_absolute_url()))
+
+
+# --- the study page ---------------------------------------------------------------------------------
+def _filled_study(researcher, protocol, tank, n_cohorts: int, code="full-study"):
+    study = make_study(user=researcher, protocol=protocol, code=code, replicates=n_cohorts,
+                       conditions=("sham", "UV 10", "UV 20", "UV 40"))
+    doses = {"sham": 0, "UV 10": 10, "UV 20": 20, "UV 40": 40}
+    for i in range(2 * n_cohorts):  # two exposures per cohort, a day apart (the protocol allows three)
+        cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(30))
+        for j, entry in enumerate(study.allocation[2 * i:2 * i + 2]):
+            dose = doses[entry["condition"]]
+            dispersed = (entry["replicate"] + j) % 4 < (dose // 10)
+            values = {"slot": entry["slot"], "at": days_ago(29 - j),
+                      "disperse_s": 100.0 + 10 * entry["replicate"] if dispersed else None, "censored": not dispersed}
+            if dose:
+                record(study, cohort, researcher, irradiance=2.0, duration=dose / 2, **values)
+            else:
+                record(study, cohort, researcher, kind=Stimulus.NONE, wavelength=None, irradiance=None,
+                       duration=None, **values)
+    return study
+
+
+def test_study_page_shows_summaries_curves_and_dose_response(client, technician, researcher, protocol, tank):
+    study = _filled_study(researcher, protocol, tank, 4)
+    client.force_login(technician)
+    response = client.get(study.get_absolute_url())
+    text = page_text(response)
+    assert "Log-rank vs sham" in text and "EC50" in text
+    assert reverse("experiments:study-chart", args=[study.code, "km", "png"]) in text
+    assert reverse("experiments:study-chart-csv", args=[study.code, "dose"]) in text
+    for kind in ("km", "dose"):
+        svg = client.get(reverse("experiments:study-chart", args=[study.code, kind, "svg"]))
+        assert svg["Content-Type"] == "image/svg+xml" and svg.content.startswith(b"<?xml")
+        png = client.get(reverse("experiments:study-chart", args=[study.code, kind, "png"]) + "?download=1")
+        assert png.content[:8] == b"\x89PNG\r\n\x1a\n"
+        assert png["Content-Disposition"] == f'attachment; filename="{study.code}-{kind}.png"'
+
+
+def test_tidy_csv_has_one_row_per_trial_with_settings_derived_values_and_outcomes(client, researcher, protocol, tank):
+    study = _filled_study(researcher, protocol, tank, 2)
+    client.force_login(researcher)
+    response = client.get(reverse("experiments:study-csv", args=[study.code]))
+    rows = list(csv.DictReader(io.StringIO(response.content.decode())))
+    assert list(rows[0]) == TIDY_COLUMNS
+    assert len(rows) == 8
+    uv40 = next(r for r in rows if r["condition"] == "UV 40")
+    assert (uv40["irradiance_mw_cm2"], uv40["duration_s"], uv40["dose_mj_cm2"]) == ("2", "20", "40")
+    km = client.get(reverse("experiments:study-chart-csv", args=[study.code, "km"])).content.decode()
+    assert km.splitlines()[0] == "condition,time,at_risk,events,censored,survival,lower,upper"
+
+
+def test_blinded_study_shows_codes_not_conditions_to_others_until_unblinded(client, researcher, manager, bench):
+    cohort, study = bench
+    study.blinded = True
+    study.save()
+    trial = record(study, cohort, researcher, at=days_ago(9)).trial
+    client.force_login(manager)
+    page = page_text(client.get(study.get_absolute_url()))
+    assert trial.code in page and trial.condition not in page
+    assert trial.condition not in page_text(client.get(trial.get_absolute_url()))
+    assert client.get(reverse("experiments:study-csv", args=[study.code])).status_code == 403
+    score = page_text(client.get(reverse("experiments:trial-score", args=[trial.pk])))
+    assert trial.code in score and trial.condition not in score
+    client.force_login(researcher)
+    client.post(reverse("experiments:study-unblind", args=[study.code]), {"reason": "All dishes scored"})
+    client.force_login(manager)
+    assert trial.condition in page_text(client.get(study.get_absolute_url()))
+
+
+# --- the ledger -------------------------------------------------------------------------------------
+def test_ledger_shows_running_totals_overrides_and_filters(client, researcher, manager, bench):
+    cohort, study = bench
+    record(study, cohort, researcher, at=days_ago(9), irradiance=5, duration=10)
+    record(study, cohort, researcher, at=days_ago(8), irradiance=5, duration=10)
+    record(study, cohort, manager, at=days_ago(7.5), irradiance=5, duration=10, override_reason="Dish cracked; rerun")
+    client.force_login(manager)
+    text = page_text(client.get(reverse("experiments:ledger")))
+    assert "3 of 3" in text and "150 of 150" in text and "Dish cracked; rerun" in text and "▲ over: rest" in text
+    response = client.get(reverse("experiments:ledger-csv"), {"overridden": "on"})
+    rows = list(csv.DictReader(io.StringIO(response.content.decode())))
+    assert list(rows[0]) == LEDGER_COLUMNS and len(rows) == 1
+    assert (rows[0]["exposure_number"], rows[0]["cumulative_dose_mj_cm2"], rows[0]["over_limit"]) == ("3", "150", "rest")
+
+
+# --- query counts stay constant ---------------------------------------------------------------------
+@pytest.mark.parametrize("n", [1, 4])
+def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher, protocol, technician,
+                                                     django_assert_max_num_queries, n):
+    tank = make_stocked_tank(estimate=5000, reserve=0, user=technician)
+    study = _filled_study(researcher, protocol, tank, n, code=f"q-{n}")
+    for _ in range(n):
+        services.book(user=researcher, protocol=protocol, tank=tank, animals=5, needed_on=today())
+    cohort = Cohort.objects.first()
+    client.force_login(manager)
+    booking = Booking.objects.first()
+    # Counts include the session, the user and the role lookup.
+    pages = {
+        reverse("experiments:index"): 8, study.get_absolute_url(): 5,
+        reverse("experiments:study-csv", args=[study.code]): 5,
+        reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
+        reverse("experiments:ledger"): 7, reverse("experiments:ledger-csv"): 5,
+        reverse("experiments:calendar"): 6, cohort.get_absolute_url(): 6,
+        booking.get_absolute_url(): 8, protocol.get_absolute_url(): 7,
+    }
+    for url, limit in pages.items():
+        with django_assert_max_num_queries(limit):
+            assert client.get(url).status_code == 200
+
+
+def test_booking_form_names_an_impossible_number(client, researcher, protocol, tank):
+    client.force_login(researcher)
+    response = client.post(reverse("experiments:booking-new"), {
+        "protocol": protocol.pk, "species": tank.species_id, "animals": 0, "needed_on": today().isoformat(),
+        "tank": tank.pk, "action": "book"})
+    assert response.status_code == 400
+    assert "Animals 0 is not possible: allowed range 1–100000." in page_text(response)
+
+
+def test_back_office_lists_and_adds_protocols_but_deletes_nothing(client, superuser, researcher, bench):
+    cohort, study = bench
+    record(study, cohort, researcher, at=days_ago(9))
+    client.force_login(superuser)
+    for model in ("protocol", "booking", "cohort", "study", "trial", "override", "attachment"):
+        assert client.get(reverse(f"admin:experiments_{model}_changelist")).status_code == 200
+    assert client.get(reverse("admin:experiments_protocol_add")).status_code == 200
+    assert client.get(reverse("admin:experiments_protocol_delete", args=[study.protocol_id])).status_code == 403
