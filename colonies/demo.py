@@ -220,6 +220,9 @@ def load(seed: int = 7, today=None) -> dict:
     bulk_create_with_history(censuses, Census, default_user=techs[0], default_change_reason="Demo data", default_date=stamp)
 
     _deviations(rng, checks, techs, manager, now)
+    # The trials side of the scenario: protocols, bookings, cohorts, a 30-trial study (draws from LV tanks).
+    from experiments import demo as trials_demo
+    trials = trials_demo.load(seed=seed, now=now, users=users)
 
     # One corrected and one voided record, so the history pages have something to show.
     check = Check.objects.filter(tank=by_code["PD-03"]).order_by("-observed_at")[5]
@@ -229,6 +232,7 @@ def load(seed: int = 7, today=None) -> dict:
     duplicate.void(user=techs[0], reason="Entered twice by mistake")
     return {"rooms": len(ROOMS), "tanks": len(tanks), "checks": len(checks), "feedings": len(feedings),
             "water_changes": len(changes), "censuses": len(censuses), "users": len(DEMO_USERS),
+            **trials,
             "deviations": Deviation.objects.count(),
             "unresolved_deviations": Deviation.objects.unresolved().count()}
 
