@@ -67,3 +67,14 @@ def test_installing_the_defaults_again_creates_nothing():
     before = (Species.objects.count(), CareTarget.objects.count())
     assert care_defaults.install(Species, CareTarget) == 0
     assert (Species.objects.count(), CareTarget.objects.count()) == before
+
+
+@pytest.mark.django_db
+def test_default_profiles_have_a_creation_in_their_history():
+    from colonies.models import CareTarget, Species
+
+    profiles = care_defaults.DEFAULT_PROFILES
+    for species in Species.objects.filter(scientific_name__in=[p["scientific_name"] for p in profiles]):
+        created = species.history.filter(history_type="+").get()
+        assert created.history_change_reason == "Default profile shipped with Vermilog"
+    assert CareTarget.history.filter(history_type="+").count() >= sum(len(p["targets"]) for p in profiles)
