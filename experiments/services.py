@@ -23,16 +23,17 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
+from datetime import timezone as dt_timezone
 
 from django.core.exceptions import PermissionDenied, ValidationError
 from django.db import transaction
-from django.db.models import FloatField, IntegerField, OuterRef, Subquery, Sum, Value
-from django.db.models.functions import Cast, Coalesce
+from django.db.models import DateTimeField, FloatField, IntegerField, OuterRef, Subquery, Sum, Value
+from django.db.models.functions import Cast, Coalesce, Greatest
 from django.utils import timezone
 from simple_history.utils import bulk_update_with_history
 
 from colonies.deviations import Finding, apply_findings
-from colonies.models import Census, Deviation, Tank
+from colonies.models import Census, Deviation, Split, SplitPart, Tank
 from colonies.roles import MANAGER, has_role
 
 from . import allocation, limits, stimulus
@@ -62,25 +63,43 @@ class LimitRefused(Refused):
 # ---------------------------------------------------------------------------------------------
 # Population and availability
 # ---------------------------------------------------------------------------------------------
-def tanks_with_availability(queryset=None):
-    """Annotate census_at, census_estimate, drawn_since, returned_since and booked (one query).
+EPOCH = datetime(1970, 1, 1, tzinfo=dt_timezone.utc)
 
-    Call `population_of(tank)` / `available_of(tank)` on the rows (needs species loaded).
+
+def tanks_with_availability(queryset=None):
+    """Annotate the tank's newest estimate and what happened since, in one query.
+
+    The newest estimate is the latest of: its current census, the animals that stayed at its
+    latest split, and (for a tank set up by a split) the animals moved into it — the same events
+    colonies.deviations.latest_estimates() uses. Then drawn_since / returned_since count cohorts
+    after that moment, and booked counts active bookings. Call `population_of(tank)` /
+    `available_of(tank)` on the rows (needs species loaded).
     """
     qs = queryset if queryset is not None else Tank.objects.all()
     latest = Census.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at", "-pk")
     value = Coalesce("estimate", Cast("direct_count", FloatField()))
-    drawn = (Cohort.objects.filter(origin_tank=OuterRef("pk"), drawn_at__gt=OuterRef("census_at"))
+    split = Split.objects.current().filter(source=OuterRef("pk")).order_by("-split_at", "-pk")
+    setup = (SplitPart.objects.filter(destination=OuterRef("pk"), created_tank=True, split__voided_at__isnull=True)
+             .order_by("-split__split_at"))
+    drawn = (Cohort.objects.filter(origin_tank=OuterRef("pk"), drawn_at__gt=OuterRef("base_at"))
              .order_by().values("origin_tank").annotate(n=Sum("size")).values("n"))
     returned = (Cohort.objects.filter(returned_to=OuterRef("pk"), end=Cohort.End.RETURNED,
-                                      ended_at__gt=OuterRef("census_at"))
+                                      ended_at__gt=OuterRef("base_at"))
                 .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
     booked = (Booking.objects.active().filter(tank=OuterRef("pk"))
               .order_by().values("tank").annotate(n=Sum("animals")).values("n"))
     zero = Value(0, output_field=IntegerField())
+    epoch = Value(EPOCH, output_field=DateTimeField())
     return qs.annotate(
         census_at=Subquery(latest.values("observed_at")[:1]),
         census_estimate=Subquery(latest.annotate(v=value).values("v")[:1], output_field=FloatField()),
+        split_at=Subquery(split.values("split_at")[:1]),
+        split_stayed=Subquery(split.values("stayed")[:1], output_field=FloatField()),
+        setup_at=Subquery(setup.values("split__split_at")[:1]),
+        setup_animals=Subquery(setup.values("animals")[:1], output_field=FloatField()),
+    ).annotate(
+        # Greatest() with a NULL is NULL on SQLite but not on PostgreSQL: coalesce to the epoch first.
+        base_at=Greatest(Coalesce("census_at", epoch), Coalesce("split_at", epoch), Coalesce("setup_at", epoch)),
     ).annotate(
         drawn_since=Coalesce(Subquery(drawn, output_field=IntegerField()), zero),
         returned_since=Coalesce(Subquery(returned, output_field=IntegerField()), zero),
@@ -88,10 +107,20 @@ def tanks_with_availability(queryset=None):
     )
 
 
+def base_estimate_of(tank) -> float | None:
+    """The newest of the census estimate, what stayed after a split, and a split set-up count."""
+    candidates = [(at, value) for at, value in ((tank.census_at, tank.census_estimate),
+                                                  (tank.split_at, tank.split_stayed),
+                                                  (tank.setup_at, tank.setup_animals))
+                  if at is not None and value is not None]
+    return max(candidates, key=lambda c: c[0])[1] if candidates else None
+
+
 def population_of(tank) -> int | None:
-    if tank.census_estimate is None:
+    base = base_estimate_of(tank)
+    if base is None:
         return None
-    return max(0, round(tank.census_estimate) - tank.drawn_since + tank.returned_since)
+    return max(0, round(base) - tank.drawn_since + tank.returned_since)
 
 
 def available_of(tank) -> int | None:
@@ -102,7 +131,7 @@ def available_of(tank) -> int | None:
 
 
 def current_population(tank) -> int | None:
-    """Latest census estimate − animals drawn after it + animals returned after it (one query)."""
+    """Newest estimate (census or split) − animals drawn after it + animals returned after it (one query)."""
     return population_of(tanks_with_availability(Tank.objects.filter(pk=tank.pk)).get())
 
 

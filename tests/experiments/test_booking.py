@@ -31,6 +31,20 @@ def test_drawn_animals_leave_the_tank_and_returned_ones_come_back(researcher, pr
     assert services.current_population(tank) == 995
 
 
+def test_a_split_after_the_census_sets_the_tanks_population(researcher, technician, protocol, tank):
+    """Animals moved away in a split cannot be booked: the split's 'stayed' estimate is newer than the census."""
+    from colonies.services import NewTank, record_split
+
+    record_split(user=technician, source=tank, source_before=1000, stayed=400,
+                 parts=[(NewTank(code="SPL-01", position="shelf Z", volume_l=2.0), 600)])
+    assert services.current_population(tank) == 400
+    assert services.available(tank) == 300  # 400 - reserve 100
+    new_tank = Tank.objects.get(code="SPL-01")
+    assert services.current_population(new_tank) == 600  # the animals moved in at its set-up
+    with pytest.raises(services.Refused, match="only 300 animals available"):
+        services.book(user=researcher, protocol=protocol, tank=tank, animals=500, needed_on=today())
+
+
 def test_a_census_after_the_draw_already_counts_it(researcher, technician, protocol, tank):
     booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=40, needed_on=today())
     services.draw(user=researcher, booking=booking, at=days_ago(1))
