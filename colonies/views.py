@@ -1,5 +1,9 @@
 import csv
+import io
+import itertools
 from datetime import timedelta
+
+import pandas as pd
 
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
@@ -8,9 +12,11 @@ from django.db.models import Count, Q
 from django.http import Http404, HttpResponse, StreamingHttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
+from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
 from . import derived, health_views, parameters, services
+from . import labels as labels_module
 from .filters import CheckFilter, TankFilter
 from .flags import describe, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
@@ -152,6 +158,17 @@ def _round_rows(forms):
 def tank_list(request):
     tank_filter = TankFilter(request.GET, queryset=Tank.objects.select_related("room", "species").with_last_events())
     return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tank_filter.qs})
+
+
+@require_GET
+@role_required(*READ_ROLES)
+def tank_labels(request):
+    """A printable sheet of tank labels (code, species, place, QR code to the tank page)."""
+    tank_filter = TankFilter(request.GET or {"status": Tank.Status.ACTIVE},
+                             queryset=Tank.objects.select_related("room", "species"))
+    labels = [{"tank": t, "qr": mark_safe(labels_module.qr_svg(request.build_absolute_uri(t.get_absolute_url())))}
+              for t in tank_filter.qs.order_by("room__code", "code")]
+    return render(request, "colonies/tank_labels.html", {"filter": tank_filter, "labels": labels})
 
 
 def _tank_page_ctx(request, tank, **forms):
@@ -395,6 +412,31 @@ class _Echo:
 @role_required(*READ_ROLES)
 def checks_csv(request):
     """All checks matching the filter, one row each; columns come from the parameter registry."""
+    header, rows = _check_export(request)
+    writer = csv.writer(_Echo())
+    response = StreamingHttpResponse((writer.writerow(r) for r in itertools.chain([header], rows)),
+                                     content_type="text/csv; charset=utf-8")
+    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
+    return response
+
+
+@require_GET
+@role_required(*READ_ROLES)
+def checks_xlsx(request):
+    """The same table as the CSV, as a spreadsheet (one sheet; times in UTC)."""
+    header, rows = _check_export(request)
+    frame = pd.DataFrame(list(rows), columns=header).replace("", None)
+    buffer = io.BytesIO()
+    with pd.ExcelWriter(buffer, engine="openpyxl") as writer:
+        frame.to_excel(writer, sheet_name="checks", index=False, freeze_panes=(1, 2))
+    response = HttpResponse(buffer.getvalue(),
+                            content_type="application/vnd.openxmlformats-officedocument.spreadsheetml.sheet")
+    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.xlsx"'
+    return response
+
+
+def _check_export(request):
+    """Header and a row iterator of the checks matching the request's filter (one query, streamed)."""
     check_filter = CheckFilter(request.GET, queryset=Check.objects.select_related("tank__room", "tank__species",
                                                                                   "recorded_by"))
     qs = check_filter.qs.order_by("observed_at", "pk")
@@ -405,7 +447,6 @@ def checks_csv(request):
                "corrective_action", "note", "voided", "void_reason"]
 
     def rows():
-        yield header
         for c in qs.iterator(chunk_size=2000):
             yield [c.pk, c.tank.code, c.tank.room.code, c.observed_at.isoformat(), c.recorded_at.isoformat(),
                    c.recorded_by.get_username()] + [
@@ -413,7 +454,4 @@ def checks_csv(request):
             ] + _derived_cells(c) + [c.activity, int(c.clumping), c.dead_removed, int(c.surface_film), c.odour, c.clarity,
                  " ".join(sorted(c.flags)), c.corrective_action, c.note, int(c.is_voided), c.void_reason]
 
-    writer = csv.writer(_Echo())
-    response = StreamingHttpResponse((writer.writerow(r) for r in rows()), content_type="text/csv; charset=utf-8")
-    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
-    return response
+    return header, rows()

@@ -60,3 +60,30 @@ def test_csv_filters_by_room(client, technician, tanks):
     rows = csv_rows(client.get(reverse("colonies:checks-csv"), {"room": tanks[1].room.pk}))
 
     assert [row[1] for row in rows[1:]] == ["MA-01"]
+
+
+def test_spreadsheet_export_has_the_same_columns_and_rows_as_the_csv(client, researcher):
+    import io
+
+    from openpyxl import load_workbook
+
+    from colonies import parameters
+    from tests.factories import make_check, make_tank, make_user
+
+    tech = make_user("xlsx-tech")
+    tank = make_tank(code="XL-01")
+    make_check(tank, user=tech, temp_c=21.5, ph=7.25)
+    make_check(tank, user=tech, temp_c=22.0)
+    client.force_login(researcher)
+    response = client.get(reverse("colonies:checks-xlsx"), {"tank": "XL-01"})
+    assert response.status_code == 200
+    assert response["Content-Type"].startswith("application/vnd.openxmlformats")
+    sheet = load_workbook(io.BytesIO(response.content))["checks"]
+    rows = list(sheet.iter_rows(values_only=True))
+    header = rows[0]
+    assert header[:3] == ("check_id", "tank", "room")
+    assert all(any(h.startswith(p.key) for h in header) for p in parameters.PARAMETERS)
+    assert len(rows) == 3
+    temps = [r[header.index("temp_c [°C]")] for r in rows[1:]]
+    assert temps == [21.5, 22.0]
+    assert rows[2][header.index("ph")] is None  # an empty reading is an empty cell, not ""
