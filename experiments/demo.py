@@ -154,7 +154,8 @@ def load(*, seed: int, now, users: dict) -> dict:
             "mortality_24h": 1 if rng.random() < 0.07 else 0, "note": "",
         }
         result = services.record_trial(user=manager if reason else ravi, study=study, slot=entry["slot"],
-                                       cohort=cohort, values=values, override_reason=reason, now=now)
+                                       cohort=cohort, values=values, override_reason=reason,
+                                       now=min(now, run_at + timedelta(hours=25)))  # completed with the 24 h count
         overrides += bool(result.override)
     services.unblind(user=ravi, study=study, at=_at(start + timedelta(days=5), 16, 0, tz),
                      reason="All 30 trials scored; primary analysis as planned.")
@@ -192,7 +193,8 @@ def load(*, seed: int, now, users: dict) -> dict:
                           pulse_count=20, pulse_frequency_hz=2.0)
         else:
             values.update(kind=Stimulus.NONE)
-        services.record_trial(user=ravi, study=pilot, slot=entry["slot"], cohort=pilot_cohort, values=values, now=now)
+        services.record_trial(user=ravi, study=pilot, slot=entry["slot"], cohort=pilot_cohort, values=values,
+                              now=min(now, values["run_at"] + timedelta(minutes=15)))
 
     # Bookings ahead, one cancelled and one that was never drawn (expires).
     for days, tank, animals, purpose in ((1, tanks[1], 10, "Pilot dish 3"), (4, tanks[6], 24, "Second UV series"),
