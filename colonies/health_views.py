@@ -20,7 +20,7 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import charts, parameters, population, services
+from . import charts, parameters, population, population_hooks, services
 from .models import (CareTarget, Census, Check, Deviation, Feeding, Species, Split, SplitPart, Tank, TankTarget,
                      WaterChange, tank_code_validator)
 from .roles import RESEARCHER, TECHNICIAN, role_required
@@ -215,6 +215,14 @@ class Summary:
     forecast_date: datetime | None = None
     forecast_text: str = ""
     splits: list = field(default_factory=list)
+    movements: list = field(default_factory=list)  # (label, signed animals) since the latest estimate
+
+    @property
+    def now_estimate(self) -> float | None:
+        """The latest estimate plus what other apps moved in or out since (trial cohorts)."""
+        if not self.latest:
+            return None
+        return max(0.0, self.latest.value + sum(n for _, n in self.movements))
 
     @property
     def density(self) -> float | None:
@@ -283,6 +291,8 @@ def tank_summary(tank: Tank, now: datetime | None = None, mortality_days: int = 
     dead = _deaths([tank.pk], now - timedelta(days=mortality_days), now).get(tank.pk, {}).get("dead") or 0
     summary = summarize(tank, points, dead, now, mortality_days)
     summary.splits = split_rows(tank.splits_out.current().prefetch_related("parts__destination")[:10])
+    if summary.latest:
+        summary.movements = population_hooks.movements_since(tank.pk, summary.latest.at)
     return summary
 
 

@@ -514,3 +514,14 @@ def file_checksum(attachment: Attachment) -> str:
         for chunk in iter(lambda: fh.read(1 << 16), b""):
             digest.update(chunk)
     return digest.hexdigest()
+
+
+def cohort_movements(tank_id: int, since: datetime) -> list[tuple[str, int]]:
+    """For the tank page: animals drawn from the tank for trials and returned to it after `since` (one query)."""
+    from django.db.models import Q
+
+    totals = Cohort.objects.filter(Q(origin_tank_id=tank_id) | Q(returned_to_id=tank_id)).aggregate(
+        drawn=Sum("size", filter=Q(origin_tank_id=tank_id, drawn_at__gt=since)),
+        returned=Sum("returned_count", filter=Q(returned_to_id=tank_id, end=Cohort.End.RETURNED, ended_at__gt=since)),
+    )
+    return [("drawn for trials", -(totals["drawn"] or 0)), ("returned from trials", totals["returned"] or 0)]

@@ -205,3 +205,16 @@ def test_simultaneous_bookings_for_the_last_animals_never_overbook():
     assert losers, "more was asked for than available, so someone must lose"
     for outcome in losers.values():
         assert outcome.startswith("Tank RACE-1 has only ") and outcome.endswith("Nothing was booked."), outcome
+
+
+def test_tank_page_shows_animals_drawn_since_the_estimate(client, researcher, protocol, tank):
+    from django.urls import reverse
+
+    booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=40, needed_on=today())
+    services.draw(user=researcher, booking=booking)
+    client.force_login(researcher)
+    response = client.get(reverse("colonies:tank-detail", args=[tank.code]))
+    summary = response.context["summary"]
+    assert ("drawn for trials", -40) in summary.movements
+    assert summary.now_estimate == 960
+    assert "-40 drawn for trials" in response.content.decode()
