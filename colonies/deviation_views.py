@@ -102,7 +102,7 @@ def acknowledge(request, pk):
         messages.error(request, str(error))
     else:
         messages.success(request, f"Acknowledged: {dev}.")
-    return redirect(request.POST.get("next") or dev.get_absolute_url())
+    return redirect(dev)
 
 
 @require_http_methods(["POST"])

@@ -21,20 +21,17 @@ from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
 from django.db import transaction
-from django.db.models import OuterRef, Subquery
+from django.db.models import OuterRef, Q, Subquery
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history, bulk_update_with_history
 
 from . import control_charts, derived
 from .flags import Target, out_of_target
-from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank
+from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank, overdue_grace
 
 Severity = Deviation.Severity
 Rule = Deviation.Rule
 
-# Time rules: how late before a deviation opens, as a fraction of the interval (at least 2 h).
-GRACE_FRACTION = 0.25  # common practice: a quarter of the interval
-MIN_GRACE = timedelta(hours=2)
 
 # Mortality: a check's dead count opens a deviation when it is at least MORTALITY_MIN_DEAD and
 # above the tank's recent baseline by 3 Poisson standard deviations (mean + 3 sqrt(mean)), or above
@@ -293,7 +290,7 @@ def _overdue(tank, now, label, last, interval, rule):
         due_at = timezone.make_aware(datetime.combine(tank.started_on, datetime.min.time())) + interval
     else:
         due_at = last + interval
-    grace = max(MIN_GRACE, interval * GRACE_FRACTION)
+    grace = overdue_grace(interval)  # the same grace the Today page uses
     if now <= due_at + grace:
         return None
     late = now - due_at
@@ -356,9 +353,21 @@ def apply_findings(findings: list[Finding], now: datetime | None = None, user=No
     if subjects:
         for dev in unresolved.filter(tank__isnull=True, subject__in=subjects):
             existing[(None, dev.rule, dev.parameter, dev.subject)] = dev
+    # Evidence already answered: a finding about the same record as a closed deviation (a correction
+    # re-running the rules on an old check, say) must not reopen it. One query.
+    answered = set()
+    earliest = min(f.at for f in findings)
+    closed = Deviation.objects.filter(status=Deviation.Status.CLOSED, rule__in={f.rule for f in findings},
+                                      last_seen_at__gte=earliest)
+    closed = closed.filter(tank_id__in=tank_ids) if not subjects else closed.filter(
+        Q(tank_id__in=tank_ids) | Q(tank__isnull=True, subject__in=subjects))
+    for dev in closed.only("tank_id", "rule", "parameter", "subject", "evidence"):
+        answered.update(((dev.tank_id, dev.rule, dev.parameter, dev.subject), e.get("ref")) for e in dev.evidence)
     new: dict[tuple, Deviation] = {}
     changed: dict[int, Deviation] = {}
     for f in sorted(findings, key=lambda f: f.at):
+        if (f.key, f.evidence["ref"]) in answered:
+            continue
         dev = existing.get(f.key) or new.get(f.key)
         if dev is None:
             new[f.key] = Deviation(

@@ -8,6 +8,9 @@ from .flags import out_of_target
 from .models import Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
 
 
+MAX_COUNT = 1_000_000  # more animals than any culture tank holds: a typo, not a count
+
+
 def _impossible(tank, p: parameters.Parameter, raw) -> str:
     where = f"Tank {tank.code}, " if tank is not None else ""
     return f"{where}{p.label_with_unit}: {raw} is impossible; allowed range {p.bounds_text()}."
@@ -21,7 +24,7 @@ class CheckEntryForm(forms.Form):
     """
 
     activity = forms.ChoiceField(choices=[("", "—")] + Check.Activity.choices, required=False)
-    dead_removed = forms.IntegerField(required=False, label="Dead removed")
+    dead_removed = forms.IntegerField(required=False, label="Dead removed")  # bounds checked in clean_dead_removed
     clumping = forms.BooleanField(required=False)
     surface_film = forms.BooleanField(required=False, label="Film / mould")
     odour = forms.ChoiceField(choices=[("", "—")] + Check.Odour.choices, required=False)
@@ -78,9 +81,9 @@ class CheckEntryForm(forms.Form):
 
     def clean_dead_removed(self):
         value = self.cleaned_data.get("dead_removed")
-        if value is not None and value < 0:
+        if value is not None and not 0 <= value <= MAX_COUNT:
             raise forms.ValidationError(
-                f"Tank {self.tank.code}, dead removed: {value} is impossible; allowed range 0 or more."
+                f"Tank {self.tank.code}, dead removed: {value} is impossible; allowed range 0 to {MAX_COUNT:,}."
             )
         return value
 
@@ -210,8 +213,8 @@ class CensusForm(forms.ModelForm):
                 n = int(token)
             except ValueError:
                 raise forms.ValidationError(f"Aliquot counts: '{token}' is not a whole number.") from None
-            if n < 0:
-                raise forms.ValidationError(f"Aliquot counts: {n} is impossible; allowed range 0 or more.")
+            if not 0 <= n <= MAX_COUNT:
+                raise forms.ValidationError(f"Aliquot counts: {n} is impossible; allowed range 0 to {MAX_COUNT:,}.")
             counts.append(n)
         return counts
 
@@ -249,8 +252,8 @@ class CareTargetForm(forms.ModelForm):
     def clean(self):
         cleaned = super().clean()
         low, high, key = cleaned.get("low"), cleaned.get("high"), cleaned.get("parameter")
-        if key:
-            p = parameters.get(key)
+        p = parameters.BY_KEY.get(key)  # derived values (e.g. DO % saturation) have no physical bounds here
+        if p is not None:
             for name, value in (("low", low), ("high", high)):
                 if value is not None and not (p.minimum <= value <= p.maximum):
                     self.add_error(name, f"{p.label} {name}: {value:g} is outside the physical range {p.bounds_text()}.")

@@ -22,6 +22,14 @@ DEFAULT_WATER_CHANGE_INTERVAL_DAYS = 7
 DEFAULT_WATER_CHANGE_FRACTION = 0.5
 DEFAULT_CENSUS_INTERVAL_DAYS = 14
 LATE_ENTRY_AFTER = timedelta(hours=6)  # entered this long after the observation: marked as a late entry
+# A task is overdue (and the scan opens a deviation) this long after it fell due:
+OVERDUE_GRACE_FRACTION = 0.25  # common practice: a quarter of the interval...
+MIN_OVERDUE_GRACE = timedelta(hours=2)  # ...and at least two hours
+
+
+def overdue_grace(interval: timedelta) -> timedelta:
+    return max(MIN_OVERDUE_GRACE, interval * OVERDUE_GRACE_FRACTION)
+
 
 tank_code_validator = RegexValidator(
     r"^[A-Z0-9][A-Z0-9-]{0,11}$",
@@ -312,6 +320,7 @@ class Tank(models.Model):
             items.append({
                 "key": key, "label": label, "last": last, "due_at": due_at,
                 "is_due": due_at is None or due_at <= now,
+                "is_overdue": due_at is None or now > due_at + overdue_grace(interval),
             })
         return items
 

@@ -66,7 +66,7 @@ PARAMETERS: tuple[Parameter, ...] = (
               help="Total ammonia nitrogen (NH3-N + NH4+-N), as most test kits' '-N' scale reports it."),
     Parameter("no2_mg_l", "Nitrite", "NO2", "mg/L NO2-N", 3, 0.0, 100.0),
     Parameter("no3_mg_l", "Nitrate", "NO3", "mg/L NO3-N", 1, 0.0, 500.0),
-    Parameter("conductivity_us_cm", "Conductivity", "Cond", "µS/cm", 0, 0.0, 100000.0,
+    Parameter("conductivity_us_cm", "Conductivity, uncompensated", "Cond (raw)", "µS/cm", 0, 0.0, 100000.0,
               help="At the water's temperature, uncompensated; Vermilog derives the 25 °C value."),
     Parameter("salinity", "Salinity", "Sal", "PSU", 1, 0.0, 50.0, habitats=(MARINE,),
               help="Practical salinity (PSS-78), numerically close to ‰ or g/kg."),

@@ -1,4 +1,5 @@
 """Writes that span several rows or models. Each is one transaction: all or nothing."""
+import math
 from dataclasses import dataclass
 from datetime import timedelta
 
@@ -60,6 +61,7 @@ def update_check(*, user, check: Check, row: dict, reason: str) -> Check:
     reason = reason.strip()
     if not reason:
         raise ValueError("A reason is required to change a record.")
+    before = check.values()
     for key in parameters.KEYS:
         if key in row:
             setattr(check, key, row[key])
@@ -68,7 +70,11 @@ def update_check(*, user, check: Check, row: dict, reason: str) -> Check:
             setattr(check, field, row[field])
     if "observed_at" in row and row["observed_at"]:
         check.observed_at = row["observed_at"]
-    check.flags = flags_for(check.values(), check.tank.care_targets())
+    # Only values that changed are flagged afresh; the others keep the flag shown when they were logged.
+    after = check.values()
+    changed = {key for key in after if after[key] != before.get(key)}
+    fresh = flags_for({key: after[key] for key in changed}, check.tank.care_targets())
+    check.flags = {key: flag for key, flag in check.flags.items() if key not in changed} | fresh
     check._history_user = user
     check._change_reason = reason
     check.save()
@@ -95,8 +101,19 @@ def record_water_change(*, user, change: WaterChange) -> WaterChange:
     return _save_simple(change, user=user, reason="Water change logged")
 
 
+MAX_ESTIMATE = 1e8  # animals; beyond this a census is a unit mistake (mg typed as g), not a culture
+
+
 def census_estimate(census: Census) -> population.Estimate:
     """Compute the population estimate from the census's raw data (raises ValueError on bad data)."""
+    estimate = _census_estimate(census)
+    if not (math.isfinite(estimate.upper) and estimate.value <= MAX_ESTIMATE):
+        raise ValueError(f"the estimate {estimate.value:.3g} animals is impossible (allowed up to {MAX_ESTIMATE:.0e}); "
+                         "check the volumes or masses and their units.")
+    return estimate
+
+
+def _census_estimate(census: Census) -> population.Estimate:
     m = Census.Method
     if census.method == m.DIRECT:
         if census.direct_count is None:

@@ -51,8 +51,7 @@ def home(request):
             entry["checked_today"] += 1
         for item in tank.due(now):
             if item["is_due"]:
-                overdue = item["due_at"] is not None and item["due_at"] < now - timedelta(hours=2)
-                entry["due"].setdefault(item["label"], []).append({"tank": tank, "overdue": overdue or item["due_at"] is None})
+                entry["due"].setdefault(item["label"], []).append({"tank": tank, "overdue": item["is_overdue"]})
     for entry in rooms.values():
         entry["percent"] = round(100 * entry["checked_today"] / entry["tanks"]) if entry["tanks"] else 0
         entry["due"] = sorted(entry["due"].items(), key=lambda kv: DUE_ORDER.index(kv[0]))

@@ -212,7 +212,7 @@ def calendar(request):
     base = start if view == "week" else start.replace(day=1)
     prev_start, next_start = base - step, base + step
     if view == "month":
-        prev_start, next_start = prev_start.replace(day=1), next_start.replace(day=1)
+        prev_start, next_start = (base - timedelta(days=1)).replace(day=1), next_start.replace(day=1)
     ctx = {"form": form, "view": view, "room": room, "start": start, "rooms": Room.objects.all(),
            "weeks": [[(d, by_day[d]) for d in days[i:i + 7]] for i in range(0, len(days), 7)],
            "month": start.month if view == "month" else None, "today": timezone.localdate(),

@@ -119,7 +119,9 @@ def _garcia_gordon_ml_l(temp_c: float, salinity: float) -> float:
 
 
 def test_garcia_gordon_reimplementation_reproduces_its_check_value():
-    # Garcia & Gordon 1992 check value: 6.315 mL/L at 10 °C, S = 35 (as quoted in reproductions).
+    # Garcia & Gordon 1992 check value: 6.315 mL/L at 10 °C, S = 35 (from memory, as quoted in
+    # reproductions; not in REFERENCES.md). It only confirms our transcription of their coefficients;
+    # the comparison with Benson & Krause below is the check that matters.
     assert _garcia_gordon_ml_l(10.0, 35.0) == pytest.approx(6.315, abs=5e-4)
 
 

@@ -237,3 +237,27 @@ def test_voided_check_does_not_feed_the_rules(technician):
     check = make_check(tank, user=technician, temp_c=22.0)
     check.void(user=technician, reason="wrong tank")
     assert deviations.evaluate_checks([check]).created == []
+
+
+def test_correcting_an_old_check_does_not_reopen_a_closed_deviation(technician):
+    from colonies import services
+
+    tank = _tank()
+    check = make_check(tank, user=technician, temp_c=26.0)
+    dev = Deviation.objects.get()
+    dev.close(user=technician, corrective_action="Heater replaced")
+    services.update_check(user=technician, check=check, row={"note": "typo fixed"}, reason="note was wrong")
+    assert Deviation.objects.count() == 1
+    assert Deviation.objects.get().status == Deviation.Status.CLOSED
+
+
+def test_a_correction_keeps_the_flags_of_unchanged_readings(technician):
+    from colonies import services
+    from colonies.models import CareTarget
+
+    tank = _tank()
+    check = make_check(tank, user=technician, temp_c=26.0, ph=7.0)
+    CareTarget.objects.filter(species=tank.species, parameter="temp_c").update(high=30.0)  # targets change later
+    services.update_check(user=technician, check=check, row={"ph": 7.1}, reason="pH re-read")
+    check.refresh_from_db()
+    assert check.flags["temp_c"]["high"] == 24.0  # still the flag shown when 26.0 was logged

@@ -140,7 +140,7 @@ IMPOSSIBLE = [
     ("tan_mg_l", "-1", "Tank FW-02, Total ammonia (mg/L NH3-N): -1 is impossible; allowed range 0 to 100 mg/L NH3-N."),
     ("temp_c", "51", "Tank FW-02, Temperature (°C): 51 is impossible; allowed range -5 to 50 °C."),
     ("temp_c", "-6", "Tank FW-02, Temperature (°C): -6 is impossible; allowed range -5 to 50 °C."),
-    ("dead_removed", "-3", "Tank FW-02, dead removed: -3 is impossible; allowed range 0 or more."),
+    ("dead_removed", "-3", "Tank FW-02, dead removed: -3 is impossible; allowed range 0 to 1,000,000."),
 ]
 
 

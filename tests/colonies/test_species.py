@@ -8,7 +8,7 @@ from tests.factories import make_species, make_tank, page_text, species_edit_dat
 
 @pytest.fixture
 def species(db):
-    return make_species(scientific_name="Testworm exemplaris", common_name="Test worm", targets={"ph": (6.0, 8.0)},
+    return make_species(scientific_name="Testworm exemplaris", common_name="Test worm", targets={"ph": (6.0, 8.0), "do_pct_sat": (30.0, None)},
                         sources={"feeding_interval_days": "lab setting"})
 
 
@@ -80,11 +80,11 @@ def test_invalid_care_target_is_refused_and_nothing_saved(client, manager, speci
     response = client.post(reverse("colonies:species-edit", args=[species.pk]), data)
 
     assert response.status_code == 400
-    assert CareTarget.objects.filter(species=species).count() == 1
+    assert CareTarget.objects.filter(species=species).count() == 2  # the fixture's pH and DO % targets only
     species.refresh_from_db()
     assert species.feeding_interval_days != 4
     if field:
-        assert field in response.context["targets"].forms[1].errors
+        assert field in response.context["targets"].forms[2].errors
 
 
 def test_species_edit_of_unknown_species_is_404(client, manager):

@@ -178,6 +178,11 @@ def test_census_by_wet_mass_scales_the_subsample(client, technician, tank):
                   "census-sample_count": "10"}, "sample_mass_g must be <= total_mass_g",
                  id="sample-heavier-than-total"),
     pytest.param({"census-method": "direct"}, "Direct count: enter the number of animals counted.", id="no-count"),
+    pytest.param({"census-method": "aliquot", "census-aliquot_counts_text": "99999999999999999999999",
+                  "census-aliquot_ml": "20", "census-total_ml": "1000"}, "allowed range 0 to 1,000,000",
+                 id="absurd-count"),
+    pytest.param({"census-method": "mass", "census-total_mass_g": "1e300", "census-sample_mass_g": "1e-300",
+                  "census-sample_count": "10"}, "is impossible (allowed up to 1e+08)", id="unit-mistake"),
 ])
 def test_bad_census_data_is_a_form_error_and_nothing_is_saved(client, technician, tank, data, message):
     client.force_login(technician)
@@ -187,3 +192,11 @@ def test_bad_census_data_is_a_form_error_and_nothing_is_saved(client, technician
     assert response.status_code == 400
     assert message in page_text(response)
     assert Census.objects.count() == 0
+
+
+def test_absurd_dead_count_is_rejected_not_a_server_error(client, technician, tank):
+    client.force_login(technician)
+    response = _add(client, tank, "check", {"check-dead_removed": "99999999999999999999"})
+    assert response.status_code == 400
+    assert "dead removed: 99999999999999999999 is impossible; allowed range 0 to 1,000,000." in page_text(response)
+    assert Check.objects.count() == 0
