@@ -7,6 +7,7 @@ from django.http import HttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
+from .exports import spreadsheet_safe
 from .filters import DeviationFilter
 from .models import Deviation
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
@@ -67,11 +68,11 @@ def register_csv(request):
         "id": d.pk, "tank": d.tank.code if d.tank else "", "room": d.tank.room.code if d.tank else "",
         "subject": d.subject, "rule": d.rule, "parameter": d.parameter, "severity": d.get_severity_display(),
         "status": d.status, "opened_at_utc": d.opened_at, "last_seen_at_utc": d.last_seen_at,
-        "evidence_count": d.evidence_count, "summary": d.summary,
+        "evidence_count": d.evidence_count, "summary": spreadsheet_safe(d.summary),
         "acknowledged_at_utc": d.acknowledged_at, "acknowledged_by": d.acknowledged_by.get_username() if d.acknowledged_by else "",
         "closed_at_utc": d.closed_at, "closed_by": d.closed_by.get_username() if d.closed_by else "",
         "hours_to_close": round(d.time_to_close.total_seconds() / 3600, 2) if d.time_to_close else None,
-        "corrective_action": d.corrective_action,
+        "corrective_action": spreadsheet_safe(d.corrective_action),
     } for d in dfilter.qs.order_by("opened_at")]
     frame = pd.DataFrame(rows, columns=["id", "tank", "room", "subject", "rule", "parameter", "severity", "status",
                                         "opened_at_utc", "last_seen_at_utc", "evidence_count", "summary",

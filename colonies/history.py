@@ -1,5 +1,7 @@
 """Reading the change history (django-simple-history tables) for display."""
-from .models import Census, Check, Feeding, WaterChange
+from django.db.models import Q
+
+from .models import Census, Check, Feeding, Split, SplitPart, WaterChange
 
 FIELD_SKIP = {"flags", "history_id", "history_date", "history_change_reason", "history_type", "history_user"}
 TYPE_WORD = {"+": "created", "~": "changed", "-": "deleted"}
@@ -33,14 +35,19 @@ def _action(h, prev) -> str:
     return TYPE_WORD.get(h.history_type, h.history_type)
 
 
-def record_history(tank, limit: int = 300) -> list[dict]:
-    """Every version of the tank and of its records, newest first.
+def record_history(tank) -> list[dict]:
+    """Every version of the tank and of its records (splits included), newest first.
 
-    A fixed number of queries (one per record type), whatever the number of records.
+    A fixed number of queries (one per record type), whatever the number of records; the page
+    shows them in pages, nothing is cut off.
     """
     entries = _entries_for(tank.history.all(), "Tank")
     entries += _entries_for(tank.target_overrides.model.history.filter(tank_id=tank.pk), "Tank target")
     for model, label in ((Check, "Check"), (Feeding, "Feeding"), (WaterChange, "Water change"), (Census, "Census")):
         entries += _entries_for(model.history.filter(tank_id=tank.pk), label)
+    split_ids = SplitPart.history.filter(destination_id=tank.pk).values("split_id")
+    entries += _entries_for(Split.history.filter(Q(source_id=tank.pk) | Q(id__in=split_ids)), "Split")
+    entries += _entries_for(SplitPart.history.filter(Q(destination_id=tank.pk) | Q(split__source_id=tank.pk)),
+                            "Split part")
     entries.sort(key=lambda e: e["when"], reverse=True)
-    return entries[:limit]
+    return entries

@@ -7,6 +7,7 @@ import pandas as pd
 
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
+from django.core.paginator import Paginator
 from django.db import transaction
 from django.db.models import Count, Q
 from django.http import Http404, HttpResponse, StreamingHttpResponse
@@ -17,6 +18,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from . import derived, health_views, parameters, services
 from . import labels as labels_module
+from .exports import spreadsheet_safe
 from .filters import CheckFilter, TankFilter
 from .flags import describe, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
@@ -278,7 +280,11 @@ def _flash_check(request, check):
 @role_required(*READ_ROLES)
 def tank_history(request, code):
     tank = _get_tank(code)
-    return render(request, "colonies/history.html", {"tank": tank, "entries": record_history(tank)})
+    page = Paginator(record_history(tank), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
+    return render(request, "colonies/history.html", {"tank": tank, "entries": page.object_list, "page": page})
+
+
+HISTORY_PAGE_SIZE = 200
 
 
 # ---------------------------------------------------------------------------------------------
@@ -451,6 +457,7 @@ def _check_export(request):
                    c.recorded_by.get_username()] + [
                 "" if getattr(c, p.key) is None else getattr(c, p.key) for p in parameters.PARAMETERS
             ] + _derived_cells(c) + [c.activity, int(c.clumping), c.dead_removed, int(c.surface_film), c.odour, c.clarity,
-                 " ".join(sorted(c.flags)), c.corrective_action, c.note, int(c.is_voided), c.void_reason]
+                 " ".join(sorted(c.flags)), spreadsheet_safe(c.corrective_action), spreadsheet_safe(c.note),
+                 int(c.is_voided), spreadsheet_safe(c.void_reason)]
 
     return header, rows()

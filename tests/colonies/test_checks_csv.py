@@ -87,3 +87,14 @@ def test_spreadsheet_export_has_the_same_columns_and_rows_as_the_csv(client, res
     temps = [r[header.index("temp_c [°C]")] for r in rows[1:]]
     assert temps == [21.5, 22.0]
     assert rows[2][header.index("ph")] is None  # an empty reading is an empty cell, not ""
+
+
+def test_free_text_that_looks_like_a_formula_is_defused(client, researcher):
+    from tests.factories import make_check, make_tank, make_user
+
+    tank = make_tank(code="FX-01")
+    make_check(tank, user=make_user("fx-tech"), temp_c=21.0, note="=HYPERLINK(\"http://x.invalid\")")
+    client.force_login(researcher)
+    rows = csv_rows(client.get(reverse("colonies:checks-csv"), {"tank": "FX-01"}))
+    note = rows[1][rows[0].index("note")]
+    assert note == "'=HYPERLINK(\"http://x.invalid\")"

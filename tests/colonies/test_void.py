@@ -118,3 +118,23 @@ def test_void_of_unknown_kind_is_404(client, technician, check):
     client.force_login(technician)
     assert _void(client, "tank", check.pk, "No").status_code == 404
     assert Check.objects.current().count() == 1
+
+
+def test_tank_history_includes_splits_and_pages_instead_of_cutting_off(client, technician):
+    from colonies.services import NewTank, record_split
+    from colonies.views import HISTORY_PAGE_SIZE
+    from tests.factories import make_check, make_tank
+
+    source = make_tank(code="HS-01")
+    record_split(user=technician, source=source, source_before=500, stayed=300,
+                 parts=[(NewTank(code="HS-02", volume_l=2.0), 200)])
+    for i in range(HISTORY_PAGE_SIZE):
+        make_check(source, user=technician, temp_c=20.0 + i / 1000)
+    client.force_login(technician)
+    first = client.get(reverse("colonies:tank-history", args=["HS-01"]))
+    assert first.context["page"].paginator.count == HISTORY_PAGE_SIZE + 3  # tank, split, split part + checks
+    last = client.get(reverse("colonies:tank-history", args=["HS-01"]), {"page": 2})
+    whats = {e["what"].split(" #")[0] for e in last.context["entries"]}
+    assert {"Split", "Split part", "Tank"} <= whats
+    child = client.get(reverse("colonies:tank-history", args=["HS-02"]))
+    assert any(e["what"].startswith("Split part") for e in child.context["entries"])
