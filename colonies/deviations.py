@@ -441,11 +441,11 @@ def evaluate_censuses(censuses) -> Iterable[Finding]:
 
 
 def latest_estimates(tank_ids) -> dict[int, tuple[float, datetime, str, str]]:
-    """Each tank's newest population estimate: (animals, when, evidence ref, what), three queries.
+    """Each tank's newest population estimate: (animals, when, evidence ref, what), four queries.
 
     The newest of: its latest current census, the animals that stayed at its latest split, and
-    (for a tank set up by a split) the animals moved into it. A split into an existing tank does
-    not say how many animals are there in total, so it is not an estimate of its own.
+    (for a tank set up by a split) the animals moved into it. Animals split into an existing tank
+    after that are added to it, as the tank page does (colonies.health_views.load_points).
     """
     from .models import Split, SplitPart
 
@@ -468,6 +468,13 @@ def latest_estimates(tank_ids) -> dict[int, tuple[float, datetime, str, str]]:
                                                             split__voided_at__isnull=True)
                                    .values_list("split_id", "destination_id", "animals", "split__split_at")):
         offer(tank_id, value, at, f"split:{pk}:in", "moved in at its set-up:")
+    for pk, tank_id, animals, at in (SplitPart.objects.filter(destination_id__in=ids, created_tank=False,
+                                                              split__voided_at__isnull=True)
+                                     .order_by("split__split_at").values_list("split_id", "destination_id", "animals",
+                                                                              "split__split_at")):
+        if tank_id in out and at > out[tank_id][1]:
+            value = out[tank_id][0] + animals
+            out[tank_id] = (value, at, f"split:{pk}:in", f"after {animals:.0f} were split into it:")
     return out
 
 

@@ -83,6 +83,9 @@ def tanks_with_availability(queryset=None):
              .order_by("-split__split_at"))
     drawn = (Cohort.objects.filter(origin_tank=OuterRef("pk"), drawn_at__gt=OuterRef("base_at"))
              .order_by().values("origin_tank").annotate(n=Sum("size")).values("n"))
+    split_in = (SplitPart.objects.filter(destination=OuterRef("pk"), created_tank=False, split__voided_at__isnull=True,
+                                         split__split_at__gt=OuterRef("base_at"))
+                .order_by().values("destination").annotate(n=Sum("animals")).values("n"))
     returned = (Cohort.objects.filter(returned_to=OuterRef("pk"), end=Cohort.End.RETURNED,
                                       ended_at__gt=OuterRef("base_at"))
                 .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
@@ -102,6 +105,7 @@ def tanks_with_availability(queryset=None):
         base_at=Greatest(Coalesce("census_at", epoch), Coalesce("split_at", epoch), Coalesce("setup_at", epoch)),
     ).annotate(
         drawn_since=Coalesce(Subquery(drawn, output_field=IntegerField()), zero),
+        split_in_since=Coalesce(Subquery(split_in, output_field=FloatField()), Value(0.0, output_field=FloatField())),
         returned_since=Coalesce(Subquery(returned, output_field=IntegerField()), zero),
         booked=Coalesce(Subquery(booked, output_field=IntegerField()), zero),
     )
@@ -120,7 +124,7 @@ def population_of(tank) -> int | None:
     base = base_estimate_of(tank)
     if base is None:
         return None
-    return max(0, round(base) - tank.drawn_since + tank.returned_since)
+    return max(0, round(base + tank.split_in_since) - tank.drawn_since + tank.returned_since)
 
 
 def available_of(tank) -> int | None:

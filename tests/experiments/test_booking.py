@@ -45,6 +45,24 @@ def test_a_split_after_the_census_sets_the_tanks_population(researcher, technici
         services.book(user=researcher, protocol=protocol, tank=tank, animals=500, needed_on=today())
 
 
+def test_animals_split_into_an_existing_tank_count_there_everywhere(researcher, technician, protocol, tank):
+    """Trials availability, the density rule and the tank page agree after a split into an existing tank."""
+    from django.urls import reverse
+    from django.test import Client
+
+    from colonies.deviations import latest_estimates
+    from colonies.services import record_split
+
+    other = make_stocked_tank(estimate=500, user=technician, species=tank.species)
+    record_split(user=technician, source=tank, source_before=1000, stayed=700, parts=[(other, 300)])
+    assert services.current_population(other) == 800
+    assert latest_estimates([other.pk])[other.pk][0] == 800
+    client = Client()
+    client.force_login(researcher)
+    summary = client.get(reverse("colonies:tank-detail", args=[other.code])).context["summary"]
+    assert summary.latest.value == 800
+
+
 def test_a_census_after_the_draw_already_counts_it(researcher, technician, protocol, tank):
     booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=40, needed_on=today())
     services.draw(user=researcher, booking=booking, at=days_ago(1))
