@@ -1,3 +1,5 @@
+from datetime import timedelta
+
 from django import forms
 from django.utils import timezone
 
@@ -10,6 +12,11 @@ from .validators import BOUNDS, outside_message
 DATE = forms.DateInput(attrs={"type": "date"}, format="%Y-%m-%d")
 DATETIME = forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M")
 MAX_CLUSTER_POINTS = 50
+DRAWN_AT_LEEWAY_MIN = 5  # clocks differ a little; the same leeway as a trial's run_at
+
+
+def _minute(dt) -> str:
+    return f"{timezone.localtime(dt):%Y-%m-%d %H:%M}"
 
 
 class ReasonForm(forms.Form):
@@ -66,6 +73,18 @@ class DrawForm(forms.Form):
         self.fields["count"].initial = booking.animals
         self.fields["count"].max_value = booking.animals
         self.fields["count"].widget.attrs["max"] = booking.animals
+
+    def clean_drawn_at(self):
+        drawn_at = self.cleaned_data.get("drawn_at")
+        if drawn_at is None:
+            return None
+        # The field holds whole minutes: compare with the minute the booking was made.
+        earliest = self.booking.booked_at.replace(second=0, microsecond=0)
+        latest = timezone.now() + timedelta(minutes=DRAWN_AT_LEEWAY_MIN)
+        if not earliest <= drawn_at <= latest:
+            raise forms.ValidationError(f"Drawn at {_minute(drawn_at)} is not possible: allowed range "
+                                        f"{_minute(earliest)} (when it was booked) to {_minute(latest)} (now).")
+        return drawn_at
 
     def clean_count(self):
         count = self.cleaned_data["count"]
@@ -318,6 +337,10 @@ class TrialForm(OutcomeFields):
 
 
 class ScoreForm(OutcomeFields):
+    reason = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False,
+                             label="Reason for the correction", help_text="Required; kept in the history.",
+                             error_messages={"required": "Give a reason for correcting the score."})
+
     class Meta:
         model = Trial
         fields = OUTCOME_FORM_FIELDS
@@ -326,6 +349,16 @@ class ScoreForm(OutcomeFields):
     def __init__(self, *args, **kwargs):
         super().__init__(*args, **kwargs)
         self.fields["clusters_text"].initial = clusters_text(self.instance.clusters)
+        if self.instance.is_scored:
+            self.fields["reason"].required = True
+        else:
+            del self.fields["reason"]  # a first score needs no reason
+
+    def clean_reason(self):
+        reason = self.cleaned_data["reason"].strip()
+        if not reason:
+            raise forms.ValidationError("Give a reason for correcting the score.")
+        return reason
 
     def window(self) -> int:
         return self.instance.observation_window_s

@@ -198,12 +198,17 @@ LEDGER_COLUMNS = ["cohort", "origin_tank", "protocol", "run_at", "study", "slot"
                   "override_by", "deviation"]
 
 
-def ledger_rows(shown: list[Trial], every: list[Trial]) -> list[dict]:
+def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
     """Rows for the shown exposures, with running totals over *all* exposures of their cohorts.
 
     `every` holds every counting trial of the cohorts in `shown` (so a date filter does not
-    restart the count); both need cohort, protocol and override loaded.
+    restart the count); both need study loaded, `shown` also cohort, protocol and override.
+    A trial of a study blinded to `user` shows its code, not its stimulus, settings, dose or
+    override reason; its cohort's cumulative dose is hidden too, since differences of running
+    totals (or the total less the visible doses) would give the hidden dose back.
     """
+    blind = {t.pk for t in [*every, *shown] if t.study.hides_conditions_from(user)}
+    blind_cohorts = {t.cohort_id for t in [*every, *shown] if t.pk in blind}
     running: dict[int, dict] = {}
     by_trial: dict[int, dict] = {}
     for t in sorted(every, key=lambda t: (t.cohort_id, t.run_at, t.pk)):
@@ -234,6 +239,11 @@ def ledger_rows(shown: list[Trial], every: list[Trial]) -> list[dict]:
             "rest_h": None if totals["rest"] is None else round(totals["rest"], 1), "min_rest_h": p.min_rest_hours,
             "over_limit": ", ".join(over), "override_reason": override.reason if override else "",
             "override_by": override.recorded_by.get_username() if override else "",
-            "deviation": override.deviation_id if override else None,
+            "deviation": override.deviation_id if override else None, "blinded": t.pk in blind,
         })
+        if t.pk in blind:
+            rows[-1].update(stimulus="blinded", settings=f"blinded: code {t.code}", dose_mj_cm2=None,
+                            override_reason="(hidden while the study is blinded)" if override else "")
+        if t.cohort_id in blind_cohorts:
+            rows[-1]["cumulative_dose_mj_cm2"] = None
     return rows

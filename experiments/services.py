@@ -37,8 +37,8 @@ from colonies.models import Census, Deviation, Split, SplitPart, Tank
 from colonies.roles import MANAGER, has_role
 
 from . import allocation, limits, stimulus
-from .models import (LIGHT_KINDS, SETTING_FIELDS, Attachment, Booking, Cohort, Override, Protocol, Stimulus, Study,
-                     Trial)
+from .models import (LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort, Override, Protocol,
+                     Stimulus, Study, Trial)
 
 
 class Refused(Exception):
@@ -209,8 +209,16 @@ def cancel_booking(*, user, booking: Booking, reason: str) -> Booking:
 
 
 def draw(*, user, booking: Booking, count: int | None = None, at: datetime | None = None) -> Cohort:
-    """The booked animals leave the tank and become a cohort."""
-    at = at or timezone.now()
+    """The booked animals leave the tank and become a cohort.
+
+    `at` may lie before the booking was made (the demo and imports back-date draws); the draw
+    form holds typed times to booked_at..now.
+    """
+    now = timezone.now()
+    at = at or now
+    if at > now + timedelta(minutes=5):
+        raise Refused(f"Drawn at {timezone.localtime(at):%Y-%m-%d %H:%M} is in the future; record a draw once "
+                      "it has happened.")
     day = timezone.localdate(at)
     with transaction.atomic():
         Tank.objects.select_for_update().get(pk=booking.tank_id)
@@ -370,6 +378,14 @@ def _check_order(trial: Trial, cohort: Cohort, now: datetime) -> None:
         raise ValidationError({"mortality_24h": "Mortality at 24 h can only be recorded from 24 h after the trial ran."})
 
 
+def _check_light_is_visible(trial: Trial) -> None:
+    # A "light" trial is checked against the visible-light allowance; UV must meet the UV one.
+    if trial.kind == Stimulus.LIGHT and trial.wavelength_nm is not None and trial.wavelength_nm < UV_BELOW_NM:
+        raise ValidationError({"wavelength_nm": f"Wavelength {trial.wavelength_nm:g} nm is ultraviolet, not visible "
+                                                f"light (visible: {UV_BELOW_NM} nm and above). Use the stimulus type "
+                                                f"'{Stimulus.UV.label}'."})
+
+
 @dataclass
 class TrialResult:
     trial: Trial
@@ -403,6 +419,7 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
                       replicate=entry["replicate"], cohort=cohort, protocol=protocol, run_by=user,
                       observation_window_s=study.observation_window_s, **values)
         derive(trial)
+        _check_light_is_visible(trial)
         normalise_outcome(trial)
         if trial.disperse_s is not None:
             trial.scored_at, trial.scored_by = now, user
@@ -451,9 +468,10 @@ def _open_deviation(override: Override, breaches: list[limits.Breach], now: date
                                               parameter="", subject=cohort.subject)
 
 
-def score_trial(*, user, trial: Trial, values: dict, now: datetime | None = None) -> Trial:
-    """Enter or correct the outcomes (blinded scorers see only the code)."""
+def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None) -> Trial:
+    """Enter or correct the outcomes (blinded scorers see only the code); a correction needs a reason."""
     now = now or timezone.now()
+    reason = (reason or "").strip()
     with transaction.atomic():
         trial = Trial.objects.select_for_update().select_related("study", "cohort").get(pk=trial.pk)
         if trial.is_voided:
@@ -461,6 +479,8 @@ def score_trial(*, user, trial: Trial, values: dict, now: datetime | None = None
         if trial.study.is_locked:
             raise Refused(f"Study {trial.study.code} has locked outcomes; scores can no longer change.")
         correcting = trial.is_scored
+        if correcting and not reason:
+            raise Refused(f"{trial} is already scored: give a reason to correct the score.")
         for name in OUTCOME_FIELDS:
             if name in values:
                 setattr(trial, name, values[name])
@@ -468,7 +488,7 @@ def score_trial(*, user, trial: Trial, values: dict, now: datetime | None = None
         _check_order(trial, trial.cohort, now)
         trial.full_clean()
         trial.scored_at, trial.scored_by = now, user
-        return _save(trial, user, "Outcome corrected" if correcting else "Outcome scored")
+        return _save(trial, user, f"Outcome corrected: {reason}" if correcting else "Outcome scored")
 
 
 def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:

@@ -18,6 +18,7 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
+from colonies.exports import spreadsheet_safe
 from colonies.models import Room
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
@@ -63,6 +64,14 @@ def _get_cohort(pk: int) -> Cohort:
 
 def _may_change_booking(user, booking) -> bool:
     return booking.booked_by_id == user.pk or has_role(user, MANAGER)
+
+
+def _may_end_cohort(user, cohort) -> bool:
+    return cohort.drawn_by_id == user.pk or has_role(user, MANAGER)
+
+
+def _may_set_aside(user, trial) -> bool:
+    return trial.study.owner_id == user.pk or has_role(user, MANAGER)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -228,13 +237,14 @@ def calendar(request):
 def cohort_detail(request, pk):
     cohort = _get_cohort(pk)
     trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("run_at"))
-    rows = reports.ledger_rows(trials, trials)
+    rows = reports.ledger_rows(trials, trials, request.user)
     protocol = cohort.protocol
-    ctx = {"cohort": cohort, "rows": rows, "protocol": protocol,
-           "n_exposures": len(trials), "cumulative": sum(t.dose_mj_cm2 or 0 for t in trials),
+    ctx = {"cohort": cohort, "rows": rows, "protocol": protocol, "n_exposures": len(trials),
+           "cumulative": None if any(r["blinded"] for r in rows) else sum(t.dose_mj_cm2 or 0 for t in trials),
            "last": trials[-1].run_at if trials else None,
            "next_allowed": trials[-1].run_at + timedelta(hours=protocol.min_rest_hours) if trials else None,
-           "end_form": CohortEndForm(cohort=cohort), "can_run": has_role(request.user, *RUN)}
+           "end_form": CohortEndForm(cohort=cohort),
+           "may_end": has_role(request.user, *RUN) and _may_end_cohort(request.user, cohort)}
     return render(request, "experiments/cohort_detail.html", ctx)
 
 
@@ -242,6 +252,8 @@ def cohort_detail(request, pk):
 @role_required(*RUN)
 def cohort_end(request, pk):
     cohort = _get_cohort(pk)
+    if not _may_end_cohort(request.user, cohort):
+        raise PermissionDenied("Only the researcher who drew the cohort or a manager may end it.")
     form = CohortEndForm(request.POST, cohort=cohort)
     if not form.is_valid():
         messages.error(request, "Nothing was saved: " + " ".join(m for msgs in form.errors.values() for m in msgs))
@@ -324,6 +336,11 @@ def _analysis_for(request, code):
 
 
 def _csv_response(frame, filename: str) -> HttpResponse:
+    # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe.
+    # Only object (text) columns are touched, and spreadsheet_safe leaves any non-string in them
+    # alone, so numbers, negative ones included, are written as they are.
+    text = frame.select_dtypes(include="object").columns
+    frame = frame.assign(**{c: frame[c].map(spreadsheet_safe) for c in text})
     buffer = io.StringIO()
     frame.to_csv(buffer, index=False, quoting=csv.QUOTE_MINIMAL, float_format="%.6g")
     response = HttpResponse(buffer.getvalue(), content_type="text/csv; charset=utf-8")
@@ -452,6 +469,7 @@ def trial_detail(request, pk):
     blind = trial.study.hides_conditions_from(request.user)
     ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
            "attachment_form": AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
+           "may_set_aside": has_role(request.user, *RUN) and _may_set_aside(request.user, trial),
            "cautions": [] if blind else trial.cautions(),
            "override": trial.override if reports._has_override(trial) else None}
     return render(request, "experiments/trial_detail.html", ctx)
@@ -464,7 +482,8 @@ def trial_score(request, pk):
     form = ScoreForm(request.POST or None, instance=trial)
     if request.method == "POST" and form.is_valid():
         try:
-            services.score_trial(user=request.user, trial=trial, values=form.outcome_values())
+            services.score_trial(user=request.user, trial=trial, values=form.outcome_values(),
+                                 reason=form.cleaned_data.get("reason", ""))
         except (services.Refused, ValidationError) as error:
             messages.error(request, "Nothing was saved: " + _error_text(error))
             return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=400)
@@ -478,6 +497,8 @@ def trial_score(request, pk):
 @role_required(*RUN)
 def trial_set_aside(request, pk, action):
     trial = _get_trial(pk)
+    if not _may_set_aside(request.user, trial):
+        raise PermissionDenied("Only the study's owner or a manager may exclude or void its trials.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
         messages.error(request, "Give a reason; nothing was changed.")
@@ -523,9 +544,10 @@ def _ledger(request):
     ledger_filter = LedgerFilter(request.GET or None, queryset=qs)
     shown = list(ledger_filter.qs[:2000])
     cohort_ids = {t.cohort_id for t in shown}
-    every = list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).only("pk", "cohort_id", "run_at",
-                                                                                  "dose_mj_cm2"))
-    return ledger_filter, reports.ledger_rows(shown, every)
+    every = list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).select_related("study")
+                 .only("pk", "cohort_id", "run_at", "dose_mj_cm2", "study__blinded", "study__unblinded_at",
+                       "study__owner"))
+    return ledger_filter, reports.ledger_rows(shown, every, request.user)
 
 
 @require_GET

@@ -167,3 +167,13 @@ def test_researcher_round_page_is_read_only(client, world, researcher):
     assert response.status_code == 200
     assert "Read only: your role does not record husbandry." in response.content.decode()
     assert "Save round" not in response.content.decode()
+
+
+def test_forbidden_page_says_why(client, researcher):
+    from tests.factories import make_tank
+
+    tank = make_tank()
+    client.force_login(researcher)
+    response = client.post(reverse("colonies:round"), {"tanks": tank.code})
+    assert response.status_code == 403
+    assert "Only technicians and managers record the round." in response.content.decode()

@@ -78,7 +78,7 @@ POST_DATA = {
                                         "observation_window_s": 600, "blinded": "on"},
     "experiments:study-unblind": lambda w: {"reason": "All scored"},
     "experiments:trial-new": _trial_post,
-    "experiments:trial-score": lambda w: {"disperse_s": "150", "aggregate_s": "200"},
+    "experiments:trial-score": lambda w: {"disperse_s": "150", "aggregate_s": "200", "reason": "Misread the timer"},
     "experiments:trial-set-aside": lambda w: {"reason": "Clump never formed"},
     "experiments:attachment-add": lambda w: {"file": SimpleUploadedFile("b.png", b"more bytes"), "kind": "photo"},
 }

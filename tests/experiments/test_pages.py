@@ -269,3 +269,120 @@ def test_back_office_lists_and_adds_protocols_but_deletes_nothing(client, superu
         assert client.get(reverse(f"admin:experiments_{model}_changelist")).status_code == 200
     assert client.get(reverse("admin:experiments_protocol_add")).status_code == 200
     assert client.get(reverse("admin:experiments_protocol_delete", args=[study.protocol_id])).status_code == 403
+
+
+# --- review fixes: blinding outside the study page, who may end or set aside, draw time, corrections, CSV --------
+def test_cohort_page_ledger_and_trial_page_hide_blinded_settings_doses_and_override_reasons(
+        client, researcher, manager, technician, bench):
+    cohort, study = bench
+    study.blinded = True
+    study.save()
+    trial = record(study, cohort, manager, at=days_ago(9), irradiance=6, duration=5,
+                   override_reason="Higher irradiance for the UV arm").trial
+    settings = trial.stimulus_text()  # "Ultraviolet light: 365 nm 6 mW/cm² × 5 s = 30 mJ/cm²"
+    for user in (technician, manager):  # managers are not the owner: the blinding rule hides conditions from them
+        client.force_login(user)
+        page = page_text(client.get(cohort.get_absolute_url()))
+        assert trial.code in page and "blinded" in page
+        assert settings not in page and "365 nm" not in page and "<strong>30</strong>" not in page
+        assert "Higher irradiance" not in page
+        trial_page = page_text(client.get(trial.get_absolute_url()))
+        assert "Higher irradiance" not in trial_page and "Irradiance 6" not in trial_page
+    ledger = page_text(client.get(reverse("experiments:ledger")))
+    assert trial.code in ledger and settings not in ledger and "Higher irradiance" not in ledger
+    [row] = csv.DictReader(io.StringIO(client.get(reverse("experiments:ledger-csv")).content.decode()))
+    assert (row["stimulus"], row["settings"], row["dose_mj_cm2"], row["cumulative_dose_mj_cm2"]) == \
+        ("blinded", f"blinded: code {trial.code}", "", "")
+    assert row["exposure_number"] == "1" and row["over_limit"] == ""
+    client.force_login(researcher)  # the owner sees everything
+    page = page_text(client.get(cohort.get_absolute_url()))
+    assert settings in page and "Higher irradiance" in page and "<strong>30</strong>" in page
+
+
+def test_only_the_drawer_or_a_manager_may_end_a_cohort(client, researcher, manager, bench):
+    from colonies.roles import RESEARCHER
+    from tests.factories import make_user
+    cohort, _ = bench
+    rival = make_user("rival", role=RESEARCHER)
+    client.force_login(rival)
+    assert "End this cohort" not in page_text(client.get(cohort.get_absolute_url()))
+    response = client.post(reverse("experiments:cohort-end", args=[cohort.pk]), {"end": Cohort.End.DIED})
+    assert response.status_code == 403
+    cohort.refresh_from_db()
+    assert cohort.is_active
+    client.force_login(manager)
+    assert client.post(reverse("experiments:cohort-end", args=[cohort.pk]), {"end": Cohort.End.DIED}).status_code == 302
+    cohort.refresh_from_db()
+    assert cohort.end == Cohort.End.DIED and cohort.ended_by == manager
+
+
+@pytest.mark.parametrize("action", ["exclude", "void"])
+def test_only_the_study_owner_or_a_manager_may_set_a_trial_aside(client, researcher, manager, bench, action):
+    from colonies.roles import RESEARCHER
+    from tests.factories import make_user
+    cohort, study = bench
+    trial = record(study, cohort, researcher, at=days_ago(9)).trial
+    url = reverse("experiments:trial-set-aside", args=[trial.pk, action])
+    client.force_login(make_user("rival", role=RESEARCHER))
+    assert "Set aside" not in page_text(client.get(trial.get_absolute_url()))
+    response = client.post(url, {"reason": "Not my study"})
+    assert response.status_code == 403
+    trial.refresh_from_db()
+    assert not trial.is_excluded and not trial.is_voided
+    client.force_login(manager)
+    assert client.post(url, {"reason": "Clump never formed"}).status_code == 302
+    trial.refresh_from_db()
+    assert trial.is_excluded or trial.is_voided
+
+
+@pytest.mark.parametrize("offset,ok", [(-120, False), (60, False), (0, True)])
+def test_draw_time_must_lie_between_booking_and_now(client, researcher, protocol, tank, offset, ok):
+    from datetime import timedelta
+
+    from django.utils import timezone
+    booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=12, needed_on=today())
+    typed = timezone.localtime(booking.booked_at + timedelta(minutes=offset)).strftime("%Y-%m-%dT%H:%M")
+    client.force_login(researcher)
+    response = client.post(reverse("experiments:booking-draw", args=[booking.pk]),
+                           {"count": 12, "drawn_at": typed}, follow=True)
+    assert Cohort.objects.exists() is ok
+    if not ok:
+        text = page_text(response)
+        assert f"Drawn at {typed.replace('T', ' ')} is not possible: allowed range" in text
+        assert "(when it was booked)" in text
+
+
+def test_correcting_a_score_needs_a_reason_kept_in_the_history(client, researcher, bench):
+    cohort, study = bench
+    trial = record(study, cohort, researcher, at=days_ago(9)).trial  # scored on entry: 120 s
+    client.force_login(researcher)
+    url = reverse("experiments:trial-score", args=[trial.pk])
+    response = client.post(url, {"disperse_s": "150", "aggregate_s": "200"})
+    assert response.status_code == 400 and "Give a reason for correcting the score." in page_text(response)
+    trial.refresh_from_db()
+    assert trial.disperse_s == 120
+    assert client.post(url, {"disperse_s": "150", "aggregate_s": "200", "reason": "Misread the timer"}).status_code == 302
+    trial.refresh_from_db()
+    assert trial.disperse_s == 150
+    assert trial.history.first().history_change_reason == "Outcome corrected: Misread the timer"
+
+
+def test_csv_exports_defuse_formula_text_and_keep_negative_numbers(client, researcher, manager, protocol, tank):
+    cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(10))
+    study = make_study(user=researcher, protocol=protocol, code="csv-study", conditions=("sham", "-2 °C step"))
+    cold = next(s["slot"] for s in study.allocation if s["condition"] == "-2 °C step")
+    trial = record(study, cohort, researcher, slot=cold, at=days_ago(9), kind=Stimulus.THERMAL, wavelength=None,
+                   irradiance=None, duration=None, temp_step_c=-2.0).trial
+    services.exclude_trial(user=researcher, trial=trial, reason="=HYPERLINK(\"http://x\")")
+    record(study, make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(10)), manager,
+           at=days_ago(9), irradiance=6, duration=5, override_reason="+dish cracked")
+    client.force_login(researcher)
+    rows = list(csv.DictReader(io.StringIO(client.get(reverse("experiments:study-csv", args=[study.code]))
+                                           .content.decode())))
+    row = next(r for r in rows if r["code"] == trial.code)
+    assert (row["condition"], row["exclusion_reason"], row["temp_step_c"]) == \
+        ("'-2 °C step", "'=HYPERLINK(\"http://x\")", "-2")
+    assert next(r for r in rows if r["code"] != trial.code)["override_reason"] == "'+dish cracked"
+    client.force_login(manager)
+    ledger = list(csv.DictReader(io.StringIO(client.get(reverse("experiments:ledger-csv")).content.decode())))
+    assert {r["override_reason"] for r in ledger} == {"", "'+dish cracked"}

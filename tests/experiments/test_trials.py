@@ -187,16 +187,17 @@ def test_scoring_corrects_with_history_and_locking_stops_it(setup, researcher):
     trial = result.trial
     assert not trial.is_scored
     services.score_trial(user=researcher, trial=trial, values={"disperse_s": 200.0, "censored": False})
-    services.score_trial(user=researcher, trial=trial, values={"disperse_s": 210.0, "censored": False})
+    services.score_trial(user=researcher, trial=trial, values={"disperse_s": 210.0, "censored": False},
+                         reason="Misread the timer")
     trial.refresh_from_db()
     assert trial.disperse_s == 210.0
     assert [h.history_change_reason for h in trial.history.order_by("history_id")][-2:] == \
-        ["Outcome scored", "Outcome corrected"]
+        ["Outcome scored", "Outcome corrected: Misread the timer"]
     study.blinded = True
     study.save()
     services.unblind(user=researcher, study=study, reason="All scored")
     with pytest.raises(services.Refused, match="locked"):
-        services.score_trial(user=researcher, trial=trial, values={"disperse_s": 5.0})
+        services.score_trial(user=researcher, trial=trial, values={"disperse_s": 5.0}, reason="late")
 
 
 def test_only_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, manager, protocol):
@@ -244,3 +245,39 @@ def test_uv_values_builder_is_inside_the_default_protocol(researcher, protocol):
                                                                                            "wavelength_nm": 365}),
                                           days_ago(1).date()) == []
     assert uv_values()["kind"] == Stimulus.UV
+
+
+def test_visible_light_below_the_uv_edge_is_refused_not_checked_against_the_light_allowance(researcher):
+    light = {"kind": Stimulus.LIGHT, "max_irradiance_mw_cm2": 50.0, "max_duration_s": 600}
+    protocol = make_protocol(allowances=(light,))
+    cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
+    study = make_study(user=researcher, protocol=protocol)
+    with pytest.raises(ValidationError) as error:
+        record(study, cohort, researcher, at=days_ago(9), kind=Stimulus.LIGHT, wavelength=365.0)
+    [message] = error.value.message_dict["wavelength_nm"]
+    assert "365 nm is ultraviolet" in message and "400 nm" in message and "Ultraviolet light" in message
+    assert not Trial.objects.exists()
+    record(study, cohort, researcher, at=days_ago(9), kind=Stimulus.LIGHT, wavelength=470.0)  # blue light passes
+
+
+def test_correcting_a_scored_trial_without_a_reason_is_refused_and_changes_nothing(setup, researcher):
+    _, cohort, study = setup
+    trial = record(study, cohort, researcher, at=days_ago(9)).trial  # scored on entry: 120 s
+    with pytest.raises(services.Refused, match="give a reason"):
+        services.score_trial(user=researcher, trial=trial, values={"disperse_s": 5.0}, reason="  ")
+    trial.refresh_from_db()
+    assert trial.disperse_s == 120 and trial.history.count() == 1
+
+
+def test_a_draw_in_the_future_is_refused(researcher, protocol):
+    from datetime import timedelta
+
+    from django.utils import timezone
+
+    from experiments.models import Cohort
+    from tests.experiments.builders import make_stocked_tank, today
+    tank = make_stocked_tank(user=researcher)
+    booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=5, needed_on=today())
+    with pytest.raises(services.Refused, match="in the future"):
+        services.draw(user=researcher, booking=booking, at=timezone.now() + timedelta(hours=1))
+    assert not Cohort.objects.exists()
