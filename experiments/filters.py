@@ -1,5 +1,6 @@
 import django_filters
 from django import forms
+from django.db.models import Q
 
 from colonies.models import Tank
 
@@ -14,7 +15,7 @@ class LedgerFilter(django_filters.FilterSet):
                                          widget=forms.NumberInput(attrs={"min": 1}))
     tank = django_filters.ModelChoiceFilter(field_name="cohort__origin_tank", queryset=Tank.objects.all(),
                                             label="Origin tank")
-    kind = django_filters.ChoiceFilter(choices=Stimulus.choices, label="Stimulus")
+    kind = django_filters.ChoiceFilter(choices=Stimulus.choices, label="Stimulus", method="filter_kind")
     start = django_filters.DateFilter(field_name="run_at", lookup_expr="date__gte", label="From",
                                       widget=forms.DateInput(attrs={"type": "date"}))
     end = django_filters.DateFilter(field_name="run_at", lookup_expr="date__lte", label="To",
@@ -27,6 +28,17 @@ class LedgerFilter(django_filters.FilterSet):
     class Meta:
         model = Trial
         fields = ["protocol", "cohort", "tank", "kind", "start", "end"]
+
+    def filter_kind(self, queryset, name, value):
+        """By stimulus, but never matching trials whose condition is hidden from this user: a filter
+        that picked them out would reveal the condition of a blinded study."""
+        if not value:
+            return queryset
+        user = getattr(self.request, "user", None)
+        visible = Q(study__blinded=False) | Q(study__unblinded_at__isnull=False)
+        if user is not None:
+            visible |= Q(study__owner_id=user.pk)
+        return queryset.filter(visible, kind=value)
 
     def filter_overridden(self, queryset, name, value):
         return queryset.filter(override__isnull=False) if value else queryset

@@ -541,7 +541,7 @@ def attachment(request, pk):
 # ---------------------------------------------------------------------------------------------
 def _ledger(request):
     qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "run_at")
-    ledger_filter = LedgerFilter(request.GET or None, queryset=qs)
+    ledger_filter = LedgerFilter(request.GET or None, queryset=qs, request=request)
     shown = list(ledger_filter.qs[:2000])
     cohort_ids = {t.cohort_id for t in shown}
     every = list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).select_related("study")

@@ -299,6 +299,21 @@ def test_cohort_page_ledger_and_trial_page_hide_blinded_settings_doses_and_overr
     assert settings in page and "Higher irradiance" in page and "<strong>30</strong>" in page
 
 
+def test_ledger_stimulus_filter_does_not_pick_out_blinded_trials(client, manager, bench):
+    cohort, study = bench
+    study.blinded = True
+    study.save()
+    trial = record(study, cohort, manager, at=days_ago(9)).trial  # an ultraviolet exposure
+    client.force_login(manager)
+    everything = client.get(reverse("experiments:ledger"))
+    assert [r["trial"] for r in everything.context["rows"]] == [trial]  # the exposure is in the ledger...
+    by_kind = client.get(reverse("experiments:ledger"), {"kind": trial.kind})
+    assert by_kind.context["rows"] == []  # ...but filtering by its stimulus would reveal the condition
+    services.unblind(user=study.owner, study=study, reason="analysis done")
+    by_kind = client.get(reverse("experiments:ledger"), {"kind": trial.kind})
+    assert [r["trial"] for r in by_kind.context["rows"]] == [trial]
+
+
 def test_only_the_drawer_or_a_manager_may_end_a_cohort(client, researcher, manager, bench):
     from colonies.roles import RESEARCHER
     from tests.factories import make_user
