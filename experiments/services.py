@@ -453,13 +453,19 @@ def _open_deviation(override: Override, breaches: list[limits.Breach], now: date
             severity = Deviation.Severity.MAJOR
         if b.limit == "rest" and b.value is not None and b.allowed and b.value < 0.5 * b.allowed:
             severity = Deviation.Severity.MAJOR
-    summary = f"Protocol {override.protocol.reference} limit overridden for cohort {cohort.label}: " + \
-              "; ".join(b.message for b in breaches)
+    details = [b.message for b in breaches]
+    reason = override.reason
+    study = override.trial.study
+    if study.is_blind:
+        # Deviations are read by every role; values such as a dose would reveal the blinded condition.
+        details = [f"{b.limit} (values hidden while study {study.code} is blinded)" for b in breaches]
+        reason = f"hidden while study {study.code} is blinded; see the trial after unblinding"
+    summary = f"Protocol {override.protocol.reference} limit overridden for cohort {cohort.label}: " + "; ".join(details)
     finding = Finding(
         tank_id=cohort.origin_tank_id, rule=Deviation.Rule.PROTOCOL_LIMIT, severity=severity, summary=summary,
         evidence={"ref": f"trial:{override.trial_id}", "trial": override.trial_id, "override": override.pk,
                   "protocol": override.protocol.reference, "limits": [b.limit for b in breaches],
-                  "breaches": [b.message for b in breaches], "reason": override.reason,
+                  "breaches": details, "reason": reason,
                   "manager": user.get_username(), "at": timezone.localtime(now).strftime("%Y-%m-%d %H:%M")},
         at=now, subject=cohort.subject,
     )

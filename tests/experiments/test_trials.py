@@ -147,6 +147,17 @@ def test_a_managers_override_saves_the_trial_and_opens_a_deviation(setup, resear
     assert protocol.reference in deviation.summary
 
 
+def test_override_deviation_of_a_blinded_study_names_the_limit_but_not_the_values(researcher, manager, protocol):
+    cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
+    study = make_study(user=researcher, protocol=protocol, replicates=3, blinded=True)
+    record(study, cohort, researcher, at=days_ago(9))
+    record(study, cohort, manager, at=days_ago(8.9), override_reason="UV arm needed a repeat at 30 mJ/cm²")
+    deviation = Deviation.objects.get()
+    assert "rest" in deviation.summary and "values hidden while study" in deviation.summary
+    assert "30 mJ" not in deviation.summary and "30 mJ" not in str(deviation.evidence)
+    assert deviation.evidence[0]["reason"].startswith("hidden while study")
+
+
 def test_a_second_override_on_the_same_cohort_adds_evidence_to_the_open_deviation(researcher, manager, protocol):
     cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
     study = make_study(user=researcher, protocol=protocol, replicates=3)
