@@ -106,3 +106,53 @@ def label_for(key: str):
 
 
 TARGET_CHOICES = parameters.CHOICES + [(d.key, f"{d.label_with_unit} (derived)") for d in DERIVED]
+
+
+@dataclass(frozen=True)
+class RawEquivalent:
+    """A target on a derived value, restated for one raw reading under the tank's latest conditions.
+
+    Lets the entry page flag a typed DO (mg/L) or total ammonia against a % saturation or NH3
+    target without a second copy of the chemistry in JavaScript. Only a live hint: the saved
+    check is flagged on the derived value itself.
+    """
+
+    low: float | None
+    high: float | None
+    text: str
+
+
+def raw_equivalents(targets: dict, last: Readings, habitat: str) -> dict[str, RawEquivalent]:
+    out: dict[str, RawEquivalent] = {}
+    temp = last.get("temp_c")
+    do_target = targets.get("do_pct_sat")
+    if do_target is not None and temp is not None:
+        salinity = (last.get("salinity") or 0.0) if habitat == parameters.MARINE else 0.0
+        try:
+            saturated = chemistry.oxygen_solubility_mg_l(temp, salinity)
+        except ValueError:
+            saturated = None
+        if saturated is not None:
+            low = None if do_target.low is None else do_target.low / 100 * saturated
+            high = None if do_target.high is None else do_target.high / 100 * saturated
+            out["do_mg_l"] = RawEquivalent(low, high, _equivalent_text(low, high, "mg/L") +
+                                           f" (= {do_target.text('% sat.')} at {temp:.1f} °C)")
+    nh3_target = targets.get("nh3_mg_l")
+    ph = last.get("ph")
+    if nh3_target is not None and temp is not None and ph is not None:
+        try:
+            fraction = chemistry.unionized_ammonia_fraction(ph, temp)
+        except ValueError:
+            fraction = 0.0
+        if fraction > 0:
+            low = None if nh3_target.low is None else nh3_target.low / fraction
+            high = None if nh3_target.high is None else nh3_target.high / fraction
+            out["tan_mg_l"] = RawEquivalent(low, high, _equivalent_text(low, high, "mg/L") +
+                                            f" (= NH3 {nh3_target.text('mg/L')} at pH {ph:.2f}, {temp:.1f} °C)")
+    return out
+
+
+def _equivalent_text(low: float | None, high: float | None, unit: str) -> str:
+    if low is not None and high is not None:
+        return f"{low:.3g}–{high:.3g} {unit}"
+    return f"≥ {low:.3g} {unit}" if low is not None else f"≤ {high:.3g} {unit}"

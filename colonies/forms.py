@@ -3,7 +3,7 @@ from datetime import timedelta
 from django import forms
 from django.utils import timezone
 
-from . import parameters
+from . import derived, parameters
 from .flags import out_of_target
 from .models import Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
 
@@ -40,9 +40,13 @@ class CheckEntryForm(forms.Form):
         self.tank = tank
         self.params = tank.relevant_parameters()
         targets = tank.care_targets()
+        # A derived target (DO % saturation, NH3) becomes a live hint on the raw input, computed from
+        # the tank's latest readings when the page has them (the round's annotated tanks).
+        last = {p.key: getattr(tank, f"last_{p.key}", None) for p in self.params}
+        equivalents = derived.raw_equivalents(targets, last, tank.species.habitat)
         reading_fields = {}
         for p in self.params:
-            target = targets.get(p.key)
+            target = targets.get(p.key) or equivalents.get(p.key)
             attrs = {"inputmode": "decimal", "step": "any", "data-param": p.key, "class": "reading",
                      "aria-label": f"{tank.code} {p.label_with_unit}", "autocomplete": "off",
                      "data-min": f"{p.minimum:g}", "data-max": f"{p.maximum:g}"}
@@ -51,7 +55,7 @@ class CheckEntryForm(forms.Form):
                     attrs["data-low"] = f"{target.low:g}"
                 if target.high is not None:
                     attrs["data-high"] = f"{target.high:g}"
-                attrs["data-target"] = target.text(p.unit)
+                attrs["data-target"] = target.text if isinstance(target, derived.RawEquivalent) else target.text(p.unit)
             reading_fields[p.key] = forms.CharField(
                 required=False, label=p.label_with_unit, widget=forms.TextInput(attrs=attrs)
             )

@@ -197,7 +197,7 @@ def _tank_page_ctx(request, tank, **forms):
         "feedings": tank.feeding_set.current().select_related("recorded_by")[:10],
         "water_changes": tank.waterchange_set.current().select_related("recorded_by")[:10],
         "censuses": tank.census_set.current().select_related("recorded_by")[:10],
-        "check_form": forms.get("check_form") or CheckEntryForm(tank=tank, prefix="check"),
+        "check_form": forms.get("check_form") or CheckEntryForm(tank=tank_with, prefix="check"),
         "feeding_form": forms.get("feeding_form") or FeedingForm(prefix="feeding"),
         "water_form": forms.get("water_form") or WaterChangeForm(prefix="water"),
         "census_form": forms.get("census_form") or CensusForm(prefix="census"),

@@ -41,3 +41,45 @@ def test_missing_or_out_of_range_inputs_give_none_not_a_guess():
     assert values["nh3_mg_l"] is None
     hot = derived.derive({"do_mg_l": 5.0, "temp_c": 45.0}, "freshwater")  # Benson & Krause fitted to 40 °C
     assert hot["do_pct_sat"] is None
+
+
+def test_raw_equivalent_of_a_saturation_target_uses_benson_krause():
+    from colonies.flags import Target
+
+    # 30 % of air saturation at 20 °C, fresh water: 0.30 x 9.092 mg/L = 2.728 mg/L (Benson & Krause 1984, USGS table)
+    eq = derived.raw_equivalents({"do_pct_sat": Target(30.0, None)}, {"temp_c": 20.0}, "freshwater")["do_mg_l"]
+    assert eq.low == pytest.approx(0.30 * 9.092, abs=0.002)
+    assert eq.high is None and "30 % sat." in eq.text and "20.0 °C" in eq.text
+
+
+def test_raw_equivalent_of_an_nh3_target_divides_by_the_emerson_fraction():
+    from colonies.flags import Target
+
+    # Emerson et al. 1975 (REFERENCES.md check): 5.366 % NH3 at 25 °C, pH 8; NH3 <= 0.02 -> TAN <= 0.3727
+    eq = derived.raw_equivalents({"nh3_mg_l": Target(None, 0.02)}, {"temp_c": 25.0, "ph": 8.0}, "freshwater")["tan_mg_l"]
+    assert eq.high == pytest.approx(0.02 / 0.05366, rel=1e-3)
+
+
+def test_no_equivalent_without_the_conditions_it_depends_on():
+    from colonies.flags import Target
+
+    assert derived.raw_equivalents({"do_pct_sat": Target(30.0, None)}, {}, "freshwater") == {}
+    assert derived.raw_equivalents({"nh3_mg_l": Target(None, 0.02)}, {"temp_c": 20.0}, "freshwater") == {}
+
+
+@pytest.mark.django_db
+def test_round_flags_dissolved_oxygen_live_against_a_saturation_target(client, technician):
+    from datetime import timedelta
+
+    from django.urls import reverse
+    from django.utils import timezone
+
+    from tests.factories import make_check, make_room, make_species, make_tank
+
+    room = make_room()
+    tank = make_tank(room=room, species=make_species(targets={"do_pct_sat": (30.0, None)}))
+    make_check(tank, user=technician, temp_c=20.0, observed_at=timezone.now() - timedelta(hours=20))
+    client.force_login(technician)
+    html = client.get(reverse("colonies:round-room", args=[room.code])).content.decode()
+    do_input = html[html.index(f'name="{tank.code}-do_mg_l"') - 400:html.index(f'name="{tank.code}-do_mg_l"') + 400]
+    assert 'data-low="2.7276' in do_input or 'data-low="2.727' in do_input
