@@ -136,7 +136,7 @@ def raw_equivalents(targets: dict, last: Readings, habitat: str) -> dict[str, Ra
             low = None if do_target.low is None else do_target.low / 100 * saturated
             high = None if do_target.high is None else do_target.high / 100 * saturated
             out["do_mg_l"] = RawEquivalent(low, high, _equivalent_text(low, high, "mg/L") +
-                                           f" (= {do_target.text('% sat.')} at {temp:.1f} °C)")
+                                           f" ({_limits(do_target)} % air sat. at {temp:.1f} °C)")
     nh3_target = targets.get("nh3_mg_l")
     ph = last.get("ph")
     if nh3_target is not None and temp is not None and ph is not None:
@@ -148,11 +148,18 @@ def raw_equivalents(targets: dict, last: Readings, habitat: str) -> dict[str, Ra
             low = None if nh3_target.low is None else nh3_target.low / fraction
             high = None if nh3_target.high is None else nh3_target.high / fraction
             out["tan_mg_l"] = RawEquivalent(low, high, _equivalent_text(low, high, "mg/L") +
-                                            f" (= NH3 {nh3_target.text('mg/L')} at pH {ph:.2f}, {temp:.1f} °C)")
+                                            f" (NH3 {_limits(nh3_target)} mg/L at pH {ph:.2f}, {temp:.1f} °C)")
     return out
 
 
 def _equivalent_text(low: float | None, high: float | None, unit: str) -> str:
+    """Limits without a comparison sign: the page says "▲ above …" or "▼ below …"."""
     if low is not None and high is not None:
         return f"{low:.3g}–{high:.3g} {unit}"
-    return f"≥ {low:.3g} {unit}" if low is not None else f"≤ {high:.3g} {unit}"
+    return f"{low if low is not None else high:.3g} {unit}"
+
+
+def _limits(target) -> str:
+    if target.low is not None and target.high is not None:
+        return f"{target.low:g}–{target.high:g}"
+    return f"{target.low if target.low is not None else target.high:g}"

@@ -22,6 +22,15 @@ class Target:
         return "no target"
 
 
+def limit_text(target: "Target", unit: str = "") -> str:
+    """The target's limits without a comparison sign, for "▲ above …" / "▼ below …"."""
+    suffix = f" {unit}" if unit else ""
+    if target.low is not None and target.high is not None:
+        return f"{target.low:g}–{target.high:g}{suffix}"
+    limit = target.low if target.low is not None else target.high
+    return f"{limit:g}{suffix}" if limit is not None else "no target"
+
+
 def out_of_target(value: float | None, target: Target | None) -> str | None:
     """Return "low" or "high" when value lies outside the target, else None (missing value or no target)."""
     if value is None or target is None:

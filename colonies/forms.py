@@ -4,7 +4,7 @@ from django import forms
 from django.utils import timezone
 
 from . import derived, parameters
-from .flags import out_of_target
+from .flags import limit_text, out_of_target
 from .models import Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
 
 
@@ -55,7 +55,7 @@ class CheckEntryForm(forms.Form):
                     attrs["data-low"] = f"{target.low:g}"
                 if target.high is not None:
                     attrs["data-high"] = f"{target.high:g}"
-                attrs["data-target"] = target.text if isinstance(target, derived.RawEquivalent) else target.text(p.unit)
+                attrs["data-target"] = target.text if isinstance(target, derived.RawEquivalent) else limit_text(target, p.unit)
             reading_fields[p.key] = forms.CharField(
                 required=False, label=p.label_with_unit, widget=forms.TextInput(attrs=attrs)
             )

@@ -20,7 +20,7 @@ from . import derived, health_views, parameters, services
 from . import labels as labels_module
 from .exports import spreadsheet_safe
 from .filters import CheckFilter, TankFilter
-from .flags import describe, out_of_target
+from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
 from .history import record_history
@@ -141,7 +141,8 @@ def _round_rows(forms):
             target = form.targets.get(p.key)
             last_side = out_of_target(last, target)
             cells.append({"field": form[p.key], "param": p, "last": p.format(last), "last_side": last_side,
-                          "target": target.text(p.unit) if target else "", "side": live_flags.get(p.key)})
+                          "target": limit_text(target, p.unit) if target else "",
+                          "target_full": target.text(p.unit) if target else "", "side": live_flags.get(p.key)})
         last = {p.key: getattr(tank, f"last_{p.key}", None) for p in form.params}
         derived_last = []
         for d, value in zip(derived.for_habitat(tank.species.habitat), derived.derive(last, tank.species.habitat).values()):

@@ -49,7 +49,7 @@ def test_raw_equivalent_of_a_saturation_target_uses_benson_krause():
     # 30 % of air saturation at 20 °C, fresh water: 0.30 x 9.092 mg/L = 2.728 mg/L (Benson & Krause 1984, USGS table)
     eq = derived.raw_equivalents({"do_pct_sat": Target(30.0, None)}, {"temp_c": 20.0}, "freshwater")["do_mg_l"]
     assert eq.low == pytest.approx(0.30 * 9.092, abs=0.002)
-    assert eq.high is None and "30 % sat." in eq.text and "20.0 °C" in eq.text
+    assert eq.high is None and "30 % air sat." in eq.text and "20.0 °C" in eq.text
 
 
 def test_raw_equivalent_of_an_nh3_target_divides_by_the_emerson_fraction():
