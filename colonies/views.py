@@ -180,7 +180,7 @@ def _tank_page_ctx(request, tank, **forms):
     checks = list(tank.check_set.current().select_related("recorded_by")[:30])
     params = tank.relevant_parameters()
     columns = params + derived.for_habitat(tank.species.habitat)
-    targets = tank.care_targets()
+    targets = tank_with.care_targets()  # prefetched by for_round(): no extra queries
     rows = []
     for c in checks:
         c.tank = tank
