@@ -10,6 +10,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 from .exports import spreadsheet_safe
 from .filters import DeviationFilter
 from .models import Deviation
+from .idempotency import once_per_submission
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
 
 
@@ -95,6 +96,7 @@ def detail(request, pk):
 
 @require_POST
 @role_required(TECHNICIAN)
+@once_per_submission
 def acknowledge(request, pk):
     dev = get_object_or_404(Deviation, pk=pk)
     try:
@@ -108,6 +110,7 @@ def acknowledge(request, pk):
 
 @require_http_methods(["POST"])
 @role_required(TECHNICIAN)
+@once_per_submission
 def close(request, pk):
     dev = get_object_or_404(_register_qs(), pk=pk)
     form = CloseForm(request.POST)

@@ -23,6 +23,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 from . import charts, parameters, population, population_hooks, services
 from .models import (CareTarget, Census, Check, Deviation, Feeding, Species, Split, SplitPart, Tank, TankTarget,
                      WaterChange, tank_code_validator)
+from .idempotency import once_per_submission
 from .roles import RESEARCHER, TECHNICIAN, role_required
 
 READ_ROLES = (TECHNICIAN, RESEARCHER)
@@ -797,6 +798,7 @@ def split_forms(tank: Tank, data=None, latest: float | None = None):
 
 @require_POST
 @role_required(TECHNICIAN)
+@once_per_submission
 def tank_split(request, code):
     tank = get_object_or_404(Tank.objects.select_related("room", "species"), code=code)
     form, parts = split_forms(tank, request.POST)
@@ -828,6 +830,7 @@ def tank_split(request, code):
 
 @require_http_methods(["GET", "POST"])
 @role_required(TECHNICIAN)
+@once_per_submission
 def split_void(request, pk):
     split = get_object_or_404(Split.objects.select_related("source"), pk=pk)
     if split.is_voided:

@@ -726,3 +726,36 @@ class SplitPart(models.Model):
 
     def get_absolute_url(self):
         return self.destination.get_absolute_url()
+
+
+# ---------------------------------------------------------------------------------------------
+# Submissions: one-time keys that make a form's POST idempotent (colonies/idempotency.py)
+# ---------------------------------------------------------------------------------------------
+class Submission(models.Model):
+    """A form submission that was saved, so that a resubmit of the same key does nothing.
+
+    Every form that creates records carries a one-time key (`{% submission_key %}`); the
+    `@once_per_submission` view decorator claims the key before the view runs and remembers where
+    the saved form led. Not a lab record: it has no history and is not shown in the admin.
+    """
+
+    key = models.UUIDField(help_text="The one-time key the form was rendered with.")
+    user = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+")
+    path = models.CharField(max_length=300, help_text="The URL the form was posted to.")
+    created_at = models.DateTimeField(auto_now_add=True)
+    result_url = models.CharField(max_length=500, blank=True,
+                                  help_text="Where the saved submission redirected; a resubmit is sent there.")
+
+    class Meta:
+        ordering = ["-created_at"]
+        get_latest_by = "created_at"
+        constraints = [
+            # Serialises two identical submits: the second insert waits for the first transaction and fails.
+            models.UniqueConstraint(fields=["user", "key"], name="submission_one_per_user_key"),
+        ]
+
+    def __str__(self):
+        return f"Submission {self.key} to {self.path}"
+
+    def get_absolute_url(self):
+        return self.result_url

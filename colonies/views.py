@@ -25,6 +25,7 @@ from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, 
                     SpeciesForm, WaterChangeForm)
 from .history import record_history
 from .models import Census, Check, Deviation, Feeding, Room, Species, Tank, WaterChange
+from .idempotency import once_per_submission
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, can_record_husbandry, role_required
 
 READ_ROLES = (TECHNICIAN, RESEARCHER)
@@ -92,6 +93,7 @@ def _posted_codes(post) -> set[str]:
 
 @require_http_methods(["GET", "POST"])
 @role_required(*READ_ROLES)
+@once_per_submission
 def round_view(request, room_code=None):
     room = get_object_or_404(Room, code=room_code) if room_code else None
     tanks = list(Tank.objects.for_round().in_room(room))
@@ -220,6 +222,7 @@ def tank_detail(request, code):
 
 @require_POST
 @role_required(TECHNICIAN)
+@once_per_submission
 def tank_add(request, code, kind):
     tank = _get_tank(code)
     if tank.status == Tank.Status.RETIRED:
@@ -321,6 +324,7 @@ def _diffs(history, params):
 
 @require_http_methods(["GET", "POST"])
 @role_required(TECHNICIAN)
+@once_per_submission
 def check_edit(request, pk):
     check = get_object_or_404(Check.objects.select_related("tank__species"), pk=pk)
     if check.is_voided:
@@ -342,6 +346,7 @@ def check_edit(request, pk):
 
 @require_http_methods(["GET", "POST"])
 @role_required(TECHNICIAN)
+@once_per_submission
 def record_void(request, kind, pk):
     model = VOIDABLE.get(kind)
     if model is None:
@@ -381,6 +386,7 @@ def species_detail(request, pk):
 
 @require_http_methods(["GET", "POST"])
 @role_required(MANAGER)
+@once_per_submission
 def species_edit(request, pk):
     species = get_object_or_404(Species, pk=pk)
     form = SpeciesForm(request.POST or None, instance=species)

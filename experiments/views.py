@@ -20,6 +20,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from colonies.exports import spreadsheet_safe
 from colonies.models import Room
+from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
 from . import charts, reports, services
@@ -112,6 +113,7 @@ def protocol_detail(request, pk):
 # ---------------------------------------------------------------------------------------------
 @require_http_methods(["GET", "POST"])
 @role_required(*RUN)
+@once_per_submission
 def booking_new(request):
     data = request.POST.copy() if request.method == "POST" else None
     if data is not None and data.get("pick"):
@@ -151,6 +153,7 @@ def booking_detail(request, pk):
 
 @require_POST
 @role_required(*RUN)
+@once_per_submission
 def booking_cancel(request, pk):
     booking = _get_booking(pk)
     if not _may_change_booking(request.user, booking):
@@ -169,6 +172,7 @@ def booking_cancel(request, pk):
 
 @require_POST
 @role_required(*RUN)
+@once_per_submission
 def booking_draw(request, pk):
     booking = _get_booking(pk)
     if not _may_change_booking(request.user, booking):
@@ -250,6 +254,7 @@ def cohort_detail(request, pk):
 
 @require_POST
 @role_required(*RUN)
+@once_per_submission
 def cohort_end(request, pk):
     cohort = _get_cohort(pk)
     if not _may_end_cohort(request.user, cohort):
@@ -273,6 +278,7 @@ def cohort_end(request, pk):
 # ---------------------------------------------------------------------------------------------
 @require_http_methods(["GET", "POST"])
 @role_required(*RUN)
+@once_per_submission
 def study_new(request):
     form = StudyForm(request.POST or None)
     if request.method == "POST" and form.is_valid():
@@ -312,6 +318,7 @@ def study_detail(request, code):
 
 @require_POST
 @role_required(*RUN)
+@once_per_submission
 def study_unblind(request, code):
     study = _get_study(code)
     form = ReasonForm(request.POST)
@@ -424,6 +431,7 @@ def _trial_page(request, study, form, status=200, refusal=None):
 
 @require_http_methods(["GET", "POST"])
 @role_required(*RUN)
+@once_per_submission
 def trial_new(request, code):
     study = _get_study(code)
     slots = _open_slots(study)
@@ -477,6 +485,7 @@ def trial_detail(request, pk):
 
 @require_http_methods(["GET", "POST"])
 @role_required(*RUN)
+@once_per_submission
 def trial_score(request, pk):
     trial = _get_trial(pk)
     form = ScoreForm(request.POST or None, instance=trial)
@@ -495,6 +504,7 @@ def trial_score(request, pk):
 
 @require_POST
 @role_required(*RUN)
+@once_per_submission
 def trial_set_aside(request, pk, action):
     trial = _get_trial(pk)
     if not _may_set_aside(request.user, trial):
@@ -516,6 +526,7 @@ def trial_set_aside(request, pk, action):
 
 @require_POST
 @role_required(*RUN)
+@once_per_submission
 def attachment_add(request, pk):
     trial = _get_trial(pk)
     form = AttachmentForm(request.POST, request.FILES)
