@@ -21,6 +21,7 @@ from django.http import HttpResponse, HttpResponseBadRequest
 from django.shortcuts import redirect
 
 SUBMISSION_FIELD = "submission_key"
+PATH_LENGTH = 300  # Submission.path max_length
 ALREADY_SAVED = "Already saved: this form was submitted before, so nothing new was recorded."
 
 
@@ -34,7 +35,7 @@ def _replay(request, key: uuid.UUID):
     from .models import Submission
 
     done = Submission.objects.filter(user=request.user, key=key).first()
-    if done is None or done.path != request.path:
+    if done is None or done.path != request.path[:PATH_LENGTH]:
         return HttpResponse(f"Submission key: {key} was already used for another form; allowed: the key this "
                             "form was rendered with. Reload the page and submit again. Nothing was saved.",
                             status=409, content_type="text/plain; charset=utf-8")
@@ -63,7 +64,7 @@ def once_per_submission(view):
         with transaction.atomic():
             try:
                 with transaction.atomic():  # a savepoint: a failed claim leaves the transaction usable
-                    claim = Submission.objects.create(user=request.user, key=key, path=request.path[:300])
+                    claim = Submission.objects.create(user=request.user, key=key, path=request.path[:PATH_LENGTH])
             except IntegrityError:
                 return _replay(request, key)
             errors_before = _error_count(request)
