@@ -3,6 +3,8 @@
 Bookings, cohorts, studies and trials are made in the app's own screens, which apply the protocol
 and welfare rules; here they can only be read. Nothing can be deleted.
 """
+import dataclasses
+
 from django.contrib import admin
 from django.db.models import BooleanField, Case, Value, When
 from simple_history.template_utils import HistoricalRecordContextHelper
@@ -15,7 +17,8 @@ from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Over
 # the condition, and the stimulus with its settings and the values derived from them.
 BLINDED_TRIAL_FIELDS = frozenset({"condition", "replicate", "kind", *SETTING_FIELDS, "substance", "mechanical_note",
                                   "dose_mj_cm2", "field_v_cm", "pulse_on_s", "train_s"})
-BLINDED_STUDY_FIELDS = frozenset({"allocation"})  # slot -> condition: the allocation key itself
+# The allocation (slot -> condition) is the key itself; the labels are hidden too, as on the study page.
+BLINDED_STUDY_FIELDS = frozenset({"allocation", "conditions"})
 BLINDED_OVERRIDE_FIELDS = frozenset({"reason", "breaches"})  # they name the stimulus settings
 BLINDED = "blinded"
 
@@ -95,8 +98,8 @@ class _BlindedHistoryHelper(HistoricalRecordContextHelper):
         self.hidden = hidden
 
     def context_for_delta_changes(self, delta):
-        delta.changes = [c for c in delta.changes if c.field not in self.hidden]
-        return super().context_for_delta_changes(delta)
+        kept = [c for c in delta.changes if c.field not in self.hidden]
+        return super().context_for_delta_changes(dataclasses.replace(delta, changes=kept))
 
 
 def _blindable(field: str, description: str):
