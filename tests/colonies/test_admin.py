@@ -121,8 +121,8 @@ def test_a_permission_added_by_hand_is_taken_away_by_the_next_migrate(db):
 
 @pytest.fixture
 def demo_manager(db, monkeypatch):
-    """The demo's manager, as the demo loader makes her (a few days of data are enough here)."""
-    monkeypatch.setattr(demo, "DAYS", 3)
+    """The demo's manager, as the demo loader makes her (ten days of data are enough here, as in test_demo.py)."""
+    monkeypatch.setattr(demo, "DAYS", 10)
     call_command("load_demo", verbosity=0)
     from django.contrib.auth.models import User
     manager = User.objects.get(username="morwen")
