@@ -1,11 +1,17 @@
-"""The back office: reference data pages load for a superuser, nothing can be deleted, changes need a reason."""
+"""The back office: reference data pages load, nothing can be deleted, changes need a reason and go through
+the app's service; managers (with is_staff) hold exactly the permissions declared in colonies/roles.py."""
 import pytest
 from django.contrib import admin
+from django.contrib.auth.models import Group, Permission, User
+from django.core.management import call_command
 from django.test import RequestFactory
 from django.urls import reverse
 
-from colonies.models import Census, Check, Feeding, Room, Species, Tank, WaterChange
-from tests.factories import make_check, make_room, make_tank
+from colonies import demo
+from colonies.models import CareTarget, Census, Check, Feeding, Room, Species, Tank, WaterChange
+from colonies.roles import ALL_ROLES, MANAGER, RESEARCHER, ROLE_PERMISSIONS, TECHNICIAN
+from experiments.models import Allowance, Protocol
+from tests.factories import make_check, make_room, make_tank, make_user
 
 REFERENCE = [Species, Room, Tank]
 RECORDS = [Check, Feeding, WaterChange, Census]
@@ -83,16 +89,6 @@ def test_back_office_change_without_reason_is_refused(client, superuser, db):
 # ---------------------------------------------------------------------------------------------
 # Roles in the back office: permissions declared in colonies/roles.py, granted by migration
 # ---------------------------------------------------------------------------------------------
-from django.contrib.auth.models import Group  # noqa: E402
-from django.core.management import call_command  # noqa: E402
-
-from colonies import demo  # noqa: E402
-from colonies.models import CareTarget  # noqa: E402
-from colonies.roles import ALL_ROLES, MANAGER, RESEARCHER, ROLE_PERMISSIONS, TECHNICIAN  # noqa: E402
-from experiments.models import Allowance, Protocol  # noqa: E402
-from tests.factories import make_user  # noqa: E402
-
-
 def _perm_names(group) -> set[str]:
     return {f"{p.content_type.app_label}.{p.codename}" for p in group.permissions.select_related("content_type")}
 
@@ -111,7 +107,6 @@ def test_no_role_may_delete_anything_and_only_managers_have_back_office_permissi
 
 def test_a_permission_added_by_hand_is_taken_away_by_the_next_migrate(db):
     group = Group.objects.get(name=TECHNICIAN)
-    from django.contrib.auth.models import Permission
     group.permissions.add(Permission.objects.get(codename="change_room"))
 
     call_command("migrate", verbosity=0)
@@ -124,7 +119,6 @@ def demo_manager(db, monkeypatch):
     """The demo's manager, as the demo loader makes her (ten days of data are enough here, as in test_demo.py)."""
     monkeypatch.setattr(demo, "DAYS", 10)
     call_command("load_demo", verbosity=0)
-    from django.contrib.auth.models import User
     manager = User.objects.get(username="morwen")
     assert manager.is_staff and not manager.is_superuser
     return manager
@@ -177,9 +171,9 @@ def test_demo_manager_opens_add_and_change_pages_and_saves_with_a_reason(client,
     assert obj.notes == "Reviewed in the back office"
     latest = obj.history.latest("history_date")
     assert (latest.history_user, latest.history_change_reason) == (demo_manager, "Annual review of the back office")
-    for url in (_admin_url(model, "delete", obj.pk),):
-        assert client.get(url).status_code == 403
-        assert client.post(url, {"post": "yes"}).status_code == 403
+    delete_url = _admin_url(model, "delete", obj.pk)
+    assert client.get(delete_url).status_code == 403
+    assert client.post(delete_url, {"post": "yes"}).status_code == 403
     assert model.objects.filter(pk=obj.pk).exists()
 
 
