@@ -1,9 +1,23 @@
-"""The back office for reference data. Nothing can be deleted here; every change asks for a reason."""
+"""The back office for reference data.
+
+Nothing can be deleted here (records, users or role groups), every change asks for a reason and is
+saved through the same service as the app's own screens, and the history can be read but never
+reverted: the history library's "revert to this version" form is refused for everyone, superusers
+included, whatever SIMPLE_HISTORY_REVERT_DISABLED says.
+"""
 from django import forms
 from django.contrib import admin
+from django.contrib.auth.admin import GroupAdmin, UserAdmin
+from django.contrib.auth.models import Group, User
+from django.core.exceptions import PermissionDenied
 from simple_history.admin import SimpleHistoryAdmin
 
+from . import services
+from .forms import CareTargetForm, TankTargetForm
 from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget, WaterChange
+
+NO_REVERT = ("Past versions cannot be restored or edited: a correction is a new version with its own reason, "
+             "made in the app or on the record's change page.")
 
 
 class ReasonAdminForm(forms.ModelForm):
@@ -22,27 +36,46 @@ class NoDeleteMixin:
         return actions
 
 
-class ReasonAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+class HistoryAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+    """Base of every back-office page with a history: read the versions, never revert to one."""
+
+    object_history_list_template = "admin/vermilog_history_list.html"
+
+    def revert_disabled(self, request, obj=None):
+        return True
+
+    def history_form_view(self, request, object_id, version_id, extra_context=None):
+        # The library's form saves a past version as the current one on POST, for anyone who may
+        # view the model, with no reason and none of the app's checks; so it is refused for all.
+        raise PermissionDenied(NO_REVERT)
+
+
+class ReasonAdmin(HistoryAdmin):
+    """Reference data edited here: a reason on every save, saved by services.save_reference."""
+
     form = ReasonAdminForm
 
     def save_model(self, request, obj, form, change):
-        obj._change_reason = form.cleaned_data["change_reason"]
-        super().save_model(request, obj, form, change)
+        """Nothing yet: the row is saved with its inline rows in save_related, in one service call."""
 
-    def save_formset(self, request, form, formset, change):
-        for instance in formset.save(commit=False):
-            instance._change_reason = form.cleaned_data["change_reason"]
-            instance.save()
-        formset.save_m2m()
+    def save_related(self, request, form, formsets, change):
+        rows = [row for formset in formsets for row in formset.save(commit=False)]
+        services.save_reference(user=request.user, obj=form.instance, rows=rows,
+                                reason=form.cleaned_data["change_reason"])
+        form.save_m2m()
+        for formset in formsets:
+            formset.save_m2m()
 
 
 class CareTargetInline(NoDeleteMixin, admin.TabularInline):
     model = CareTarget
+    form = CareTargetForm  # the app's form: physical bounds and low <= high, errors naming the value
     extra = 0
 
 
 class TankTargetInline(NoDeleteMixin, admin.TabularInline):
     model = TankTarget
+    form = TankTargetForm
     extra = 0
 
 
@@ -69,7 +102,7 @@ class TankAdmin(ReasonAdmin):
     inlines = [TankTargetInline]
 
 
-class RecordAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+class RecordAdmin(HistoryAdmin):
     """Husbandry records are read here; they are entered and corrected in the app's own screens."""
 
     list_filter = ["tank__room", ("voided_at", admin.EmptyFieldListFilter)]
@@ -116,7 +149,7 @@ class SplitPartInline(NoDeleteMixin, admin.TabularInline):
 
 
 @admin.register(Split)
-class SplitAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+class SplitAdmin(HistoryAdmin):
     list_display = ["source", "split_at", "source_before", "stayed", "recorded_by", "voided_at"]
     list_filter = ["source__room", ("voided_at", admin.EmptyFieldListFilter)]
     search_fields = ["source__code", "note"]
@@ -131,7 +164,7 @@ class SplitAdmin(NoDeleteMixin, SimpleHistoryAdmin):
 
 
 @admin.register(Deviation)
-class DeviationAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+class DeviationAdmin(HistoryAdmin):
     """Read-only here: deviations are opened by rules and closed in the app, with a corrective action."""
 
     list_display = ["tank", "rule", "parameter", "severity", "status", "opened_at", "closed_at"]
@@ -144,3 +177,20 @@ class DeviationAdmin(NoDeleteMixin, SimpleHistoryAdmin):
 
     def has_add_permission(self, request):
         return False
+
+
+# Users and role groups are deactivated or renamed, never deleted: a deleted user would blank the
+# authorship of every history row they made, a deleted group would silently take the role from its
+# members. colonies/integrity.py refuses the delete on every other route too.
+admin.site.unregister(User)
+admin.site.unregister(Group)
+
+
+@admin.register(User)
+class AccountAdmin(NoDeleteMixin, UserAdmin):
+    pass
+
+
+@admin.register(Group)
+class RoleGroupAdmin(NoDeleteMixin, GroupAdmin):
+    pass

@@ -1,6 +1,28 @@
 from django.apps import AppConfig
+from django.db.models.signals import post_migrate
+
+
+def _sync_roles(sender, **kwargs):
+    """After every migrate (and test flush): role groups carry exactly roles.ROLE_PERMISSIONS."""
+    from django.apps import apps
+    from django.contrib.auth.management import create_permissions
+    from django.contrib.auth.models import Group, Permission
+
+    from .roles import sync_role_groups
+
+    # post_migrate reaches this app before experiments, whose permissions would not exist yet on a
+    # new database; creating them now is what the later signal would do (it skips existing ones).
+    for app_config in apps.get_app_configs():
+        create_permissions(app_config, verbosity=0)
+    sync_role_groups(Group, Permission)
 
 
 class ColoniesConfig(AppConfig):
     name = "colonies"
     verbose_name = "Colonies and husbandry"
+
+    def ready(self):
+        from . import integrity
+
+        integrity.connect()
+        post_migrate.connect(_sync_roles, sender=self, dispatch_uid="vermilog-sync-roles")

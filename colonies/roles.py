@@ -71,3 +71,44 @@ def roles_context(request):
         "can_read": can_read_husbandry(user),
         "is_manager": MANAGER in mine,
     }
+
+
+# ---------------------------------------------------------------------------------------------
+# Back-office permissions of each role: the one place they are declared. A data migration grants
+# them and every `migrate` brings the groups back to exactly this (ColoniesConfig.ready), so a
+# permission added to a group by hand does not survive. Only managers use the back office (their
+# accounts also need is_staff); no role may delete anything, and there the admin refuses it anyway.
+# ---------------------------------------------------------------------------------------------
+def _perms(app_label: str, actions: str, *models: str) -> list[str]:
+    return [f"{app_label}.{action}_{model}" for model in models for action in actions.split()]
+
+
+ROLE_PERMISSIONS: dict[str, list[str]] = {
+    TECHNICIAN: [],
+    RESEARCHER: [],
+    MANAGER: [
+        # reference data: rooms, tanks (and their own targets), species care profiles, protocols
+        *_perms("colonies", "view add change", "room", "tank", "tanktarget", "species", "caretarget"),
+        *_perms("experiments", "view add change", "protocol", "allowance"),
+        # records: read here, entered and corrected in the app
+        *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "split", "splitpart", "deviation"),
+        *_perms("experiments", "view", "booking", "cohort", "study", "trial", "override", "attachment"),
+    ],
+}
+
+
+def sync_role_groups(group_model, permission_model) -> None:
+    """Create the role groups if missing and give each exactly its declared permissions.
+
+    Takes the models as arguments so a migration can pass its historical ones.
+    """
+    for role, names in ROLE_PERMISSIONS.items():
+        group, _ = group_model.objects.get_or_create(name=role)
+        wanted = []
+        for name in names:
+            app_label, codename = name.split(".")
+            perm = permission_model.objects.filter(content_type__app_label=app_label, codename=codename).first()
+            if perm is None:
+                raise LookupError(f"Role {role}: permission {name} does not exist (a model renamed?).")
+            wanted.append(perm)
+        group.permissions.set(wanted)

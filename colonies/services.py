@@ -92,6 +92,24 @@ def _save_simple(instance, *, user, reason: str):
 
 
 @transaction.atomic
+def save_reference(*, user, obj, rows=(), reason: str):
+    """Save a reference-data row (species, room, tank, protocol) and its inline rows under one reason.
+
+    The app's care-profile page and the back office both save through here, so a change made in
+    either place records the same who and why. The caller's forms validate the values (and show
+    their errors); the database constraints back them up, and the transaction keeps it all or nothing.
+    """
+    reason = (reason or "").strip()
+    if not reason:
+        raise ValidationError({"reason": "Reason: please say why; it is kept in the history."})
+    for row in (obj, *rows):
+        row._history_user = user
+        row._change_reason = reason
+        row.save()
+    return obj
+
+
+@transaction.atomic
 def record_feeding(*, user, feeding: Feeding) -> Feeding:
     return _save_simple(feeding, user=user, reason="Feeding logged")
 

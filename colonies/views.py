@@ -8,7 +8,6 @@ import pandas as pd
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
 from django.core.paginator import Paginator
-from django.db import transaction
 from django.db.models import Count, Q
 from django.http import Http404, HttpResponse, StreamingHttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
@@ -393,13 +392,8 @@ def species_edit(request, pk):
     targets = CareTargetFormSet(request.POST or None, instance=species, prefix="targets")
     reason = ReasonForm(request.POST or None)
     if request.method == "POST" and form.is_valid() & targets.is_valid() & reason.is_valid():
-        why = reason.cleaned_data["reason"]
-        with transaction.atomic():
-            species._change_reason = why
-            form.save()
-            for target in targets.save(commit=False):
-                target._change_reason = why
-                target.save()
+        services.save_reference(user=request.user, obj=form.save(commit=False), rows=targets.save(commit=False),
+                                reason=reason.cleaned_data["reason"])
         messages.success(request, f"Care profile of {species} updated.")
         return redirect(species)
     return render(request, "colonies/species_edit.html", {"species": species, "form": form, "targets": targets,

@@ -3,12 +3,24 @@
 Bookings, cohorts, studies and trials are made in the app's own screens, which apply the protocol
 and welfare rules; here they can only be read. Nothing can be deleted.
 """
+import dataclasses
+
 from django.contrib import admin
-from simple_history.admin import SimpleHistoryAdmin
+from django.db.models import BooleanField, Case, Value, When
+from simple_history.template_utils import HistoricalRecordContextHelper
 
-from colonies.admin import NoDeleteMixin, ReasonAdmin
+from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
-from .models import Allowance, Attachment, Booking, Cohort, Override, Protocol, Study, Trial
+from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Override, Protocol, Study, Trial
+
+# What a trial of a study still blinded to the viewer must not show, as on the trial page:
+# the condition, and the stimulus with its settings and the values derived from them.
+BLINDED_TRIAL_FIELDS = frozenset({"condition", "replicate", "kind", *SETTING_FIELDS, "substance", "mechanical_note",
+                                  "dose_mj_cm2", "field_v_cm", "pulse_on_s", "train_s"})
+# The allocation (slot -> condition) is the key itself; the labels are hidden too, as on the study page.
+BLINDED_STUDY_FIELDS = frozenset({"allocation", "conditions"})
+BLINDED_OVERRIDE_FIELDS = frozenset({"reason", "breaches"})  # they name the stimulus settings
+BLINDED = "blinded"
 
 
 class AllowanceInline(NoDeleteMixin, admin.StackedInline):
@@ -33,12 +45,72 @@ class ProtocolAdmin(ReasonAdmin):
     inlines = [AllowanceInline]
 
 
-class ReadOnlyAdmin(NoDeleteMixin, SimpleHistoryAdmin):
+class ReadOnlyAdmin(HistoryAdmin):
     def has_change_permission(self, request, obj=None):
         return False
 
     def has_add_permission(self, request):
         return False
+
+
+class BlindedAdmin(ReadOnlyAdmin):
+    """Read-only pages that leave out `blinded_fields` while the row's study is blinded to the viewer.
+
+    Uses Study.hides_conditions_from, the test the app's own pages use. The change page and the
+    history drop those fields; the list shows "blinded" in their columns; no list lookup, filter or
+    sort may use them (a count per condition would give the allocation away).
+    """
+
+    blinded_fields: frozenset = frozenset()
+
+    def study_of(self, obj):
+        raise NotImplementedError
+
+    def hides(self, request, obj) -> bool:
+        return obj is not None and self.study_of(obj).hides_conditions_from(request.user)
+
+    def get_fields(self, request, obj=None):
+        fields = super().get_fields(request, obj)
+        return [f for f in fields if f not in self.blinded_fields] if self.hides(request, obj) else fields
+
+    def lookup_allowed(self, lookup, value, request=None):
+        if lookup.split("__")[0] in self.blinded_fields:
+            return False
+        return super().lookup_allowed(lookup, value, request)
+
+    def get_historical_record_context_helper(self, request, historical_record):
+        # Decided on the row as it is now (a past version of a study may predate its unblinding).
+        cache = request.__dict__.setdefault("_vermilog_blind_rows", {})
+        pk = historical_record.instance.pk
+        if pk not in cache:
+            current = self.model._default_manager.filter(pk=pk).first()
+            cache[pk] = current is None or self.hides(request, current)
+        if cache[pk]:
+            return _BlindedHistoryHelper(self.model, historical_record, hidden=self.blinded_fields)
+        return super().get_historical_record_context_helper(request, historical_record)
+
+
+class _BlindedHistoryHelper(HistoricalRecordContextHelper):
+    """The history's list of changes between versions, without the blinded fields."""
+
+    def __init__(self, model, historical_record, *, hidden):
+        super().__init__(model, historical_record)
+        self.hidden = hidden
+
+    def context_for_delta_changes(self, delta):
+        kept = [c for c in delta.changes if c.field not in self.hidden]
+        return super().context_for_delta_changes(dataclasses.replace(delta, changes=kept))
+
+
+def _blindable(field: str, description: str):
+    """A list column that shows the field unless the row's study is blinded to the viewer."""
+    def column(self, obj):
+        if obj.blind_to_viewer:
+            return BLINDED
+        value = getattr(obj, f"get_{field}_display", None)
+        return value() if value else getattr(obj, field)
+    column.short_description = description
+    return column
 
 
 @admin.register(Booking)
@@ -56,21 +128,46 @@ class CohortAdmin(ReadOnlyAdmin):
 
 
 @admin.register(Study)
-class StudyAdmin(ReadOnlyAdmin):
+class StudyAdmin(BlindedAdmin):
     list_display = ["code", "title", "owner", "protocol", "blinded", "unblinded_at"]
     search_fields = ["code", "title"]
+    blinded_fields = BLINDED_STUDY_FIELDS
+
+    def study_of(self, obj):
+        return obj
 
 
 @admin.register(Trial)
-class TrialAdmin(ReadOnlyAdmin):
-    list_display = ["study", "slot", "code", "cohort", "kind", "dose_mj_cm2", "disperse_s", "censored", "voided_at"]
-    list_filter = ["study", "kind", "censored"]
+class TrialAdmin(BlindedAdmin):
+    list_display = ["study", "slot", "code", "cohort", "condition_shown", "kind_shown", "dose_shown", "disperse_s",
+                    "censored", "voided_at"]
+    list_filter = ["study", "censored"]
     date_hierarchy = "run_at"
+    blinded_fields = BLINDED_TRIAL_FIELDS
+    condition_shown = _blindable("condition", "condition")
+    kind_shown = _blindable("kind", "stimulus type")
+    dose_shown = _blindable("dose_mj_cm2", "dose (mJ/cm²)")
+
+    def study_of(self, obj):
+        return obj.study
+
+    def get_queryset(self, request):
+        # Marks each row for the list columns (which Django calls with the row only), by the
+        # same test as the pages: Study.hides_conditions_from. Studies are few; trials are many.
+        hidden = [s.pk for s in Study.objects.only("pk", "blinded", "unblinded_at", "owner")
+                  if s.hides_conditions_from(request.user)]
+        return super().get_queryset(request).select_related("study", "cohort").annotate(
+            blind_to_viewer=Case(When(study_id__in=hidden, then=Value(True)), default=Value(False),
+                                 output_field=BooleanField()))
 
 
 @admin.register(Override)
-class OverrideAdmin(ReadOnlyAdmin):
+class OverrideAdmin(BlindedAdmin):
     list_display = ["trial", "cohort", "recorded_by", "recorded_at", "deviation"]
+    blinded_fields = BLINDED_OVERRIDE_FIELDS
+
+    def study_of(self, obj):
+        return obj.trial.study
 
 
 @admin.register(Attachment)

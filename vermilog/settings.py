@@ -66,10 +66,16 @@ INSTALLED_APPS = [
     "whitenoise.runserver_nostatic",
     "django.contrib.staticfiles",
     "django_filters",
-    "simple_history",
+    # Before simple_history: Django runs the management command of the earliest app that has one, so
+    # colonies' refusing clean_duplicate_history / clean_old_history replace the library's purges.
     "colonies",
     "experiments",
+    "simple_history",
 ]
+
+# Hides the history library's "revert" button; colonies.admin.HistoryAdmin also refuses the
+# revert form itself, so this setting is not the only guard.
+SIMPLE_HISTORY_REVERT_DISABLED = True
 
 MIDDLEWARE = [
     "django.middleware.security.SecurityMiddleware",
