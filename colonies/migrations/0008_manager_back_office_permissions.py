@@ -20,7 +20,7 @@ def forwards(apps, schema_editor):
 
 class Migration(migrations.Migration):
     dependencies = [
-        ("colonies", "0006_conductivity_label"),
+        ("colonies", "0007_submission_keys"),
         ("experiments", "0001_initial"),
         ("auth", "0012_alter_user_first_name_max_length"),
         ("contenttypes", "0002_remove_content_type_name"),
