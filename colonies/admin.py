@@ -3,13 +3,13 @@ from django import forms
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
+from .forms import reason_field
+
 from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget, WaterChange
 
 
 class ReasonAdminForm(forms.ModelForm):
-    change_reason = forms.CharField(
-        widget=forms.Textarea(attrs={"rows": 2}), help_text="Required: why this change? Kept in the history."
-    )
+    change_reason = reason_field("Change reason", help_text="Required: why this change? Kept in the history.")
 
 
 class NoDeleteMixin:

@@ -55,6 +55,12 @@ class VoidableQuerySet(models.QuerySet):
         return self.filter(voided_at__isnull=False)
 
 
+# The longest reason a person may give for a change, a void, a cancellation or an override (forms
+# refuse longer ones with a message). The history keeps reasons in a text column
+# (SIMPLE_HISTORY_HISTORY_CHANGE_REASON_USE_TEXT_FIELD) with a short prefix such as "Voided: ".
+REASON_MAX_CHARS = 2000
+
+
 class Voidable(models.Model):
     voided_at = models.DateTimeField(null=True, blank=True, editable=False)
     voided_by = models.ForeignKey(

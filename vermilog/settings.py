@@ -130,6 +130,9 @@ if DATABASES["default"]["ENGINE"] == "django.db.backends.sqlite3":
     # default for tests has table locks instead of WAL and hides what concurrent writers do.
     DATABASES["default"]["TEST"] = {"NAME": env_path("SQLITE_TEST_NAME", BASE_DIR / "test-vermilog.sqlite3")}
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
+# History reasons in a text column: a reason of any length the forms allow (REASON_MAX_CHARS in
+# colonies/models.py) plus a prefix such as "Cancelled: " fits on every database.
+SIMPLE_HISTORY_HISTORY_CHANGE_REASON_USE_TEXT_FIELD = True
 
 AUTH_PASSWORD_VALIDATORS = [
     {"NAME": "django.contrib.auth.password_validation.UserAttributeSimilarityValidator"},
