@@ -13,7 +13,7 @@ from django.core.exceptions import PermissionDenied
 from simple_history.admin import SimpleHistoryAdmin
 
 from . import services
-from .forms import CareTargetForm, TankTargetForm
+from .forms import CareTargetForm, TankTargetForm, reason_field
 from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget, WaterChange
 
 NO_REVERT = ("Past versions cannot be restored or edited: a correction is a new version with its own reason, "
@@ -21,9 +21,7 @@ NO_REVERT = ("Past versions cannot be restored or edited: a correction is a new 
 
 
 class ReasonAdminForm(forms.ModelForm):
-    change_reason = forms.CharField(
-        widget=forms.Textarea(attrs={"rows": 2}), help_text="Required: why this change? Kept in the history."
-    )
+    change_reason = reason_field("Change reason", help_text="Required: why this change? Kept in the history.")
 
 
 class NoDeleteMixin:

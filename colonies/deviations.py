@@ -20,7 +20,7 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
-from django.db import transaction
+from django.db import IntegrityError, transaction
 from django.db.models import OuterRef, Q, Subquery
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history, bulk_update_with_history
@@ -337,13 +337,42 @@ def scan(now: datetime | None = None, *, dry_run: bool = False) -> tuple[list[Fi
 # ---------------------------------------------------------------------------------------------
 # Findings to deviations
 # ---------------------------------------------------------------------------------------------
+CONFLICT_RETRIES = 3  # a finding without a tank lost the race to insert its deviation: read again and retry
+
+
 @transaction.atomic
 def apply_findings(findings: list[Finding], now: datetime | None = None, user=None) -> Outcome:
-    """Open a deviation per new problem, or add evidence to the unresolved one (fixed query count)."""
-    outcome = Outcome()
+    """Open a deviation per new problem, or add evidence to the unresolved one (fixed query count).
+
+    Safe under concurrent writers (several technicians saving checks on one tank at once): the
+    tanks' rows are locked first, in primary-key order so that two batches on overlapping tanks
+    cannot deadlock, and held to the end of the caller's transaction; the unresolved deviations
+    are read only after that, so each writer sees the evidence the one before it committed. The
+    lock is FOR NO KEY UPDATE on PostgreSQL: the checks just inserted in the same transaction hold
+    FOR KEY SHARE on their tank (foreign key), which a plain FOR UPDATE would wait on, two writers
+    then deadlocking. SQLite serialises writers at BEGIN IMMEDIATE (settings) instead.
+    Findings about no tank (a subject alone) have no row to lock: their deviations are locked
+    when they exist, and a lost race to insert one is retried inside a savepoint.
+    """
     if not findings:
-        return outcome
+        return Outcome()
     now = now or timezone.now()
+    tank_ids = sorted({f.tank_id for f in findings if f.tank_id is not None})
+    if tank_ids:
+        list(Tank.objects.select_for_update(no_key=True).filter(pk__in=tank_ids).order_by("pk").values_list("pk"))
+    if all(f.tank_id is not None for f in findings):
+        return _apply_findings(findings, now, user)
+    for attempt in range(CONFLICT_RETRIES):
+        try:
+            with transaction.atomic():
+                return _apply_findings(findings, now, user)
+        except IntegrityError:
+            if attempt == CONFLICT_RETRIES - 1:
+                raise
+
+
+def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
+    outcome = Outcome()
     tank_ids = {f.tank_id for f in findings if f.tank_id is not None}
     subjects = {f.subject for f in findings if f.tank_id is None}
     unresolved = Deviation.objects.unresolved().filter(rule__in={f.rule for f in findings})
@@ -351,7 +380,7 @@ def apply_findings(findings: list[Finding], now: datetime | None = None, user=No
     for dev in unresolved.filter(tank_id__in=tank_ids) if tank_ids else []:
         existing[(dev.tank_id, dev.rule, dev.parameter, dev.subject)] = dev
     if subjects:
-        for dev in unresolved.filter(tank__isnull=True, subject__in=subjects):
+        for dev in unresolved.filter(tank__isnull=True, subject__in=subjects).select_for_update(no_key=True):
             existing[(None, dev.rule, dev.parameter, dev.subject)] = dev
     # Evidence already answered: a finding about the same record as a closed deviation (a correction
     # re-running the rules on an old check, say) must not reopen it. One query.

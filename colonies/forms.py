@@ -5,7 +5,19 @@ from django.utils import timezone
 
 from . import derived, parameters
 from .flags import limit_text, out_of_target
-from .models import Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
+from .models import REASON_MAX_CHARS, Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
+
+
+def reason_field(label: str = "Reason", **kwargs) -> forms.CharField:
+    """A reason kept in the history, refused beyond REASON_MAX_CHARS with a message naming the field."""
+    kwargs.setdefault("widget", forms.Textarea(attrs={"rows": 2}))
+    return forms.CharField(
+        label=label, max_length=REASON_MAX_CHARS,
+        error_messages={"max_length": f"{label}: at most {REASON_MAX_CHARS:,} characters are kept; "
+                                      "this one has %(show_value)s. Shorten it.",
+                        **kwargs.pop("error_messages", {})},
+        **kwargs,
+    )
 
 
 MAX_COUNT = 1_000_000  # more animals than any culture tank holds: a typo, not a count
@@ -158,10 +170,7 @@ class ObservedAtForm(forms.Form):
 
 
 class ReasonForm(forms.Form):
-    reason = forms.CharField(
-        widget=forms.Textarea(attrs={"rows": 2}),
-        help_text="Required: why is this record being changed or voided? It is kept in the history.",
-    )
+    reason = reason_field(help_text="Required: why is this record being changed or voided? It is kept in the history.")
 
     def clean_reason(self):
         reason = self.cleaned_data["reason"].strip()
@@ -267,6 +276,8 @@ class CareTargetForm(forms.ModelForm):
 
 
 class TankTargetForm(CareTargetForm):
+    reason = reason_field(widget=forms.TextInput(), help_text=TankTarget._meta.get_field("reason").help_text)
+
     class Meta:
         model = TankTarget
         fields = ["parameter", "low", "high", "reason"]

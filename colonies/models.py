@@ -7,8 +7,9 @@ from datetime import timedelta
 
 from django.conf import settings
 from django.core.validators import MinValueValidator, MaxValueValidator, RegexValidator
-from django.db import models
-from django.db.models import Max, OuterRef, Q, Subquery
+from django.db import models, transaction
+from django.db.models import Max, OuterRef, Q, Subquery, Value
+from django.db.models.functions import Coalesce
 from django.urls import reverse
 from django.utils import timezone
 from simple_history.models import HistoricalRecords
@@ -52,6 +53,12 @@ class VoidableQuerySet(models.QuerySet):
 
     def voided(self):
         return self.filter(voided_at__isnull=False)
+
+
+# The longest reason a person may give for a change, a void, a cancellation or an override (forms
+# refuse longer ones with a message). The history keeps reasons in a text column
+# (SIMPLE_HISTORY_HISTORY_CHANGE_REASON_USE_TEXT_FIELD) with a short prefix such as "Voided: ".
+REASON_MAX_CHARS = 2000
 
 
 class Voidable(models.Model):
@@ -602,9 +609,11 @@ class Deviation(models.Model):
         ordering = ["-opened_at"]
         get_latest_by = "opened_at"
         constraints = [
+            # Coalesce: a unique index treats NULLs as distinct, so without it deviations about no
+            # tank (a subject alone) could be opened twice by two writers at once.
             models.UniqueConstraint(
-                fields=["tank", "rule", "parameter", "subject"], condition=~Q(status="closed"),
-                name="deviation_one_unresolved_per_subject",
+                Coalesce("tank", Value(0), output_field=models.BigIntegerField()), "rule", "parameter", "subject",
+                condition=~Q(status="closed"), name="deviation_one_unresolved_per_subject",
             ),
             models.CheckConstraint(
                 condition=~Q(status="closed") | (Q(closed_at__isnull=False) & ~Q(corrective_action="")),
@@ -627,32 +636,47 @@ class Deviation(models.Model):
     def time_to_close(self):
         return (self.closed_at - self.opened_at) if self.closed_at else None
 
+    def _lock_and_refresh(self) -> None:
+        """Take the lock the deviation engine takes (the tank's row, or this row when there is no
+        tank) and re-read this row: evidence added since the page was loaded is kept, not
+        overwritten by the stale copy. Call inside a transaction; runs two queries."""
+        if self.tank_id:
+            list(Tank.objects.select_for_update(no_key=True).filter(pk=self.tank_id).values_list("pk"))
+        else:
+            list(Deviation.objects.select_for_update(no_key=True).filter(pk=self.pk).values_list("pk"))
+        self.refresh_from_db()
+
     def acknowledge(self, *, user) -> None:
-        if self.status != self.Status.OPEN:
-            raise ValueError(f"Only an open deviation can be acknowledged; this one is {self.get_status_display().lower()}.")
-        self.status = self.Status.ACKNOWLEDGED
-        self.acknowledged_at = timezone.now()
-        self.acknowledged_by = user
-        self._history_user = user
-        self._change_reason = "Acknowledged"
-        self.save()
+        with transaction.atomic():
+            self._lock_and_refresh()
+            if self.status != self.Status.OPEN:
+                raise ValueError(f"Only an open deviation can be acknowledged; this one is "
+                                 f"{self.get_status_display().lower()}.")
+            self.status = self.Status.ACKNOWLEDGED
+            self.acknowledged_at = timezone.now()
+            self.acknowledged_by = user
+            self._history_user = user
+            self._change_reason = "Acknowledged"
+            self.save()
 
     def close(self, *, user, corrective_action: str) -> None:
         action = (corrective_action or "").strip()
         if not action:
             raise ValueError("Corrective action: describe what was done before closing the deviation.")
-        if self.status == self.Status.CLOSED:
-            raise ValueError("This deviation is already closed.")
-        now = timezone.now()
-        if self.acknowledged_at is None:
-            self.acknowledged_at, self.acknowledged_by = now, user
-        self.status = self.Status.CLOSED
-        self.closed_at = now
-        self.closed_by = user
-        self.corrective_action = action
-        self._history_user = user
-        self._change_reason = "Closed with corrective action"
-        self.save()
+        with transaction.atomic():
+            self._lock_and_refresh()
+            if self.status == self.Status.CLOSED:
+                raise ValueError("This deviation is already closed.")
+            now = timezone.now()
+            if self.acknowledged_at is None:
+                self.acknowledged_at, self.acknowledged_by = now, user
+            self.status = self.Status.CLOSED
+            self.closed_at = now
+            self.closed_by = user
+            self.corrective_action = action
+            self._history_user = user
+            self._change_reason = "Closed with corrective action"
+            self.save()
 
 
 # ---------------------------------------------------------------------------------------------

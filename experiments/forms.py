@@ -3,6 +3,7 @@ from datetime import timedelta
 from django import forms
 from django.utils import timezone
 
+from colonies.forms import reason_field
 from colonies.models import Species, Tank
 
 from .allocation import BLOCK
@@ -20,7 +21,7 @@ def _minute(dt) -> str:
 
 
 class ReasonForm(forms.Form):
-    reason = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), help_text="Required; kept in the history.")
+    reason = reason_field(help_text="Required; kept in the history.")
 
     def clean_reason(self):
         reason = self.cleaned_data["reason"].strip()
@@ -259,8 +260,8 @@ class TrialForm(OutcomeFields):
     slot = forms.TypedChoiceField(coerce=int, help_text="Open slots in the randomised run order; the first is next.")
     cohort = forms.ModelChoiceField(queryset=Cohort.objects.none(), help_text="Active cohorts under the study's protocol.")
     run_at = forms.DateTimeField(widget=DATETIME, label="Stimulus applied at")
-    override_reason = forms.CharField(
-        widget=forms.Textarea(attrs={"rows": 2}), required=False, label="Manager's override: reason",
+    override_reason = reason_field(
+        required=False, label="Manager's override: reason",
         help_text="Only when a protocol limit is broken; recorded with your name and opens a deviation.")
 
     class Meta:
@@ -337,9 +338,8 @@ class TrialForm(OutcomeFields):
 
 
 class ScoreForm(OutcomeFields):
-    reason = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False,
-                             label="Reason for the correction", help_text="Required; kept in the history.",
-                             error_messages={"required": "Give a reason for correcting the score."})
+    reason = reason_field(required=False, label="Reason for the correction", help_text="Required; kept in the history.",
+                          error_messages={"required": "Give a reason for correcting the score."})
 
     class Meta:
         model = Trial

@@ -151,6 +151,13 @@ def booking_detail(request, pk):
     return render(request, "experiments/booking_detail.html", ctx)
 
 
+def _reason_problem(form: ReasonForm, missing: str) -> str:
+    """The message for a refused reason: `missing` when there was none, else the form's own (too long)."""
+    if form.has_error("reason", code="max_length"):
+        return f"{' '.join(form.errors['reason'])} Nothing was changed."
+    return missing
+
+
 @require_POST
 @role_required(*RUN)
 @once_per_submission
@@ -160,7 +167,7 @@ def booking_cancel(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may cancel a booking.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, "Give a reason to cancel the booking; nothing was changed.")
+        messages.error(request, _reason_problem(form, "Give a reason to cancel the booking; nothing was changed."))
         return redirect(booking)
     try:
         services.cancel_booking(user=request.user, booking=booking, reason=form.cleaned_data["reason"])
@@ -323,7 +330,7 @@ def study_unblind(request, code):
     study = _get_study(code)
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, "Give a reason to unblind; nothing was changed.")
+        messages.error(request, _reason_problem(form, "Give a reason to unblind; nothing was changed."))
         return redirect(study)
     try:
         services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"])
@@ -511,7 +518,7 @@ def trial_set_aside(request, pk, action):
         raise PermissionDenied("Only the study's owner or a manager may exclude or void its trials.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, "Give a reason; nothing was changed.")
+        messages.error(request, _reason_problem(form, "Give a reason; nothing was changed."))
         return redirect(trial)
     handler = {"exclude": services.exclude_trial, "void": services.void_trial}.get(action)
     if handler is None:

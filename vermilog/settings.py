@@ -45,6 +45,10 @@ def env_list(name: str, default: list[str]) -> list[str]:
     return [item.strip() for item in raw.split(",") if item.strip()]
 
 
+def env_path(name: str, default: Path) -> str:
+    return os.environ.get(name) or str(default)
+
+
 DEBUG = env_bool("DEBUG", True)
 
 _DEV_SECRET = "vermilog-development-only-key-never-use-in-production"
@@ -118,9 +122,23 @@ DATABASES = {
     )
 }
 if DATABASES["default"]["ENGINE"] == "django.db.backends.sqlite3":
-    # Same backend, with SQLite's real parameter limit (see vermilog/sqlite3/base.py).
+    # Same backend, with SQLite's real parameter limit and write-ahead logging (vermilog/sqlite3/base.py).
     DATABASES["default"]["ENGINE"] = "vermilog.sqlite3"
+    # Several people save at once: every transaction takes the write lock when it begins (a
+    # deferred one that reads first and then writes cannot wait for the lock and fails at once
+    # with "database is locked"), and a writer waits up to SQLITE_BUSY_TIMEOUT_S for the one before.
+    DATABASES["default"]["OPTIONS"] = {
+        "transaction_mode": "IMMEDIATE",
+        "timeout": env_int("SQLITE_BUSY_TIMEOUT_S", 20),
+        **DATABASES["default"].get("OPTIONS", {}),
+    }
+    # Tests run on a file, as production does; the in-memory shared-cache database Django uses by
+    # default for tests has table locks instead of WAL and hides what concurrent writers do.
+    DATABASES["default"]["TEST"] = {"NAME": env_path("SQLITE_TEST_NAME", BASE_DIR / "test-vermilog.sqlite3")}
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
+# History reasons in a text column: a reason of any length the forms allow (REASON_MAX_CHARS in
+# colonies/models.py) plus a prefix such as "Cancelled: " fits on every database.
+SIMPLE_HISTORY_HISTORY_CHANGE_REASON_USE_TEXT_FIELD = True
 
 AUTH_PASSWORD_VALIDATORS = [
     {"NAME": "django.contrib.auth.password_validation.UserAttributeSimilarityValidator"},

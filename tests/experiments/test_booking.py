@@ -185,9 +185,8 @@ def test_suggestions_list_tanks_with_enough_spare_animals_most_first(researcher,
 
 @pytest.mark.django_db(transaction=True)
 def test_simultaneous_bookings_for_the_last_animals_never_overbook():
-    """Real concurrent connections (one per thread) racing for the same tank on PostgreSQL."""
-    if connection.vendor != "postgresql":
-        pytest.skip("Row locks (SELECT ... FOR UPDATE) need PostgreSQL; SQLite serialises writers instead.")
+    """Real concurrent connections (one per thread) racing for the same tank: a row lock on PostgreSQL,
+    BEGIN IMMEDIATE with a busy timeout on SQLite (a file database, as in production)."""
     from colonies.roles import RESEARCHER
     users = [make_user(f"racer{i}", role=RESEARCHER) for i in range(16)]
     protocol = make_protocol()

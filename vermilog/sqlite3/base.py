@@ -4,6 +4,12 @@ Django 5.2 assumes SQLite's old compile-time default of 999 variables per statem
 a bulk insert of the daily round into batches of about 30 rows: the query count then grows with
 the number of tanks. SQLite 3.32 (2020) raised the default to 32766 and Python reports the limit
 of the library it runs with; we use that. (Django 6.0 reads the limit the same way.)
+
+A file database is switched to write-ahead logging on every connection (the mode is stored in the
+file, so this is a no-op after the first time): readers then never wait for a writer and a writer
+never waits for readers, only for the one writer before it (settings: BEGIN IMMEDIATE and a busy
+timeout). synchronous=NORMAL is the setting SQLite recommends with WAL: a power cut may lose the
+last commits but never corrupts the file.
 """
 import sqlite3
 
@@ -20,3 +26,10 @@ class DatabaseFeatures(features.DatabaseFeatures):
 
 class DatabaseWrapper(base.DatabaseWrapper):
     features_class = DatabaseFeatures
+
+    def get_new_connection(self, conn_params):
+        conn = super().get_new_connection(conn_params)
+        if not self.is_in_memory_db():
+            conn.execute("PRAGMA journal_mode = WAL")
+            conn.execute("PRAGMA synchronous = NORMAL")
+        return conn
