@@ -258,9 +258,6 @@ def test_a_form_shown_again_with_errors_carries_a_key(client, world, technician)
 # ---------------------------------------------------------------------------------------------
 # Two identical submits at the same moment (real threads, each its own connection)
 # ---------------------------------------------------------------------------------------------
-@pytest.mark.skipif(connection.vendor == "sqlite",
-                    reason="SQLite's in-memory test database is shared by threads through one shared cache, "
-                           "which raises 'table is locked' instead of waiting; run on PostgreSQL (DATABASE_URL)")
 @pytest.mark.django_db(transaction=True)
 def test_two_simultaneous_identical_submits_save_one_record_and_both_succeed(technician):
     from django.db import connections

@@ -123,9 +123,6 @@ def test_every_form_that_writes_carries_a_submission_key(client, world, research
     assert post_forms_without_key(response.content.decode()) == (n_forms, [])
 
 
-@pytest.mark.skipif(connection.vendor == "sqlite",
-                    reason="SQLite's in-memory test database is shared by threads through one shared cache, "
-                           "which raises 'table is locked' instead of waiting; run on PostgreSQL (DATABASE_URL)")
 @pytest.mark.django_db(transaction=True)
 def test_two_simultaneous_identical_bookings_save_one(researcher, protocol, technician):
     from django.db import connections
