@@ -12,7 +12,6 @@ from types import SimpleNamespace
 
 import pytest
 from django.contrib.messages import get_messages
-from django.db import connection
 from django.test import Client
 from django.urls import reverse
 

@@ -8,7 +8,6 @@ import uuid
 
 import pytest
 from django.contrib.messages import get_messages
-from django.db import connection
 from django.test import Client
 from django.urls import reverse
 
