@@ -37,6 +37,7 @@ BUILD_SOURCE = """
 import os, shutil, sys, django
 os.environ.setdefault("DJANGO_SETTINGS_MODULE", "vermilog.settings")
 django.setup()
+from django.contrib.auth.models import User
 from django.core.files.uploadedfile import SimpleUploadedFile
 from django.core.management import call_command
 from django.db import connection
@@ -50,14 +51,14 @@ demo.DAYS = 30
 call_command("load_demo", verbosity=0)
 trial = Trial.objects.order_by("pk").first()
 upload = SimpleUploadedFile("dish-01.png", bytes.fromhex(sys.argv[3]), content_type="image/png")
-services.add_attachment(user=trial.recorded_by, trial=trial, upload=upload, kind="photo", caption="Dish 1")
+services.add_attachment(user=User.objects.get(username="ravi"), trial=trial, upload=upload, kind="photo", caption="Dish 1")
 """
 
 
 def _run(env: dict, *args: str) -> str:
     done = subprocess.run([sys.executable, *args], cwd=BASE_DIR, capture_output=True, text=True,
                           env={**os.environ, "DJANGO_SETTINGS_MODULE": "vermilog.settings", **env})
-    assert done.returncode == 0, f"{args[:3]} failed:\n{done.stdout}\n{done.stderr}"
+    assert done.returncode == 0, f"{args[0][:40]!r} {args[1][:40]!r} failed:\n{done.stdout}\n{done.stderr}"
     return done.stdout
 
 
