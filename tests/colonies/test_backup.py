@@ -18,10 +18,11 @@ from pathlib import Path
 
 import dj_database_url
 import pytest
+from django.apps import apps
 from django.conf import settings
 from django.core.files.uploadedfile import SimpleUploadedFile
 from django.core.management import CommandError, call_command
-from django.db import connection
+from django.db import connection, models
 
 from colonies import backup
 from tests.experiments.builders import make_cohort, make_protocol, make_study, record
@@ -71,12 +72,26 @@ def _only_backup(folder: Path) -> Path:
     return found
 
 
-def _sqlite_rows(path: Path) -> dict[str, list]:
+def _json_columns() -> dict[str, set[str]]:
+    return {m._meta.db_table: {f.column for f in m._meta.concrete_fields if isinstance(f, models.JSONField)}
+            for m in apps.get_models(include_auto_created=True)}
+
+
+def _sqlite_rows(path: Path, *, parse_json: bool = False) -> dict[str, list]:
+    """Every row of every table as stored. With parse_json, JSON columns are compared as values: PostgreSQL's
+    jsonb keeps an object's keys in its own order, so a trip through PostgreSQL reorders them."""
+    json_columns = _json_columns() if parse_json else {}
     con = sqlite3.connect(path)
     try:
         tables = [r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type = 'table' "
                                             "AND name NOT LIKE 'sqlite_%' ORDER BY name")]
-        return {t: sorted(con.execute(f'SELECT * FROM "{t}"').fetchall(), key=repr) for t in tables}
+        found = {}
+        for table in tables:
+            cursor = con.execute(f'SELECT * FROM "{table}"')
+            parse = [d[0] in json_columns.get(table, ()) for d in cursor.description]
+            rows = [tuple(json.loads(v) if p and v is not None else v for p, v in zip(parse, row)) for row in cursor]
+            found[table] = sorted(rows, key=repr)
+        return found
     finally:
         con.close()
 
@@ -216,7 +231,7 @@ def test_sqlite_data_moves_to_postgresql_and_back_with_nothing_lost(sqlite_sourc
     back = tmp_path / "back.sqlite3"
     shutil.copy(sqlite_source["empty"], back)
     _manage(f"sqlite:///{back}", tmp_path / "back-media", "restore", str(_only_backup(tmp_path / "back")))
-    assert _differences(_sqlite_rows(sqlite_source["db"]), _sqlite_rows(back)) == []
+    assert _differences(_sqlite_rows(sqlite_source["db"], parse_json=True), _sqlite_rows(back, parse_json=True)) == []
 
 
 # --- in-process: the commands on the test database ------------------------------------------------------
