@@ -25,8 +25,8 @@ from django.core.management import CommandError, call_command
 from django.db import connection, models
 
 from colonies import backup
-from tests.experiments.builders import make_cohort, make_protocol, make_study, record
 from colonies.models import Room
+from tests.experiments.builders import make_cohort, make_protocol, make_study, record
 from tests.factories import make_room
 
 BASE_DIR = Path(settings.BASE_DIR)
