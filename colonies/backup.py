@@ -459,6 +459,9 @@ def _restore_portable(folder: Path, manifest: dict, alias: str) -> None:
     after removing what `migrate` wrote; then move PostgreSQL's sequences past the restored ids."""
     connection = connections[alias]
     here = migration_state(alias)
+    if not here:
+        raise BackupError("The target database has no tables yet: run `manage.py migrate` first; a portable "
+                          "backup restores into a migrated, empty database.")
     if here != manifest["migrations"]:
         differ = sorted(set(here.items()) ^ set(manifest["migrations"].items()))
         app = differ[0][0]

@@ -234,6 +234,37 @@ def test_sqlite_data_moves_to_postgresql_and_back_with_nothing_lost(sqlite_sourc
     assert _differences(_sqlite_rows(sqlite_source["db"], parse_json=True), _sqlite_rows(back, parse_json=True)) == []
 
 
+@pytest.fixture
+def on_postgresql():
+    if connection.vendor != "postgresql":
+        pytest.skip("pg_dump version check: needs DATABASE_URL=postgres://…")
+
+
+def test_backup_says_what_to_install_when_pg_dump_is_missing(on_postgresql, db, tmp_path, monkeypatch):
+    monkeypatch.setenv("PATH", str(tmp_path))  # an empty folder: no pg_dump anywhere
+    major = connection.pg_version // 10000
+
+    with pytest.raises(CommandError, match=f"pg_dump was not found on PATH; the PostgreSQL server is version "
+                                           f"{major}: install the PostgreSQL {major} client tools "
+                                           rf"\(Debian: apt-get install postgresql-client-{major}\)"):
+        call_command("backup", "--output", str(tmp_path / "out"), stdout=StringIO())
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
+def test_backup_refuses_a_pg_dump_older_than_the_server(on_postgresql, db, tmp_path, monkeypatch):
+    major = connection.pg_version // 10000
+    fake = tmp_path / "bin" / "pg_dump"
+    fake.parent.mkdir()
+    fake.write_text(f"#!/bin/sh\necho 'pg_dump (PostgreSQL) {major - 1}.4'\n")
+    fake.chmod(0o755)
+    monkeypatch.setenv("PATH", f"{fake.parent}{os.pathsep}{os.environ['PATH']}")
+
+    with pytest.raises(CommandError, match=f"is version {major - 1} but the PostgreSQL server is {major}; "
+                                           f"pg_dump must be at least the server's version"):
+        call_command("backup", "--output", str(tmp_path / "out"), stdout=StringIO())
+    assert not (tmp_path / "out").exists() or not any((tmp_path / "out").iterdir())
+
+
 # --- in-process: the commands on the test database ------------------------------------------------------
 
 @pytest.fixture
