@@ -375,7 +375,9 @@ def _check_media(folder: Path, manifest: dict) -> list[dict]:
     return todo
 
 
-def restore(folder: Path, *, alias: str = "default") -> Result:
+def restore(folder: Path, *, alias: str = "default", dry_run: bool = False) -> Result:
+    """Restore into the empty database `alias` and MEDIA_ROOT. Every check runs before anything is
+    written; `dry_run` stops after them."""
     folder = Path(folder)
     manifest = verify(folder)
     engine = engine_of(alias)
@@ -390,7 +392,16 @@ def restore(folder: Path, *, alias: str = "default") -> Result:
         raise BackupError(f"The target database is not empty: {listing}"
                           + (f" and {len(records) - 5} more tables" if len(records) > 5 else "")
                           + ". Restore only into a new, empty database; nothing was changed.")
+    if kind == "portable":
+        _check_portable_target(manifest, alias)
+    elif kind == "postgresql":
+        pg_tool("pg_restore", alias)
     media = _check_media(folder, manifest)
+    n_media = sum(1 for p in manifest["parts"] if p["kind"] == "media")
+    if dry_run:
+        return Result(folder, f"Dry run: {folder.name} ({kind}) can be restored here: {len(manifest['parts'])} "
+                              f"parts verified, the database is empty, {len(media)} of {n_media} media files "
+                              f"to copy. Nothing was changed.")
     if kind == "portable":
         _restore_portable(folder, manifest, alias)
     elif kind == "sqlite":
@@ -410,7 +421,6 @@ def restore(folder: Path, *, alias: str = "default") -> Result:
         if wrong:
             table, (want, got) = sorted(wrong.items())[0]
             raise BackupError(f"After the restore {table} has {got} rows; the backup has {want}.")
-    n_media = sum(1 for p in manifest["parts"] if p["kind"] == "media")
     return Result(folder, f"Restored {folder.name} ({kind}): {len(counts)} tables, {sum(counts.values())} rows, "
                           f"{n_media} media files ({len(media)} copied).")
 
@@ -454,10 +464,8 @@ def _decode(field, value):
     return field.to_python(value)
 
 
-def _restore_portable(folder: Path, manifest: dict, alias: str) -> None:
-    """Insert every row with plain SQL (no model save: no signals, no auto_now), in one transaction,
-    after removing what `migrate` wrote; then move PostgreSQL's sequences past the restored ids."""
-    connection = connections[alias]
+def _check_portable_target(manifest: dict, alias: str) -> None:
+    """A portable backup restores into tables that `migrate` made, at the backup's migrations."""
     here = migration_state(alias)
     if not here:
         raise BackupError("The target database has no tables yet: run `manage.py migrate` first; a portable "
@@ -469,6 +477,12 @@ def _restore_portable(folder: Path, manifest: dict, alias: str) -> None:
                           f"{app} at {manifest['migrations'].get(app)}, this database {here.get(app)}. "
                           f"Run `manage.py migrate {app} {manifest['migrations'].get(app) or 'zero'}` first "
                           f"(on a new database: `manage.py migrate`).")
+
+
+def _restore_portable(folder: Path, manifest: dict, alias: str) -> None:
+    """Insert every row with plain SQL (no model save: no signals, no auto_now), in one transaction,
+    after removing what `migrate` wrote; then move PostgreSQL's sequences past the restored ids."""
+    connection = connections[alias]
     by_table = {m._meta.db_table: m for m in _models()}
     restored = []
     quote = connection.ops.quote_name

@@ -343,6 +343,25 @@ def test_restore_refuses_a_database_that_holds_records_and_changes_nothing(tmp_p
 
 
 @pytest.mark.django_db
+def test_restore_dry_run_runs_every_check_and_changes_nothing(tmp_path, settings):
+    settings.MEDIA_ROOT = tmp_path / "media"
+    (tmp_path / "media").mkdir()
+    (tmp_path / "media" / "dish.png").write_bytes(PNG)
+    folder = _backup_now(tmp_path, "--portable")
+    settings.MEDIA_ROOT = tmp_path / "new-media"
+    out = StringIO()
+
+    call_command("restore", str(folder), "--dry-run", stdout=out)
+
+    assert f"Dry run: {folder.name} (portable) can be restored here:" in out.getvalue()
+    assert "the database is empty, 1 of 1 media files to copy. Nothing was changed." in out.getvalue()
+    assert not (tmp_path / "new-media").exists()
+    make_room(code="real-1")
+    with pytest.raises(CommandError, match="The target database is not empty"):
+        call_command("restore", str(folder), "--dry-run", stdout=StringIO())
+
+
+@pytest.mark.django_db
 def test_a_migrated_database_without_records_counts_as_empty():
     # Groups, species profiles and content types come from `migrate` itself.
     assert backup.database_records() == {}
