@@ -4,11 +4,13 @@ The command swaps the `default` connection for a new one on a new database (a te
 or `<name>_bench` on PostgreSQL), migrates it, and puts the original connection back afterwards. The
 original connection is never closed, so an in-memory test database survives untouched.
 """
+import hashlib
 import os
 import shutil
 import tempfile
 from contextlib import contextmanager
 
+import django
 from django.core.management import call_command
 from django.db import DEFAULT_DB_ALIAS, connections
 from django.db.utils import load_backend
@@ -25,28 +27,38 @@ def scratch_name(settings_dict: dict, db_path: str | None) -> str:
         if os.path.exists(db_path):
             raise ValueError(f"--db: {db_path} already exists; give the path of a new file.")
         return db_path
-    handle, path = tempfile.mkstemp(prefix="vermilog-bench-", suffix=".sqlite3", dir="/tmp")
+    handle, path = tempfile.mkstemp(prefix="vermilog-bench-", suffix=".sqlite3")
     os.close(handle)
     os.unlink(path)  # SQLite creates it on first connection
     return path
 
 
-# A freshly migrated SQLite file, kept for this process: later scratch databases are copies of it, so
-# a test that builds twice migrates once (migrating costs ~15 s of CPU).
-_SQLITE_TEMPLATE: dict[str, str] = {}
+# A freshly migrated SQLite file is kept in /tmp under a digest of every migration file (and the
+# Django version): a later scratch database made by the same migrations is a copy of it. Migrating
+# costs ~15 s of CPU, which would dominate a small run and the test.
+def _migrations_digest() -> str:
+    import sys
+    from django.db.migrations.loader import MigrationLoader
+    digest = hashlib.sha256(django.get_version().encode())
+    loader = MigrationLoader(None, ignore_no_migrations=True)
+    for key in sorted(loader.disk_migrations):
+        module = sys.modules[type(loader.disk_migrations[key]).__module__]
+        digest.update(repr(key).encode())
+        with open(module.__file__, "rb") as handle:
+            digest.update(handle.read())
+    return digest.hexdigest()[:16]
 
 
 def _migrate_sqlite(scratch, name: str, verbosity: int) -> None:
-    template = _SQLITE_TEMPLATE.get("path")
-    if template and os.path.exists(template):
+    template = os.path.join(tempfile.gettempdir(), f"vermilog-bench-template-{_migrations_digest()}.sqlite3")
+    if os.path.exists(template):
         shutil.copyfile(template, name)
         return
     call_command("migrate", database=DEFAULT_DB_ALIAS, verbosity=verbosity, interactive=False)
     scratch.close()
-    handle, template = tempfile.mkstemp(prefix="vermilog-bench-template-", suffix=".sqlite3", dir="/tmp")
-    os.close(handle)
-    shutil.copyfile(name, template)
-    _SQLITE_TEMPLATE["path"] = template
+    partial = f"{template}.{os.getpid()}"
+    shutil.copyfile(name, partial)
+    os.replace(partial, template)  # atomic: a concurrent run sees the whole file or none
 
 
 def _pg_execute(original, sql: str) -> None:

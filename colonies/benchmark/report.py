@@ -1,5 +1,7 @@
 """The benchmark's table and JSON file."""
 import json
+import os
+import statistics
 import platform
 
 import django
@@ -12,6 +14,8 @@ def _notes(r) -> str:
     parts = []
     if not r.ok:
         parts.append(f"FAILED: {r.error}")
+    if r.cpu_ms:
+        parts.append(f"CPU {statistics.median(r.cpu_ms):,.0f} ms")
     if r.rows is not None and r.rows_per_s:
         parts.append(f"{r.rows} rows, {r.rows_per_s:,.0f} rows/s")
     if r.bytes is not None and r.kind == "export":
@@ -42,7 +46,7 @@ def table(results) -> str:
 def document(*, options: dict, build: dict, results, seconds: float) -> dict:
     return {
         "engine": connection.vendor, "django": django.get_version(), "python": platform.python_version(),
-        "options": options, "build": build, "total_seconds": round(seconds, 1),
+        "load_average": os.getloadavg(), "options": options, "build": build, "total_seconds": round(seconds, 1),
         "results": [r.as_dict() for r in results],
     }
 

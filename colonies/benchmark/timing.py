@@ -5,6 +5,7 @@ SQL time of the median run, and for exports a separate run under tracemalloc for
 (tracemalloc slows Python down, so it never overlaps a timed run). Writes (round saves, rule runs)
 happen inside a transaction that is rolled back, so every repeat starts from the same data.
 """
+import logging
 import re
 import statistics
 import time
@@ -27,6 +28,7 @@ class Case:
     expect: tuple[int, ...] = (200,)
     notes: str = ""
     repeats: int | None = None  # None: the command's --repeats
+    warm_up: bool | None = None  # an untimed first run (imports, template loading); default: pages and figures
 
 
 @dataclass
@@ -49,6 +51,7 @@ class Result:
     role: str
     kind: str
     runs_ms: list = field(default_factory=list)
+    cpu_ms: list = field(default_factory=list)  # process CPU time: less sensitive to a busy machine
     queries: int | None = None
     sql_ms: float | None = None
     status: int | None = None
@@ -75,7 +78,7 @@ class Result:
 
     def as_dict(self) -> dict:
         out = {k: v for k, v in self.__dict__.items()}
-        out.update(median_ms=self.median_ms, max_ms=self.max_ms, rows_per_s=self.rows_per_s, repeats=len(self.runs_ms))
+        out.update(median_cpu_ms=statistics.median(self.cpu_ms) if self.cpu_ms else None, median_ms=self.median_ms, max_ms=self.max_ms, rows_per_s=self.rows_per_s, repeats=len(self.runs_ms))
         return out
 
 
@@ -94,16 +97,36 @@ def _once(case: Case) -> tuple[float, SqlTimer, dict]:
         case.before()
     timer = SqlTimer()
     with _maybe_rollback(case.rollback), connection.execute_wrapper(timer):
-        started = time.perf_counter()
+        started, cpu = time.perf_counter(), time.process_time()
         facts = case.run()
         elapsed = time.perf_counter() - started
+        facts["cpu_s"] = time.process_time() - cpu
     return elapsed, timer, facts
+
+
+@contextmanager
+def quiet_request_logs():
+    """The 4xx/5xx warnings Django logs per request: the table reports failures, the log would repeat them."""
+    loggers = [logging.getLogger(name) for name in ("django.request", "django.security")]
+    levels = [logger.level for logger in loggers]
+    for logger in loggers:
+        logger.setLevel(logging.CRITICAL)
+    try:
+        yield
+    finally:
+        for logger, level in zip(loggers, levels):
+            logger.setLevel(level)
 
 
 def measure(case: Case, repeats: int, memory: bool = True) -> Result:
     """Run a case; a failure (exception or unexpected status) is reported in the result, not raised."""
     result = Result(case.name, case.role, case.kind, notes=case.notes)
     samples = []
+    if case.warm_up if case.warm_up is not None else case.kind in ("page", "figure"):
+        try:
+            _once(case)
+        except Exception:
+            pass  # the timed run below reports it
     for _ in range(max(1, case.repeats or repeats)):
         try:
             elapsed, timer, facts = _once(case)
@@ -116,6 +139,7 @@ def measure(case: Case, repeats: int, memory: bool = True) -> Result:
             result.error = facts.get("error") or f"HTTP {result.status}, expected {'/'.join(map(str, case.expect))}"
         result.rows, result.bytes = facts.get("rows"), facts.get("bytes")
         samples.append((elapsed, timer))
+        result.cpu_ms.append(facts["cpu_s"] * 1000)
     if samples:
         result.runs_ms = [s[0] * 1000 for s in samples]
         median = sorted(samples, key=lambda s: s[0])[len(samples) // 2]

@@ -42,7 +42,8 @@ class Command(BaseCommand):
                 say(f"Built in {sum(build['build_seconds'].values()):.0f} s: {build['counts']}")
                 results = []
                 # As in production (DEBUG off) and as the test client needs (its host name allowed).
-                with override_settings(DEBUG=False, ALLOWED_HOSTS=[*settings.ALLOWED_HOSTS, "testserver"]):
+                with override_settings(DEBUG=False, ALLOWED_HOSTS=[*settings.ALLOWED_HOSTS, "testserver"]), \
+                        timing.quiet_request_logs():
                     for case in cases.build_cases():
                         results.append(timing.measure(case, repeats, memory=not no_memory))
                         if verbosity > 1:
