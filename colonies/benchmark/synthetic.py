@@ -253,8 +253,11 @@ class StampingWriter(Writer):
         super().flush(model)
 
 
-def build(*, tanks: int = 400, days: int = 1095, seed: int = 7, today=None, progress=None) -> dict:
-    """Fill the (empty, migrated) default database with a facility; return counts, checksum, timings."""
+def build(*, tanks: int = 400, days: int = 1095, seed: int = 7, today=None, progress=None, trials: bool = True) -> dict:
+    """Fill the (empty, migrated) default database with a facility; return counts, checksum, timings.
+
+    trials=False leaves out protocols, bookings and studies (the demo's own tests cover those).
+    """
     if tanks < 1 or days < 1:
         raise ValueError(f"tanks={tanks}, days={days}: both must be at least 1.")
     rng = random.Random(seed)
@@ -279,15 +282,16 @@ def build(*, tanks: int = 400, days: int = 1095, seed: int = 7, today=None, prog
         for i, tank in enumerate(f.tanks):
             _tank_records(rng, f, tank, writer, days, now, tz)
             if (i + 1) % 50 == 0:
-                say(f"  records: {i + 1}/{len(f.tanks)} tanks, {f.counts.get('check', 0)} checks written")
+                say(f"  records: {i + 1}/{len(f.tanks)} tanks generated, {f.counts.get('check', 0)} checks written so far")
         writer.flush()
         f.seconds["records"] = time.perf_counter() - started
         started = time.perf_counter()
         f.counts["deviation"] = followup.deviations(rng, f, now)
         f.seconds["deviations"] = time.perf_counter() - started
-        started = time.perf_counter()
-        f.counts.update(followup.trials(rng, f, seed, now))
-        f.seconds["trials"] = time.perf_counter() - started
+        if trials:
+            started = time.perf_counter()
+            f.counts.update(followup.trials(rng, f, seed, now))
+            f.seconds["trials"] = time.perf_counter() - started
     f.counts.update(tanks=len(tank_rows), rooms=Room.objects.count(), users=User.objects.count())
     return {"counts": f.counts, "checksum": checksum(), "build_seconds": {k: round(v, 2) for k, v in f.seconds.items()},
             "today": today.isoformat()}
