@@ -2,8 +2,8 @@
 
 Invented like the demo (colonies/demo.py): the Quillmoor Culture Facility's north wing, up to 12
 rooms of blackworms (LV), planarians (SM) and marine bristle worms (PD), with the demo's tank codes
-(LV-01, SM-01, PD-01...) and typical values. Records are written with bulk inserts in large batches,
-each with its history row (recorded by, at the entry time), as real use would leave them. The
+(LV-01, SM-01, PD-01...) and typical values. Records are written with direct bulk inserts in large
+batches (fastinsert.py), each with its history row (recorded by, at the entry time), as real use would leave them. The
 species care profiles are the ones the migrations installed. Runs in one transaction.
 """
 import hashlib
@@ -24,7 +24,7 @@ from colonies.flags import flags_for
 from colonies.models import Census, Check, Feeding, Room, Species, Tank, TankTarget, WaterChange
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 
-from . import followup
+from . import fastinsert, followup
 
 PASSWORD = "bench-worms-2026"
 BATCH = 5000  # rows per INSERT statement
@@ -140,7 +140,7 @@ class Writer:
         for m in [model] if model else list(self.buffers):
             rows = self.buffers[m]
             if rows:
-                bulk_create_with_history(rows, m, batch_size=BATCH, default_change_reason="Entered")
+                fastinsert.insert_with_history(m, rows, "Entered")
                 self.counts[m._meta.model_name] = self.counts.get(m._meta.model_name, 0) + len(rows)
                 self.buffers[m] = []
 
@@ -284,6 +284,8 @@ def build(*, tanks: int = 400, days: int = 1095, seed: int = 7, today=None, prog
             if (i + 1) % 50 == 0:
                 say(f"  records: {i + 1}/{len(f.tanks)} tanks generated, {f.counts.get('check', 0)} checks written so far")
         writer.flush()
+        record_models = list(writer.buffers)
+        fastinsert.reset_sequences(record_models + [m.history.model for m in record_models])
         f.seconds["records"] = time.perf_counter() - started
         started = time.perf_counter()
         f.counts["deviation"] = followup.deviations(rng, f, now)
