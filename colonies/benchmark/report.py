@@ -1,0 +1,56 @@
+"""The benchmark's table and JSON file."""
+import json
+import os
+import statistics
+import platform
+
+import django
+from django.db import connection
+
+HEADER = ("page", "role", "median ms", "max ms", "queries", "SQL ms", "notes")
+
+
+def _notes(r) -> str:
+    parts = []
+    if not r.ok:
+        parts.append(f"FAILED: {r.error}")
+    if r.cpu_ms:
+        parts.append(f"CPU {statistics.median(r.cpu_ms):,.0f} ms")
+    if r.rows is not None and r.rows_per_s:
+        parts.append(f"{r.rows} rows, {r.rows_per_s:,.0f} rows/s")
+    if r.bytes is not None and r.kind == "export":
+        parts.append(f"{r.bytes / 2**20:.1f} MiB")
+    if r.peak_mib is not None:
+        parts.append(f"peak {r.peak_mib:.0f} MiB")
+    if r.notes:
+        parts.append(r.notes)
+    return "; ".join(parts)
+
+
+def _num(value, fmt="{:,.0f}") -> str:
+    return "" if value is None else fmt.format(value)
+
+
+def table(results) -> str:
+    rows = [HEADER] + [(r.name, r.role, _num(r.median_ms, "{:,.1f}"), _num(r.max_ms, "{:,.1f}"), _num(r.queries),
+                        _num(r.sql_ms, "{:,.1f}"), _notes(r)) for r in results]
+    widths = [max(len(row[i]) for row in rows) for i in range(len(HEADER) - 1)]
+    lines = []
+    for n, row in enumerate(rows):
+        lines.append("| " + " | ".join(cell.ljust(w) for cell, w in zip(row, widths)) + f" | {row[-1]} |")
+        if n == 0:
+            lines.append("|" + "|".join("-" * (w + 2) for w in widths) + "|---|")
+    return "\n".join(lines)
+
+
+def document(*, options: dict, build: dict, results, seconds: float) -> dict:
+    return {
+        "engine": connection.vendor, "django": django.get_version(), "python": platform.python_version(),
+        "load_average": os.getloadavg(), "options": options, "build": build, "total_seconds": round(seconds, 1),
+        "results": [r.as_dict() for r in results],
+    }
+
+
+def write_json(path: str, doc: dict) -> None:
+    with open(path, "w") as handle:
+        json.dump(doc, handle, indent=1, default=str)
