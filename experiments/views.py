@@ -18,11 +18,11 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from colonies.exports import spreadsheet_safe
+from colonies.exports import safe_frame
 from colonies.models import Room
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
-from . import charts, reports, services
+from . import charts, filetypes, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
                     ScoreForm, StudyForm, TrialForm)
@@ -81,13 +81,14 @@ def _may_set_aside(user, trial) -> bool:
 @role_required(*READ)
 def index(request):
     today = timezone.localdate()
-    services.expire_bookings(today)  # lazy expiry; the expire_bookings command does the same on a schedule
+    # Reading writes nothing: bookings past their day are left to the expire_bookings command and are not
+    # listed here (they hold no animals: availability counts only bookings from today on).
     studies = Study.objects.select_related("owner", "protocol").annotate(
         n_trials=Count("trials", filter=Q(trials__voided_at__isnull=True)),
         n_scored=Count("trials", filter=Q(trials__voided_at__isnull=True, trials__disperse_s__isnull=False)))
     ctx = {
         "studies": studies,
-        "bookings": Booking.objects.active().select_related("tank__room", "booked_by", "protocol")
+        "bookings": Booking.objects.holding(today).select_related("tank__room", "booked_by", "protocol")
                                    .filter(needed_on__lte=today + timedelta(days=31)),
         "cohorts": Cohort.objects.filter(end="").select_related("origin_tank", "protocol")
                                  .annotate(n_exposures=Count("trials", filter=Q(trials__voided_at__isnull=True))),
@@ -142,6 +143,7 @@ def booking_new(request):
 @role_required(*READ)
 def booking_detail(request, pk):
     booking = _get_booking(pk)
+    booking.shown_status = booking.status_on(timezone.localdate())
     ctx = {"booking": booking, "cohort": Cohort.objects.filter(booking=booking).first(),
            "available": services.available(booking.tank), "population": services.current_population(booking.tank),
            "draw_form": DrawForm(booking=booking), "cancel_form": ReasonForm(),
@@ -204,7 +206,6 @@ def _calendar_days(view: str, start: date) -> list[date]:
 @require_GET
 @role_required(*READ)
 def calendar(request):
-    services.expire_bookings()
     form = CalendarForm(request.GET or None)
     form.is_valid()
     data = getattr(form, "cleaned_data", {}) or {}
@@ -215,7 +216,9 @@ def calendar(request):
     bookings = (Booking.objects.between(days[0], days[-1]).in_room(room).exclude(status=Booking.Status.CANCELLED)
                 .select_related("tank__room", "booked_by", "protocol"))
     by_day: dict[date, list] = {d: [] for d in days}
+    today = timezone.localdate()
     for b in bookings:
+        b.shown_status = b.status_on(today)  # a booking past its day shows as expired before the command runs
         by_day[b.needed_on].append(b)
     step = timedelta(days=7) if view == "week" else timedelta(days=31)
     base = start if view == "week" else start.replace(day=1)
@@ -224,7 +227,7 @@ def calendar(request):
         prev_start, next_start = (base - timedelta(days=1)).replace(day=1), next_start.replace(day=1)
     ctx = {"form": form, "view": view, "room": room, "start": start, "rooms": Room.objects.all(),
            "weeks": [[(d, by_day[d]) for d in days[i:i + 7]] for i in range(0, len(days), 7)],
-           "month": start.month if view == "month" else None, "today": timezone.localdate(),
+           "month": start.month if view == "month" else None, "today": today,
            "prev": prev_start, "next": next_start, "total": sum(b.animals for b in bookings)}
     return render(request, "experiments/calendar.html", ctx)
 
@@ -282,7 +285,7 @@ def study_new(request):
             user=request.user, code=d["code"], title=d["title"], protocol=d["protocol"], conditions=d["conditions"],
             replicates=d["replicates"], method=d["method"], seed=seed, blinded=d["blinded"],
             observation_window_s=d["observation_window_s"], question=d["question"],
-            exclusion_criteria=d["exclusion_criteria"])
+            exclusion_criteria=d["exclusion_criteria"], scorer_not_operator=d["scorer_not_operator"])
         messages.success(request, f"Study {study.code} created: {len(study.allocation)} trials allocated "
                                   f"({study.get_method_display().lower()}, seed {study.seed}).")
         return redirect(study)
@@ -301,6 +304,7 @@ def study_detail(request, code):
     blind = study.hides_conditions_from(request.user)
     ctx = {"study": study, "trials": trials, "blind": blind, "is_owner": request.user.pk == study.owner_id,
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
+           "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
            "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided)}
     if not blind:
         frame = reports.tidy_frame(trials)
@@ -336,11 +340,9 @@ def _analysis_for(request, code):
 
 
 def _csv_response(frame, filename: str) -> HttpResponse:
-    # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe.
-    # Only object (text) columns are touched, and spreadsheet_safe leaves any non-string in them
-    # alone, so numbers, negative ones included, are written as they are.
-    text = frame.select_dtypes(include="object").columns
-    frame = frame.assign(**{c: frame[c].map(spreadsheet_safe) for c in text})
+    # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe;
+    # numbers, negative ones included, are written as they are (colonies/exports.py).
+    frame = safe_frame(frame)
     buffer = io.StringIO()
     frame.to_csv(buffer, index=False, quoting=csv.QUOTE_MINIMAL, float_format="%.6g")
     response = HttpResponse(buffer.getvalue(), content_type="text/csv; charset=utf-8")
@@ -426,6 +428,7 @@ def _trial_page(request, study, form, status=200, refusal=None):
 @role_required(*RUN)
 def trial_new(request, code):
     study = _get_study(code)
+    services.require_study_owner(request.user, study, "add trials")
     slots = _open_slots(study)
     if not slots or study.is_locked:
         messages.info(request, f"Study {study.code} has no open slots.")
@@ -470,15 +473,31 @@ def trial_detail(request, pk):
     ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
            "attachment_form": AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
            "may_set_aside": has_role(request.user, *RUN) and _may_set_aside(request.user, trial),
+           "may_attach": has_role(request.user, *RUN) and services.may_change_study(request.user, trial.study),
+           "may_score": has_role(request.user, *RUN) and _score_refusal(request.user, trial) is None,
            "cautions": [] if blind else trial.cautions(),
            "override": trial.override if reports._has_override(trial) else None}
     return render(request, "experiments/trial_detail.html", ctx)
+
+
+def _score_refusal(user, trial) -> str | None:
+    """Why this user may not score (or correct) the trial, or None; services.score_trial checks again."""
+    if trial.study.scorer_not_operator and trial.run_by_id == user.pk:
+        return (f"Scorer: you ran {trial.code}, and study {trial.study.code} requires that the scorer is not the "
+                "operator; another person scores it.")
+    if trial.is_scored and not services.may_change_study(user, trial.study):
+        return (f"Only the study's owner ({trial.study.owner.get_username()}) or a manager may correct scores "
+                f"in study {trial.study.code}.")
+    return None
 
 
 @require_http_methods(["GET", "POST"])
 @role_required(*RUN)
 def trial_score(request, pk):
     trial = _get_trial(pk)
+    refusal = _score_refusal(request.user, trial)
+    if refusal:
+        raise PermissionDenied(refusal)
     form = ScoreForm(request.POST or None, instance=trial)
     if request.method == "POST" and form.is_valid():
         try:
@@ -518,13 +537,22 @@ def trial_set_aside(request, pk, action):
 @role_required(*RUN)
 def attachment_add(request, pk):
     trial = _get_trial(pk)
+    services.require_study_owner(request.user, trial.study, "attach files")
+    refused = getattr(request, "upload_refusals", {})  # set while streaming by experiments.uploads
     form = AttachmentForm(request.POST, request.FILES)
-    if form.is_valid():
+    if refused:
+        for field, message in refused.items():
+            form.add_error(field if field in form.fields else None, message)
+    if not form.is_valid():
+        messages.error(request, "Nothing was stored: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+        return redirect(trial)
+    try:
         a = services.add_attachment(user=request.user, trial=trial, upload=form.cleaned_data["file"],
                                     kind=form.cleaned_data["kind"], caption=form.cleaned_data["caption"])
-        messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
-    else:
-        messages.error(request, "Nothing was stored: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+    except services.Refused as refusal:
+        messages.error(request, f"Nothing was stored. {refusal}")
+        return redirect(trial)
+    messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
     return redirect(trial)
 
 
@@ -533,7 +561,12 @@ def attachment_add(request, pk):
 def attachment(request, pk):
     # Photos and videos carry the code, not the condition: blinded scorers need them.
     item = get_object_or_404(Attachment.objects.current(), pk=pk)
-    return FileResponse(item.file.open("rb"), as_attachment=True, filename=item.name)
+    handle = item.file.open("rb")
+    file_type = filetypes.sniff(handle.read(filetypes.SNIFF_BYTES))
+    handle.seek(0)
+    # Served as the type its content shows (never as HTML or script), always as a download.
+    content_type = filetypes.TYPES[file_type][1] if file_type else "application/octet-stream"
+    return FileResponse(handle, as_attachment=True, filename=item.name, content_type=content_type)
 
 
 # ---------------------------------------------------------------------------------------------
