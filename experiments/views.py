@@ -538,8 +538,8 @@ def trial_set_aside(request, pk, action):
 def attachment_add(request, pk):
     trial = _get_trial(pk)
     services.require_study_owner(request.user, trial.study, "attach files")
+    form = AttachmentForm(request.POST, request.FILES)  # reading FILES parses the upload
     refused = getattr(request, "upload_refusals", {})  # set while streaming by experiments.uploads
-    form = AttachmentForm(request.POST, request.FILES)
     if refused:
         for field, message in refused.items():
             form.add_error(field if field in form.fields else None, message)
