@@ -8,7 +8,7 @@ from django.http import HttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from .exports import safe_frame, spreadsheet_safe
+from .exports import frame_csv, spreadsheet_safe
 from .filters import DeviationFilter
 from .models import Deviation
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
@@ -79,7 +79,7 @@ def register_csv(request):
                                         "opened_at_utc", "last_seen_at_utc", "evidence_count", "summary",
                                         "acknowledged_at_utc", "acknowledged_by", "closed_at_utc", "closed_by",
                                         "hours_to_close", "corrective_action"])
-    response = HttpResponse(safe_frame(frame).to_csv(index=False), content_type="text/csv; charset=utf-8")
+    response = HttpResponse(frame_csv(frame), content_type="text/csv; charset=utf-8")
     response["Content-Disposition"] = 'attachment; filename="vermilog-deviations.csv"'
     return response
 

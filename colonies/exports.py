@@ -27,3 +27,9 @@ def safe_frame(frame: pd.DataFrame) -> pd.DataFrame:
     if not text:
         return frame
     return frame.assign(**{str(c): frame[c].astype(object).map(spreadsheet_safe) for c in text})
+
+
+def frame_csv(frame: pd.DataFrame, **options) -> str:
+    """The frame as CSV text, spreadsheet-safe. Rows end in CRLF (RFC 4180), which also makes the csv
+    writer quote a cell holding a bare CR, so a note with line breaks stays one cell."""
+    return safe_frame(frame).to_csv(index=False, lineterminator="\r\n", **options)

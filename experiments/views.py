@@ -4,7 +4,6 @@ Roles: researchers and managers book, draw and run trials; managers also record 
 see the ledger; technicians read. Login is enforced by LoginRequiredMiddleware.
 """
 import csv
-import io
 import random
 from datetime import date, timedelta
 
@@ -18,7 +17,7 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from colonies.exports import safe_frame
+from colonies.exports import frame_csv
 from colonies.models import Room
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
@@ -342,10 +341,7 @@ def _analysis_for(request, code):
 def _csv_response(frame, filename: str) -> HttpResponse:
     # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe;
     # numbers, negative ones included, are written as they are (colonies/exports.py).
-    frame = safe_frame(frame)
-    buffer = io.StringIO()
-    frame.to_csv(buffer, index=False, quoting=csv.QUOTE_MINIMAL, float_format="%.6g")
-    response = HttpResponse(buffer.getvalue(), content_type="text/csv; charset=utf-8")
+    response = HttpResponse(frame_csv(frame, quoting=csv.QUOTE_MINIMAL, float_format="%.6g"), content_type="text/csv; charset=utf-8")
     response["Content-Disposition"] = f'attachment; filename="{filename}"'
     return response
 
