@@ -21,12 +21,13 @@ def _minute(dt) -> str:
 
 
 class ReasonForm(forms.Form):
-    reason = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), help_text="Required; kept in the history.")
+    reason = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), help_text="Required; kept in the history.",
+                             error_messages={"required": "Reason: give a reason; it is kept in the history."})
 
     def clean_reason(self):
         reason = self.cleaned_data["reason"].strip()
         if not reason:
-            raise forms.ValidationError("Give a reason.")
+            raise forms.ValidationError("Reason: give a reason; it is kept in the history.")
         return reason
 
 

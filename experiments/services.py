@@ -199,7 +199,7 @@ def book(*, user, protocol: Protocol, tank: Tank, animals: int, needed_on: date,
 def cancel_booking(*, user, booking: Booking, reason: str) -> Booking:
     reason = (reason or "").strip()
     if not reason:
-        raise Refused("A reason is required to cancel a booking.")
+        raise Refused("Reason: a reason is required to cancel a booking.")
     with transaction.atomic():
         booking = Booking.objects.select_for_update().get(pk=booking.pk)
         if not booking.is_active:
@@ -267,16 +267,18 @@ def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = Non
         if not cohort.is_active:
             raise Refused(f"Cohort {cohort.label} has already ended ({cohort.get_end_display().lower()}).")
         if at < cohort.drawn_at:
-            raise Refused(f"End time {timezone.localtime(at):%Y-%m-%d %H:%M} is before the cohort was drawn.")
+            raise Refused(f"End time {timezone.localtime(at):%Y-%m-%d %H:%M} is before the cohort was drawn "
+                          f"({timezone.localtime(cohort.drawn_at):%Y-%m-%d %H:%M}).")
         if end == Cohort.End.RETURNED:
             if returned_to is None or returned_count is None:
-                raise Refused("Returned: give the tank and the number of animals put back.")
+                raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
             if not 0 <= returned_count <= cohort.size:
                 raise Refused(f"Animals returned {returned_count} is not possible: allowed range 0–{cohort.size}.")
             if returned_to.species_id != cohort.origin_tank.species_id:
-                raise Refused(f"Tank {returned_to.code} holds another species; animals go back to a tank of their own.")
+                raise Refused(f"Returned to: tank {returned_to.code} holds another species; animals go back to a tank "
+                              "of their own.")
             if returned_to.status == Tank.Status.RETIRED:
-                raise Refused(f"Tank {returned_to.code} is retired.")
+                raise Refused(f"Returned to: tank {returned_to.code} is retired.")
             cohort.returned_to, cohort.returned_count = returned_to, returned_count
         elif end == Cohort.End.RETIRED:
             if not method.strip():
@@ -337,7 +339,7 @@ def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> S
     if user.pk != study.owner_id:
         raise PermissionDenied("Only the study's owner may unblind it.")
     if not reason:
-        raise Refused("A reason is required to unblind a study.")
+        raise Refused("Reason: a reason is required to unblind a study.")
     with transaction.atomic():
         study = Study.objects.select_for_update().get(pk=study.pk)
         if not study.is_blind:
@@ -522,7 +524,7 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
 def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:
     reason = (reason or "").strip()
     if not reason:
-        raise Refused("A reason is required to exclude a trial.")
+        raise Refused("Reason: a reason is required to exclude a trial.")
     if trial.is_excluded:
         raise Refused(f"{trial} is already excluded.")
     if trial.study.is_locked:
@@ -534,6 +536,8 @@ def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:
 
 def void_trial(*, user, trial: Trial, reason: str) -> Trial:
     """A trial entered in error (wrong study, never ran): hidden from analyses and from exposure counts."""
+    if not (reason or "").strip():
+        raise Refused("Reason: a reason is required to void a trial.")
     if trial.study.is_locked:
         raise Refused(f"Study {trial.study.code} has locked outcomes; trials can no longer be voided.")
     if hasattr(trial, "override"):

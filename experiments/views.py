@@ -32,6 +32,15 @@ RUN = (RESEARCHER,)
 TRIAL_RELATED = ("study", "cohort__origin_tank", "protocol", "run_by", "scored_by", "override__recorded_by")
 
 
+def _form_errors(form) -> str:
+    """A bound form's errors as one line, each message led by its field's label unless it names it already."""
+    parts = []
+    for name, msgs in form.errors.items():
+        label = str(form[name].label) if name in form.fields else ""
+        parts += [m if not label or m.lower().startswith(label.lower()) else f"{label}: {m}" for m in msgs]
+    return " ".join(parts)
+
+
 def _error_text(error) -> str:
     if isinstance(error, ValidationError):
         return " ".join(m for msgs in error.message_dict.values() for m in msgs) if hasattr(error, "error_dict") \
@@ -158,7 +167,7 @@ def booking_cancel(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may cancel a booking.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, "Give a reason to cancel the booking; nothing was changed.")
+        messages.error(request, "Reason: give a reason to cancel the booking; nothing was changed.")
         return redirect(booking)
     try:
         services.cancel_booking(user=request.user, booking=booking, reason=form.cleaned_data["reason"])
@@ -176,7 +185,7 @@ def booking_draw(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may draw the animals.")
     form = DrawForm(request.POST, booking=booking)
     if not form.is_valid():
-        messages.error(request, " ".join(m for msgs in form.errors.values() for m in msgs))
+        messages.error(request, "Nothing was drawn: " + _form_errors(form))
         return redirect(booking)
     try:
         cohort = services.draw(user=request.user, booking=booking, count=form.cleaned_data["count"],
@@ -258,7 +267,7 @@ def cohort_end(request, pk):
         raise PermissionDenied("Only the researcher who drew the cohort or a manager may end it.")
     form = CohortEndForm(request.POST, cohort=cohort)
     if not form.is_valid():
-        messages.error(request, "Nothing was saved: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+        messages.error(request, "Nothing was saved: " + _form_errors(form))
         return redirect(cohort)
     d = form.cleaned_data
     try:
@@ -319,7 +328,7 @@ def study_unblind(request, code):
     study = _get_study(code)
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, "Give a reason to unblind; nothing was changed.")
+        messages.error(request, "Reason: give a reason to unblind; nothing was changed.")
         return redirect(study)
     try:
         services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"])
@@ -516,7 +525,7 @@ def trial_set_aside(request, pk, action):
         raise PermissionDenied("Only the study's owner or a manager may exclude or void its trials.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, "Give a reason; nothing was changed.")
+        messages.error(request, f"Reason: give a reason to {action} the trial; nothing was changed.")
         return redirect(trial)
     handler = {"exclude": services.exclude_trial, "void": services.void_trial}.get(action)
     if handler is None:
@@ -540,7 +549,7 @@ def attachment_add(request, pk):
         for field, message in refused.items():
             form.add_error(field if field in form.fields else None, message)
     if not form.is_valid():
-        messages.error(request, "Nothing was stored: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+        messages.error(request, "Nothing was stored: " + _form_errors(form))
         return redirect(trial)
     try:
         a = services.add_attachment(user=request.user, trial=trial, upload=form.cleaned_data["file"],
