@@ -3,11 +3,14 @@ import getpass
 import os
 import subprocess
 import sys
+from datetime import timedelta
 from pathlib import Path
 
 import pytest
 from django.conf import settings
 from django.contrib.auth.models import User
+from django.contrib.sessions.models import Session
+from django.utils import timezone
 from django.core.management import call_command
 from django.core.management.base import CommandError
 from django.urls import reverse
@@ -59,11 +62,29 @@ def test_throttling_defaults():
 # ---------------------------------------------------------------------------------------------
 # Idle sessions
 # ---------------------------------------------------------------------------------------------
-def test_every_request_moves_the_session_expiry_forward(client, technician):
-    assert settings.SESSION_COOKIE_AGE == 8 * 3600 and settings.SESSION_SAVE_EVERY_REQUEST
+def test_every_request_moves_the_session_expiry_forward(client, technician, settings):
+    settings.SESSION_SAVE_EVERY_REQUEST = True  # as in production (tests/conftest.py turns it off for query counts)
+    assert settings.SESSION_COOKIE_AGE == 8 * 3600
     client.force_login(technician)
+    key = client.session.session_key
+    Session.objects.filter(session_key=key).update(expire_date=timezone.now() + timedelta(minutes=5))
     response = client.get(reverse("colonies:home"))
     assert response.cookies[settings.SESSION_COOKIE_NAME]["max-age"] == 8 * 3600
+    left = Session.objects.get(session_key=key).expire_date - timezone.now()
+    assert timedelta(hours=7, minutes=59) < left <= timedelta(hours=8)
+
+
+def test_an_idle_session_ends(client, technician, settings):
+    settings.SESSION_SAVE_EVERY_REQUEST = True
+    client.force_login(technician)
+    Session.objects.filter(session_key=client.session.session_key).update(
+        expire_date=timezone.now() - timedelta(seconds=1))
+    response = client.get(reverse("colonies:home"))
+    assert response.status_code == 302 and response["Location"].startswith(reverse("login"))
+
+
+def test_production_saves_the_session_on_every_request():
+    assert _settings_of("SESSION_SAVE_EVERY_REQUEST", "SESSION_COOKIE_AGE", DEBUG="1") == ["True", "28800"]
 
 
 # ---------------------------------------------------------------------------------------------
