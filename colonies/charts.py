@@ -25,6 +25,7 @@ from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 
 from . import parameters  # noqa: E402  (pure registry)
+from .exports import frame_csv  # noqa: E402  (pure)
 
 __all__ = ["OVERVIEW_COLUMNS", "TANK_COLUMNS", "OKABE_ITO", "overview_figure", "overview_frame", "tank_figure",
            "tank_frame", "to_csv"]
@@ -87,7 +88,8 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
 
 
 def to_csv(frame: pd.DataFrame) -> bytes:
-    return frame.to_csv(index=False, date_format="%Y-%m-%dT%H:%M:%S%z").encode("utf-8")
+    """The chart's rows as CSV, every text cell defused for spreadsheets (colonies/exports.py)."""
+    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z").encode("utf-8")
 
 
 def _naive(times: pd.Series) -> pd.Series:

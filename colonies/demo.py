@@ -7,6 +7,7 @@ import math
 import random
 from datetime import datetime, time, timedelta
 
+from django.contrib.auth import password_validation
 from django.contrib.auth.models import Group, User
 from django.db import transaction
 from django.utils import timezone
@@ -75,8 +76,10 @@ def database_has_data() -> bool:
 def _users():
     users = {}
     for username, first, last, role in DEMO_USERS:
-        user = User.objects.create_user(username, f"{username}@quillmoor.invalid", DEMO_PASSWORD,
-                                        first_name=first, last_name=last)
+        user = User(username=username, email=f"{username}@quillmoor.invalid", first_name=first, last_name=last)
+        # The shared demo password goes through the same validators as any other (it passes them).
+        password_validation.validate_password(DEMO_PASSWORD, user)
+        user = User.objects.create_user(username, user.email, DEMO_PASSWORD, first_name=first, last_name=last)
         user.groups.add(Group.objects.get(name=role))
         if role == MANAGER:
             user.is_staff = True

@@ -2,12 +2,13 @@
 import pandas as pd
 from django import forms
 from django.contrib import messages
+from django.core.exceptions import PermissionDenied
 from django.db.models import Count, F
 from django.http import HttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from .exports import spreadsheet_safe
+from .exports import frame_csv, spreadsheet_safe
 from .filters import DeviationFilter
 from .models import Deviation
 from .idempotency import once_per_submission
@@ -79,7 +80,7 @@ def register_csv(request):
                                         "opened_at_utc", "last_seen_at_utc", "evidence_count", "summary",
                                         "acknowledged_at_utc", "acknowledged_by", "closed_at_utc", "closed_by",
                                         "hours_to_close", "corrective_action"])
-    response = HttpResponse(frame.to_csv(index=False), content_type="text/csv; charset=utf-8")
+    response = HttpResponse(frame_csv(frame), content_type="text/csv; charset=utf-8")
     response["Content-Disposition"] = 'attachment; filename="vermilog-deviations.csv"'
     return response
 
@@ -91,7 +92,7 @@ def detail(request, pk):
     history = dev.history.select_related("history_user").order_by("-history_date")[:50]
     return render(request, "colonies/deviation_detail.html",
                   {"dev": dev, "form": CloseForm(), "history": history,
-                   "evidence": _evidence_rows(dev)})
+                   "evidence": _evidence_rows(dev), "close_refusal": dev.close_refusal(request.user)})
 
 
 @require_POST
@@ -113,6 +114,9 @@ def acknowledge(request, pk):
 @once_per_submission
 def close(request, pk):
     dev = get_object_or_404(_register_qs(), pk=pk)
+    refusal = dev.close_refusal(request.user)
+    if refusal:
+        raise PermissionDenied(refusal)
     form = CloseForm(request.POST)
     if form.is_valid():
         try:
@@ -124,5 +128,5 @@ def close(request, pk):
             return redirect(dev)
     history = dev.history.select_related("history_user").order_by("-history_date")[:50]
     return render(request, "colonies/deviation_detail.html",
-                  {"dev": dev, "form": form, "history": history, "evidence": _evidence_rows(dev)},
+                  {"dev": dev, "form": form, "history": history, "evidence": _evidence_rows(dev), "close_refusal": None},
                   status=400)

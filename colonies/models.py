@@ -6,6 +6,7 @@ are never deleted through the application; they are voided with a reason and sta
 from datetime import timedelta
 
 from django.conf import settings
+from django.core.exceptions import PermissionDenied
 from django.core.validators import MinValueValidator, MaxValueValidator, RegexValidator
 from django.db import models, transaction
 from django.db.models import Max, OuterRef, Q, Subquery, Value
@@ -659,7 +660,21 @@ class Deviation(models.Model):
             self._change_reason = "Acknowledged"
             self.save()
 
+    MANAGER_CLOSES = (Rule.PROTOCOL_LIMIT,)  # a manager's override is closed by a manager
+
+    def close_refusal(self, user) -> str | None:
+        """Why this user may not close the deviation, or None (the role check of the views comes first)."""
+        from .roles import MANAGER, has_role  # roles imports no models; kept local to keep models first
+
+        if self.rule in self.MANAGER_CLOSES and not has_role(user, MANAGER):
+            return (f"Rule: a {self.get_rule_display().lower()} deviation records a manager's override; "
+                    "only a manager may close it.")
+        return None
+
     def close(self, *, user, corrective_action: str) -> None:
+        refusal = self.close_refusal(user)
+        if refusal:
+            raise PermissionDenied(refusal)
         action = (corrective_action or "").strip()
         if not action:
             raise ValueError("Corrective action: describe what was done before closing the deviation.")

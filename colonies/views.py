@@ -17,7 +17,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from . import derived, health_views, parameters, services
 from . import labels as labels_module
-from .exports import spreadsheet_safe
+from .exports import safe_row, spreadsheet_safe
 from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
@@ -420,7 +420,7 @@ def checks_csv(request):
     """All checks matching the filter, one row each; columns come from the parameter registry."""
     header, rows = _check_export(request)
     writer = csv.writer(_Echo())
-    response = StreamingHttpResponse((writer.writerow(r) for r in itertools.chain([header], rows)),
+    response = StreamingHttpResponse((writer.writerow(safe_row(r)) for r in itertools.chain([header], rows)),
                                      content_type="text/csv; charset=utf-8")
     response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
     return response
@@ -431,7 +431,7 @@ def checks_csv(request):
 def checks_xlsx(request):
     """The same table as the CSV, as a spreadsheet (one sheet; times in UTC)."""
     header, rows = _check_export(request)
-    frame = pd.DataFrame(list(rows), columns=header).replace("", None)
+    frame = pd.DataFrame([safe_row(r) for r in rows], columns=header).replace("", None)
     buffer = io.BytesIO()
     with pd.ExcelWriter(buffer, engine="openpyxl") as writer:
         frame.to_excel(writer, sheet_name="checks", index=False, freeze_panes=(1, 2))

@@ -6,6 +6,7 @@ from django.utils import timezone
 from colonies.forms import reason_field
 from colonies.models import Species, Tank
 
+from . import filetypes, uploads
 from .allocation import BLOCK
 from .models import Attachment, Cohort, Protocol, Stimulus, Study, Trial
 from .validators import BOUNDS, outside_message
@@ -21,12 +22,13 @@ def _minute(dt) -> str:
 
 
 class ReasonForm(forms.Form):
-    reason = reason_field(help_text="Required; kept in the history.")
+    reason = reason_field(help_text="Required; kept in the history.",
+                          error_messages={"required": "Reason: give a reason; it is kept in the history."})
 
     def clean_reason(self):
         reason = self.cleaned_data["reason"].strip()
         if not reason:
-            raise forms.ValidationError("Give a reason.")
+            raise forms.ValidationError("Reason: give a reason; it is kept in the history.")
         return reason
 
 
@@ -150,6 +152,9 @@ class StudyForm(forms.Form):
                                               help_text="Still clumped at the end: censored at the window.")
     exclusion_criteria = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
     blinded = forms.BooleanField(required=False, initial=True, help_text="Scorers see a code, not the condition.")
+    scorer_not_operator = forms.BooleanField(
+        required=False, initial=False, label="Scorer must not be the operator",
+        help_text="The person who ran a trial knows its condition; tick to have someone else score every trial.")
 
     def __init__(self, *args, **kwargs):
         super().__init__(*args, **kwargs)
@@ -377,18 +382,36 @@ class ScoreForm(OutcomeFields):
 
 
 class AttachmentForm(forms.ModelForm):
+    """A file is taken for what its first bytes say it is (experiments/filetypes.py), not for its name."""
+
     class Meta:
         model = Attachment
         fields = ["file", "kind", "caption"]
-
-    MAX_BYTES = 500 * 1024 * 1024
+        error_messages = {"file": {"required": "File: choose a file to attach.",
+                                   "empty": "File: the file is empty; nothing was stored."}}
 
     def clean_file(self):
         upload = self.cleaned_data["file"]
-        if upload.size > self.MAX_BYTES:
-            raise forms.ValidationError(f"File size {upload.size / 1e6:.0f} MB is above the limit of "
-                                        f"{self.MAX_BYTES / 1e6:.0f} MB.")
+        if upload.size > uploads.limit_bytes():
+            raise forms.ValidationError(f"File '{upload.name}' is {upload.size / 1e6:.1f} MB, above the limit of "
+                                        f"{uploads.limit_text()}.")
+        head = upload.read(filetypes.SNIFF_BYTES)
+        upload.seek(0)
+        self.file_type = filetypes.sniff(head)
+        if self.file_type is None:
+            raise forms.ValidationError(f"File '{upload.name}' is not an allowed type: allowed are "
+                                        f"{filetypes.allowed_text('photo')}, {filetypes.allowed_text('video')}, "
+                                        "PDF and plain text or CSV (told by the file's content).")
         return upload
+
+    def clean(self):
+        data = super().clean()
+        kind, file_type = data.get("kind"), getattr(self, "file_type", None)
+        if kind and file_type and file_type not in filetypes.ALLOWED_BY_KIND[kind]:
+            self.add_error("kind", f"Kind '{Attachment.Kind(kind).label}' does not fit a "
+                                   f"{filetypes.TYPES[file_type][0]}: a {Attachment.Kind(kind).label.lower()} is "
+                                   f"{filetypes.allowed_text(kind)}.")
+        return data
 
 
 class CalendarForm(forms.Form):

@@ -224,6 +224,10 @@ class BookingQuerySet(models.QuerySet):
     def active(self):
         return self.filter(status=Booking.Status.ACTIVE)
 
+    def holding(self, today):
+        """Active bookings that still hold animals: their day is today or later (past ones await expiry)."""
+        return self.active().filter(needed_on__gte=today)
+
     def between(self, first, last):
         return self.filter(needed_on__gte=first, needed_on__lte=last)
 
@@ -277,6 +281,13 @@ class Booking(models.Model):
     @property
     def is_active(self) -> bool:
         return self.status == self.Status.ACTIVE
+
+    def status_on(self, today) -> "Booking.Status":
+        """The status as pages show it: an active booking past its day is expired, whether or not the
+        expire_bookings command has written that yet (pages never write)."""
+        if self.status == self.Status.ACTIVE and self.needed_on < today:
+            return self.Status.EXPIRED
+        return self.Status(self.status)
 
 
 class Cohort(models.Model):
@@ -372,6 +383,9 @@ class Study(models.Model):
     allocation = models.JSONField(default=list, blank=True,
                                   help_text="The realised allocation: slot, code, condition, replicate.")
     blinded = models.BooleanField(default=True, help_text="Scorers see a code, not the condition, until unblinding.")
+    scorer_not_operator = models.BooleanField(
+        default=False, verbose_name="Scorer must not be the operator",
+        help_text="The person who ran a trial (and so knows its condition) may not score it; another person does.")
     outcomes_locked_at = models.DateTimeField(null=True, blank=True)
     unblinded_at = models.DateTimeField(null=True, blank=True)
     unblinded_by = _user_fk(null=True, blank=True)

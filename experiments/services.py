@@ -66,7 +66,7 @@ class LimitRefused(Refused):
 EPOCH = datetime(1970, 1, 1, tzinfo=dt_timezone.utc)
 
 
-def tanks_with_availability(queryset=None):
+def tanks_with_availability(queryset=None, today: date | None = None):
     """Annotate the tank's newest estimate and what happened since, in one query.
 
     The newest estimate is the latest of: its current census, the animals that stayed at its
@@ -89,7 +89,8 @@ def tanks_with_availability(queryset=None):
     returned = (Cohort.objects.filter(returned_to=OuterRef("pk"), end=Cohort.End.RETURNED,
                                       ended_at__gt=OuterRef("base_at"))
                 .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
-    booked = (Booking.objects.active().filter(tank=OuterRef("pk"))
+    # A booking past its day holds no animals, even before expire_bookings has marked it expired.
+    booked = (Booking.objects.holding(today or timezone.localdate()).filter(tank=OuterRef("pk"))
               .order_by().values("tank").annotate(n=Sum("animals")).values("n"))
     zero = Value(0, output_field=IntegerField())
     epoch = Value(EPOCH, output_field=DateTimeField())
@@ -181,7 +182,7 @@ def book(*, user, protocol: Protocol, tank: Tank, animals: int, needed_on: date,
         locked = Tank.objects.select_for_update().get(pk=tank.pk)  # serialises bookings and draws on this tank
         if locked.status != Tank.Status.ACTIVE:
             raise Refused(f"Tank {locked.code} is {locked.get_status_display().lower()}; animals cannot be booked from it.")
-        row = tanks_with_availability(Tank.objects.filter(pk=tank.pk).select_related("species")).get()
+        row = tanks_with_availability(Tank.objects.filter(pk=tank.pk).select_related("species"), today).get()
         population, free = population_of(row), available_of(row)
         if population is None:
             raise Refused(f"Tank {row.code} has no census yet, so nothing can be booked from it.")
@@ -198,7 +199,7 @@ def book(*, user, protocol: Protocol, tank: Tank, animals: int, needed_on: date,
 def cancel_booking(*, user, booking: Booking, reason: str) -> Booking:
     reason = (reason or "").strip()
     if not reason:
-        raise Refused("A reason is required to cancel a booking.")
+        raise Refused("Reason: a reason is required to cancel a booking.")
     with transaction.atomic():
         booking = Booking.objects.select_for_update().get(pk=booking.pk)
         if not booking.is_active:
@@ -266,16 +267,18 @@ def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = Non
         if not cohort.is_active:
             raise Refused(f"Cohort {cohort.label} has already ended ({cohort.get_end_display().lower()}).")
         if at < cohort.drawn_at:
-            raise Refused(f"End time {timezone.localtime(at):%Y-%m-%d %H:%M} is before the cohort was drawn.")
+            raise Refused(f"End time {timezone.localtime(at):%Y-%m-%d %H:%M} is before the cohort was drawn "
+                          f"({timezone.localtime(cohort.drawn_at):%Y-%m-%d %H:%M}).")
         if end == Cohort.End.RETURNED:
             if returned_to is None or returned_count is None:
-                raise Refused("Returned: give the tank and the number of animals put back.")
+                raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
             if not 0 <= returned_count <= cohort.size:
                 raise Refused(f"Animals returned {returned_count} is not possible: allowed range 0–{cohort.size}.")
             if returned_to.species_id != cohort.origin_tank.species_id:
-                raise Refused(f"Tank {returned_to.code} holds another species; animals go back to a tank of their own.")
+                raise Refused(f"Returned to: tank {returned_to.code} holds another species; animals go back to a tank "
+                              "of their own.")
             if returned_to.status == Tank.Status.RETIRED:
-                raise Refused(f"Tank {returned_to.code} is retired.")
+                raise Refused(f"Returned to: tank {returned_to.code} is retired.")
             cohort.returned_to, cohort.returned_count = returned_to, returned_count
         elif end == Cohort.End.RETIRED:
             if not method.strip():
@@ -306,14 +309,25 @@ def cohort_state(cohort: Cohort, at: datetime, *, exclude_trial: int | None = No
 # ---------------------------------------------------------------------------------------------
 # Studies
 # ---------------------------------------------------------------------------------------------
+def may_change_study(user, study: Study) -> bool:
+    """The study's owner and managers add trials, correct scores and attach files."""
+    return user.pk == study.owner_id or has_role(user, MANAGER)
+
+
+def require_study_owner(user, study: Study, action: str) -> None:
+    if not may_change_study(user, study):
+        raise PermissionDenied(f"Only the study's owner ({study.owner.get_username()}) or a manager may {action} "
+                               f"in study {study.code}.")
+
+
 def create_study(*, user, code: str, title: str, protocol: Protocol, conditions: list[str], replicates: int,
                  method: str, seed: int, blinded: bool = True, observation_window_s: int = 600, question: str = "",
-                 exclusion_criteria: str = "") -> Study:
+                 exclusion_criteria: str = "", scorer_not_operator: bool = False) -> Study:
     """The study and its realised allocation, written together."""
     plan = allocation.allocate(conditions, replicates, method, seed)
     study = Study(code=code, title=title, owner=user, protocol=protocol, conditions=[c.strip() for c in conditions],
                   replicates=replicates, method=method, seed=seed, generator=allocation.GENERATOR,
-                  allocated_at=timezone.now(), allocation=plan, blinded=blinded,
+                  allocated_at=timezone.now(), allocation=plan, blinded=blinded, scorer_not_operator=scorer_not_operator,
                   observation_window_s=observation_window_s, question=question, exclusion_criteria=exclusion_criteria)
     with transaction.atomic():
         return _save(study, user, "Study created and allocation generated")
@@ -325,7 +339,7 @@ def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> S
     if user.pk != study.owner_id:
         raise PermissionDenied("Only the study's owner may unblind it.")
     if not reason:
-        raise Refused("A reason is required to unblind a study.")
+        raise Refused("Reason: a reason is required to unblind a study.")
     with transaction.atomic():
         study = Study.objects.select_for_update().get(pk=study.pk)
         if not study.is_blind:
@@ -402,6 +416,11 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
     """
     now = now or timezone.now()
     override_reason = (override_reason or "").strip()
+    require_study_owner(user, study, "add trials")
+    if study.scorer_not_operator and any(values.get(name) not in (None, False) for name in OUTCOME_FIELDS):
+        field = next(name for name in OUTCOME_FIELDS if values.get(name) not in (None, False))
+        raise ValidationError({field: f"Study {study.code} requires that the scorer is not the operator: leave the "
+                                      "outcomes empty and have another person score the trial."})
     with transaction.atomic():
         cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=cohort.pk)
         protocol = Protocol.objects.prefetch_related("allowances").get(pk=cohort.protocol_id)
@@ -484,7 +503,12 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
             raise Refused(f"{trial} is voided.")
         if trial.study.is_locked:
             raise Refused(f"Study {trial.study.code} has locked outcomes; scores can no longer change.")
+        if trial.study.scorer_not_operator and trial.run_by_id == user.pk:
+            raise PermissionDenied(f"Scorer: you ran {trial.code}, and study {trial.study.code} requires that the "
+                                   "scorer is not the operator; another person scores it.")
         correcting = trial.is_scored
+        if correcting:
+            require_study_owner(user, trial.study, "correct scores")
         if correcting and not reason:
             raise Refused(f"{trial} is already scored: give a reason to correct the score.")
         for name in OUTCOME_FIELDS:
@@ -500,7 +524,7 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
 def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:
     reason = (reason or "").strip()
     if not reason:
-        raise Refused("A reason is required to exclude a trial.")
+        raise Refused("Reason: a reason is required to exclude a trial.")
     if trial.is_excluded:
         raise Refused(f"{trial} is already excluded.")
     if trial.study.is_locked:
@@ -512,6 +536,8 @@ def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:
 
 def void_trial(*, user, trial: Trial, reason: str) -> Trial:
     """A trial entered in error (wrong study, never ran): hidden from analyses and from exposure counts."""
+    if not (reason or "").strip():
+        raise Refused("Reason: a reason is required to void a trial.")
     if trial.study.is_locked:
         raise Refused(f"Study {trial.study.code} has locked outcomes; trials can no longer be voided.")
     if hasattr(trial, "override"):
@@ -525,16 +551,26 @@ def void_trial(*, user, trial: Trial, reason: str) -> Trial:
 
 
 def add_attachment(*, user, trial: Trial, upload, kind: str, caption: str = "") -> Attachment:
-    """Store a photo or video with the SHA-256 of the bytes as received."""
+    """Store a photo or video with the SHA-256 of the bytes as received.
+
+    Only the study's owner or a manager attaches; never to a voided trial or a study with locked
+    outcomes (checked on the locked trial row, so a void at the same moment cannot slip past).
+    """
+    require_study_owner(user, trial.study, "attach files")
     digest = hashlib.sha256()
     size = 0
     for chunk in upload.chunks():
         digest.update(chunk)
         size += len(chunk)
     upload.seek(0)
-    attachment = Attachment(trial=trial, file=upload, name=upload.name[:200], kind=kind, caption=caption,
-                            sha256=digest.hexdigest(), size_bytes=size, uploaded_by=user)
     with transaction.atomic():
+        trial = Trial.objects.select_for_update().select_related("study").get(pk=trial.pk)
+        if trial.is_voided:
+            raise Refused(f"File: {trial} is voided; nothing can be attached to a voided trial.")
+        if trial.study.is_locked:
+            raise Refused(f"File: study {trial.study.code} has locked outcomes; no more files can be attached.")
+        attachment = Attachment(trial=trial, file=upload, name=upload.name[:200], kind=kind, caption=caption,
+                                sha256=digest.hexdigest(), size_bytes=size, uploaded_by=user)
         return _save(attachment, user, "Attachment added")
 
 

@@ -4,7 +4,6 @@ Roles: researchers and managers book, draw and run trials; managers also record 
 see the ledger; technicians read. Login is enforced by LoginRequiredMiddleware.
 """
 import csv
-import io
 import random
 from datetime import date, timedelta
 
@@ -18,12 +17,12 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from colonies.exports import spreadsheet_safe
+from colonies.exports import frame_csv
 from colonies.models import Room
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
-from . import charts, reports, services
+from . import charts, filetypes, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
                     ScoreForm, StudyForm, TrialForm)
@@ -32,6 +31,15 @@ from .models import Attachment, Booking, Cohort, Protocol, Stimulus, Study, Tria
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
 TRIAL_RELATED = ("study", "cohort__origin_tank", "protocol", "run_by", "scored_by", "override__recorded_by")
+
+
+def _form_errors(form) -> str:
+    """A bound form's errors as one line, each message led by its field's label unless it names it already."""
+    parts = []
+    for name, msgs in form.errors.items():
+        label = str(form[name].label) if name in form.fields else ""
+        parts += [m if not label or m.lower().startswith(label.lower()) else f"{label}: {m}" for m in msgs]
+    return " ".join(parts)
 
 
 def _error_text(error) -> str:
@@ -82,13 +90,14 @@ def _may_set_aside(user, trial) -> bool:
 @role_required(*READ)
 def index(request):
     today = timezone.localdate()
-    services.expire_bookings(today)  # lazy expiry; the expire_bookings command does the same on a schedule
+    # Reading writes nothing: bookings past their day are left to the expire_bookings command and are not
+    # listed here (they hold no animals: availability counts only bookings from today on).
     studies = Study.objects.select_related("owner", "protocol").annotate(
         n_trials=Count("trials", filter=Q(trials__voided_at__isnull=True)),
         n_scored=Count("trials", filter=Q(trials__voided_at__isnull=True, trials__disperse_s__isnull=False)))
     ctx = {
         "studies": studies,
-        "bookings": Booking.objects.active().select_related("tank__room", "booked_by", "protocol")
+        "bookings": Booking.objects.holding(today).select_related("tank__room", "booked_by", "protocol")
                                    .filter(needed_on__lte=today + timedelta(days=31)),
         "cohorts": Cohort.objects.filter(end="").select_related("origin_tank", "protocol")
                                  .annotate(n_exposures=Count("trials", filter=Q(trials__voided_at__isnull=True))),
@@ -144,6 +153,7 @@ def booking_new(request):
 @role_required(*READ)
 def booking_detail(request, pk):
     booking = _get_booking(pk)
+    booking.shown_status = booking.status_on(timezone.localdate())
     ctx = {"booking": booking, "cohort": Cohort.objects.filter(booking=booking).first(),
            "available": services.available(booking.tank), "population": services.current_population(booking.tank),
            "draw_form": DrawForm(booking=booking), "cancel_form": ReasonForm(),
@@ -167,7 +177,7 @@ def booking_cancel(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may cancel a booking.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, _reason_problem(form, "Give a reason to cancel the booking; nothing was changed."))
+        messages.error(request, _reason_problem(form, "Reason: give a reason to cancel the booking; nothing was changed."))
         return redirect(booking)
     try:
         services.cancel_booking(user=request.user, booking=booking, reason=form.cleaned_data["reason"])
@@ -186,7 +196,7 @@ def booking_draw(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may draw the animals.")
     form = DrawForm(request.POST, booking=booking)
     if not form.is_valid():
-        messages.error(request, " ".join(m for msgs in form.errors.values() for m in msgs))
+        messages.error(request, "Nothing was drawn: " + _form_errors(form))
         return redirect(booking)
     try:
         cohort = services.draw(user=request.user, booking=booking, count=form.cleaned_data["count"],
@@ -215,7 +225,6 @@ def _calendar_days(view: str, start: date) -> list[date]:
 @require_GET
 @role_required(*READ)
 def calendar(request):
-    services.expire_bookings()
     form = CalendarForm(request.GET or None)
     form.is_valid()
     data = getattr(form, "cleaned_data", {}) or {}
@@ -226,7 +235,9 @@ def calendar(request):
     bookings = (Booking.objects.between(days[0], days[-1]).in_room(room).exclude(status=Booking.Status.CANCELLED)
                 .select_related("tank__room", "booked_by", "protocol"))
     by_day: dict[date, list] = {d: [] for d in days}
+    today = timezone.localdate()
     for b in bookings:
+        b.shown_status = b.status_on(today)  # a booking past its day shows as expired before the command runs
         by_day[b.needed_on].append(b)
     step = timedelta(days=7) if view == "week" else timedelta(days=31)
     base = start if view == "week" else start.replace(day=1)
@@ -235,7 +246,7 @@ def calendar(request):
         prev_start, next_start = (base - timedelta(days=1)).replace(day=1), next_start.replace(day=1)
     ctx = {"form": form, "view": view, "room": room, "start": start, "rooms": Room.objects.all(),
            "weeks": [[(d, by_day[d]) for d in days[i:i + 7]] for i in range(0, len(days), 7)],
-           "month": start.month if view == "month" else None, "today": timezone.localdate(),
+           "month": start.month if view == "month" else None, "today": today,
            "prev": prev_start, "next": next_start, "total": sum(b.animals for b in bookings)}
     return render(request, "experiments/calendar.html", ctx)
 
@@ -268,7 +279,7 @@ def cohort_end(request, pk):
         raise PermissionDenied("Only the researcher who drew the cohort or a manager may end it.")
     form = CohortEndForm(request.POST, cohort=cohort)
     if not form.is_valid():
-        messages.error(request, "Nothing was saved: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+        messages.error(request, "Nothing was saved: " + _form_errors(form))
         return redirect(cohort)
     d = form.cleaned_data
     try:
@@ -295,7 +306,7 @@ def study_new(request):
             user=request.user, code=d["code"], title=d["title"], protocol=d["protocol"], conditions=d["conditions"],
             replicates=d["replicates"], method=d["method"], seed=seed, blinded=d["blinded"],
             observation_window_s=d["observation_window_s"], question=d["question"],
-            exclusion_criteria=d["exclusion_criteria"])
+            exclusion_criteria=d["exclusion_criteria"], scorer_not_operator=d["scorer_not_operator"])
         messages.success(request, f"Study {study.code} created: {len(study.allocation)} trials allocated "
                                   f"({study.get_method_display().lower()}, seed {study.seed}).")
         return redirect(study)
@@ -314,6 +325,7 @@ def study_detail(request, code):
     blind = study.hides_conditions_from(request.user)
     ctx = {"study": study, "trials": trials, "blind": blind, "is_owner": request.user.pk == study.owner_id,
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
+           "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
            "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided)}
     if not blind:
         frame = reports.tidy_frame(trials)
@@ -330,7 +342,7 @@ def study_unblind(request, code):
     study = _get_study(code)
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, _reason_problem(form, "Give a reason to unblind; nothing was changed."))
+        messages.error(request, _reason_problem(form, "Reason: give a reason to unblind; nothing was changed."))
         return redirect(study)
     try:
         services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"])
@@ -350,14 +362,9 @@ def _analysis_for(request, code):
 
 
 def _csv_response(frame, filename: str) -> HttpResponse:
-    # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe.
-    # Only object (text) columns are touched, and spreadsheet_safe leaves any non-string in them
-    # alone, so numbers, negative ones included, are written as they are.
-    text = frame.select_dtypes(include="object").columns
-    frame = frame.assign(**{c: frame[c].map(spreadsheet_safe) for c in text})
-    buffer = io.StringIO()
-    frame.to_csv(buffer, index=False, quoting=csv.QUOTE_MINIMAL, float_format="%.6g")
-    response = HttpResponse(buffer.getvalue(), content_type="text/csv; charset=utf-8")
+    # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe;
+    # numbers, negative ones included, are written as they are (colonies/exports.py).
+    response = HttpResponse(frame_csv(frame, quoting=csv.QUOTE_MINIMAL, float_format="%.6g"), content_type="text/csv; charset=utf-8")
     response["Content-Disposition"] = f'attachment; filename="{filename}"'
     return response
 
@@ -441,6 +448,7 @@ def _trial_page(request, study, form, status=200, refusal=None):
 @once_per_submission
 def trial_new(request, code):
     study = _get_study(code)
+    services.require_study_owner(request.user, study, "add trials")
     slots = _open_slots(study)
     if not slots or study.is_locked:
         messages.info(request, f"Study {study.code} has no open slots.")
@@ -485,9 +493,22 @@ def trial_detail(request, pk):
     ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
            "attachment_form": AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
            "may_set_aside": has_role(request.user, *RUN) and _may_set_aside(request.user, trial),
+           "may_attach": has_role(request.user, *RUN) and services.may_change_study(request.user, trial.study),
+           "may_score": has_role(request.user, *RUN) and _score_refusal(request.user, trial) is None,
            "cautions": [] if blind else trial.cautions(),
            "override": trial.override if reports._has_override(trial) else None}
     return render(request, "experiments/trial_detail.html", ctx)
+
+
+def _score_refusal(user, trial) -> str | None:
+    """Why this user may not score (or correct) the trial, or None; services.score_trial checks again."""
+    if trial.study.scorer_not_operator and trial.run_by_id == user.pk:
+        return (f"Scorer: you ran {trial.code}, and study {trial.study.code} requires that the scorer is not the "
+                "operator; another person scores it.")
+    if trial.is_scored and not services.may_change_study(user, trial.study):
+        return (f"Only the study's owner ({trial.study.owner.get_username()}) or a manager may correct scores "
+                f"in study {trial.study.code}.")
+    return None
 
 
 @require_http_methods(["GET", "POST"])
@@ -495,6 +516,9 @@ def trial_detail(request, pk):
 @once_per_submission
 def trial_score(request, pk):
     trial = _get_trial(pk)
+    refusal = _score_refusal(request.user, trial)
+    if refusal:
+        raise PermissionDenied(refusal)
     form = ScoreForm(request.POST or None, instance=trial)
     if request.method == "POST" and form.is_valid():
         try:
@@ -518,7 +542,7 @@ def trial_set_aside(request, pk, action):
         raise PermissionDenied("Only the study's owner or a manager may exclude or void its trials.")
     form = ReasonForm(request.POST)
     if not form.is_valid():
-        messages.error(request, _reason_problem(form, "Give a reason; nothing was changed."))
+        messages.error(request, _reason_problem(form, f"Reason: give a reason to {action} the trial; nothing was changed."))
         return redirect(trial)
     handler = {"exclude": services.exclude_trial, "void": services.void_trial}.get(action)
     if handler is None:
@@ -536,13 +560,22 @@ def trial_set_aside(request, pk, action):
 @once_per_submission
 def attachment_add(request, pk):
     trial = _get_trial(pk)
-    form = AttachmentForm(request.POST, request.FILES)
-    if form.is_valid():
+    services.require_study_owner(request.user, trial.study, "attach files")
+    form = AttachmentForm(request.POST, request.FILES)  # reading FILES parses the upload
+    refused = getattr(request, "upload_refusals", {})  # set while streaming by experiments.uploads
+    if refused:
+        for field, message in refused.items():
+            form.add_error(field if field in form.fields else None, message)
+    if not form.is_valid():
+        messages.error(request, "Nothing was stored: " + _form_errors(form))
+        return redirect(trial)
+    try:
         a = services.add_attachment(user=request.user, trial=trial, upload=form.cleaned_data["file"],
                                     kind=form.cleaned_data["kind"], caption=form.cleaned_data["caption"])
-        messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
-    else:
-        messages.error(request, "Nothing was stored: " + " ".join(m for msgs in form.errors.values() for m in msgs))
+    except services.Refused as refusal:
+        messages.error(request, f"Nothing was stored. {refusal}")
+        return redirect(trial)
+    messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
     return redirect(trial)
 
 
@@ -551,7 +584,12 @@ def attachment_add(request, pk):
 def attachment(request, pk):
     # Photos and videos carry the code, not the condition: blinded scorers need them.
     item = get_object_or_404(Attachment.objects.current(), pk=pk)
-    return FileResponse(item.file.open("rb"), as_attachment=True, filename=item.name)
+    handle = item.file.open("rb")
+    file_type = filetypes.sniff(handle.read(filetypes.SNIFF_BYTES))
+    handle.seek(0)
+    # Served as the type its content shows (never as HTML or script), always as a download.
+    content_type = filetypes.TYPES[file_type][1] if file_type else "application/octet-stream"
+    return FileResponse(handle, as_attachment=True, filename=item.name, content_type=content_type)
 
 
 # ---------------------------------------------------------------------------------------------

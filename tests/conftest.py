@@ -17,6 +17,14 @@ def _fast_password_hasher(settings):
     settings.PASSWORD_HASHERS = ["django.contrib.auth.hashers.MD5PasswordHasher"]
 
 
+@pytest.fixture(autouse=True)
+def _session_saved_only_when_changed(settings):
+    # Production saves the session on every request (idle timeout, vermilog/settings.py): a savepoint, an
+    # UPDATE and a release per request. Query-count tests measure the page itself, so the suite turns it
+    # off; tests/test_security.py turns it back on to test the idle timeout.
+    settings.SESSION_SAVE_EVERY_REQUEST = False
+
+
 @pytest.fixture
 def technician(db):
     return make_user("tess", role=TECHNICIAN)

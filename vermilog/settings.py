@@ -1,10 +1,13 @@
 """Vermilog settings: one file, driven by environment variables.
 
-Development defaults are safe to run on a laptop (DEBUG on, SQLite file in the project folder).
-Production sets DEBUG=0, SECRET_KEY, ALLOWED_HOSTS and usually DATABASE_URL; then
-`python manage.py check --deploy` is clean.
+DEBUG is off unless the environment says DEBUG=1 (development; `manage.py demo` sets it for
+itself, the tests through vermilog/settings_test.py). With DEBUG off, SECRET_KEY must be set and
+the production hardening below applies; with SECRET_KEY and ALLOWED_HOSTS set (and usually
+DATABASE_URL) `python manage.py check --deploy` is clean. Security settings from the environment
+are listed in the README ("Security settings").
 """
 import os
+from datetime import timedelta
 from pathlib import Path
 
 import dj_database_url
@@ -49,19 +52,23 @@ def env_path(name: str, default: Path) -> str:
     return os.environ.get(name) or str(default)
 
 
-DEBUG = env_bool("DEBUG", True)
+DEBUG = env_bool("DEBUG", False)
 
 _DEV_SECRET = "vermilog-development-only-key-never-use-in-production"
 SECRET_KEY = os.environ.get("SECRET_KEY", "")
 if not SECRET_KEY:
     if not DEBUG:
-        raise ImproperlyConfigured("SECRET_KEY must be set when DEBUG is off.")
+        raise ImproperlyConfigured("SECRET_KEY must be set when DEBUG is off. Set SECRET_KEY to a long random "
+                                   "value (e.g. python -c 'import secrets; print(secrets.token_urlsafe(50))'), or "
+                                   "DEBUG=1 for development on this machine only.")
     SECRET_KEY = _DEV_SECRET
 
-ALLOWED_HOSTS = env_list("ALLOWED_HOSTS", ["127.0.0.1", "localhost"] if DEBUG else [])
+# Local addresses only unless the deployment names its host(s); an unknown Host header gets 400.
+ALLOWED_HOSTS = env_list("ALLOWED_HOSTS", ["127.0.0.1", "localhost", "[::1]"])
 CSRF_TRUSTED_ORIGINS = env_list("CSRF_TRUSTED_ORIGINS", [])
 
 INSTALLED_APPS = [
+    "vermilog",  # first, so its createsuperuser (password validators without a bypass) wins
     "django.contrib.admin",
     "django.contrib.auth",
     "django.contrib.contenttypes",
@@ -70,6 +77,7 @@ INSTALLED_APPS = [
     "whitenoise.runserver_nostatic",
     "django.contrib.staticfiles",
     "django_filters",
+    "axes",
     # Before simple_history: Django runs the management command of the earliest app that has one, so
     # colonies' refusing clean_duplicate_history / clean_old_history replace the library's purges.
     "colonies",
@@ -93,6 +101,14 @@ MIDDLEWARE = [
     "django.middleware.clickjacking.XFrameOptionsMiddleware",
     # Puts request.user on every history row (who made the change).
     "simple_history.middleware.HistoryRequestMiddleware",
+    # Login throttling (django-axes); last, as its documentation asks.
+    "axes.middleware.AxesMiddleware",
+]
+
+# Axes first: it refuses a locked-out username+address before the password is even checked.
+AUTHENTICATION_BACKENDS = [
+    "axes.backends.AxesStandaloneBackend",
+    "django.contrib.auth.backends.ModelBackend",
 ]
 
 ROOT_URLCONF = "vermilog.urls"
@@ -146,6 +162,30 @@ AUTH_PASSWORD_VALIDATORS = [
     {"NAME": "django.contrib.auth.password_validation.CommonPasswordValidator"},
     {"NAME": "django.contrib.auth.password_validation.NumericPasswordValidator"},
 ]
+
+# Sessions end after SESSION_COOKIE_AGE seconds without a request (idle timeout, default 8 h): saving the
+# session on every request moves the expiry forward each time.
+SESSION_COOKIE_AGE = env_int("SESSION_COOKIE_AGE", 8 * 3600)
+SESSION_SAVE_EVERY_REQUEST = True
+
+# Login throttling: AXES_FAILURE_LIMIT failed logins for one username from one address lock that pair
+# out for AXES_COOLOFF_MINUTES; a successful login resets the count. Managers see attempts in the back office.
+AXES_FAILURE_LIMIT = env_int("AXES_FAILURE_LIMIT", 5)
+AXES_COOLOFF_TIME = timedelta(minutes=env_int("AXES_COOLOFF_MINUTES", 15))
+AXES_LOCKOUT_PARAMETERS = [["username", "ip_address"]]
+AXES_RESET_ON_SUCCESS = True
+AXES_LOCKOUT_TEMPLATE = "registration/locked_out.html"
+AXES_ENABLED = env_bool("AXES_ENABLED", True)
+
+# Attachments (experiments/uploads.py stops reading a file past this size while it streams in).
+ATTACHMENT_MAX_BYTES = env_int("ATTACHMENT_MAX_BYTES", 500 * 1024 * 1024)
+FILE_UPLOAD_HANDLERS = [
+    "experiments.uploads.SizeLimitUploadHandler",
+    "django.core.files.uploadhandler.MemoryFileUploadHandler",
+    "django.core.files.uploadhandler.TemporaryFileUploadHandler",
+]
+FILE_UPLOAD_MAX_MEMORY_SIZE = 2 * 1024 * 1024  # larger files go to a temporary file, not memory
+DATA_UPLOAD_MAX_MEMORY_SIZE = 2 * 1024 * 1024  # form fields other than files
 
 LOGIN_URL = "login"
 LOGIN_REDIRECT_URL = "colonies:home"

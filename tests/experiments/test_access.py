@@ -18,6 +18,7 @@ RUN = {"researcher", "manager"}
 MANAGE = {"manager"}
 OWNER = {"researcher"}  # the study's owner in this world
 PERSONAS = ("technician", "researcher", "manager", "outsider")
+PNG = b"\x89PNG\r\n\x1a\n"  # the PNG signature, so the upload passes the content check
 
 
 @pytest.fixture
@@ -29,7 +30,7 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     study = make_study(user=researcher, protocol=protocol, code="access-study", blinded=True)
     trial = record(study, cohort, researcher, at=days_ago(4)).trial
     attachment = services.add_attachment(user=researcher, trial=trial, kind="photo",
-                                         upload=SimpleUploadedFile("a.png", b"png bytes"))
+                                         upload=SimpleUploadedFile("a.png", PNG + b"png bytes"))
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
                            attachment=attachment)
 
@@ -80,7 +81,7 @@ POST_DATA = {
     "experiments:trial-new": _trial_post,
     "experiments:trial-score": lambda w: {"disperse_s": "150", "aggregate_s": "200", "reason": "Misread the timer"},
     "experiments:trial-set-aside": lambda w: {"reason": "Clump never formed"},
-    "experiments:attachment-add": lambda w: {"file": SimpleUploadedFile("b.png", b"more bytes"), "kind": "photo"},
+    "experiments:attachment-add": lambda w: {"file": SimpleUploadedFile("b.png", PNG + b"more bytes"), "kind": "photo"},
 }
 
 ACCESS = [

@@ -1,5 +1,6 @@
 from django.core.management import call_command
-from django.core.management.base import BaseCommand
+from django.conf import settings
+from django.core.management.base import BaseCommand, CommandError
 
 from colonies import demo
 
@@ -12,6 +13,9 @@ class Command(BaseCommand):
         parser.add_argument("--no-serve", action="store_true", help="Prepare the database and print logins only.")
 
     def handle(self, *args, addrport, no_serve, **options):
+        if not settings.DEBUG and not no_serve:
+            raise CommandError("The demo serves with Django's development server, which needs DEBUG=1 "
+                               "(manage.py demo sets it unless DEBUG is already set).")
         call_command("migrate", interactive=False, verbosity=0)
         if demo.database_has_data():
             self.stdout.write("Database already holds data; not loading the demo again.")

@@ -5,8 +5,8 @@ from experiments import services
 
 
 class Command(BaseCommand):
-    help = ("Expire bookings that were not drawn by the end of their day, so their animals count as available "
-            "again. Idempotent; schedule it daily (pages also expire bookings when they load).")
+    help = ("Mark bookings that were not drawn by the end of their day as expired. Idempotent; schedule it daily. "
+            "Pages write nothing: until then they show such bookings as expired and count none of their animals.")
 
     def add_arguments(self, parser):
         parser.add_argument("--dry-run", action="store_true", help="Report how many would expire; write nothing.")
