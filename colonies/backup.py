@@ -193,6 +193,9 @@ def sqlite_snapshot(source: sqlite3.Connection, target_path: Path) -> None:
     target = sqlite3.connect(target_path)
     try:
         source.backup(target)
+        # The copy inherits the live database's WAL mode (it is in the file header): switch the snapshot to
+        # a plain rollback journal so it is one self-contained file, with no -wal/-shm beside it once read.
+        target.execute("PRAGMA journal_mode=DELETE")
     finally:
         target.close()
 

@@ -50,7 +50,8 @@ connection.close()
 shutil.copy(sys.argv[1], sys.argv[2])
 demo.DAYS = 30
 call_command("load_demo", verbosity=0)
-trial = Trial.objects.order_by("pk").first()
+# A trial of the study still open (the demo unblinds and locks the other; locked studies take no files).
+trial = Trial.objects.filter(study__outcomes_locked_at__isnull=True, voided_at__isnull=True).order_by("pk").first()
 upload = SimpleUploadedFile("dish-01.png", bytes.fromhex(sys.argv[3]), content_type="image/png")
 services.add_attachment(user=User.objects.get(username="ravi"), trial=trial, upload=upload, kind="photo", caption="Dish 1")
 """
