@@ -3,6 +3,7 @@ from django import forms
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
+from .forms import CareTargetForm, TankTargetForm
 from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget, WaterChange
 
 
@@ -38,11 +39,13 @@ class ReasonAdmin(NoDeleteMixin, SimpleHistoryAdmin):
 
 class CareTargetInline(NoDeleteMixin, admin.TabularInline):
     model = CareTarget
+    form = CareTargetForm  # physical bounds of the parameter, low <= high, with messages naming the field
     extra = 0
 
 
 class TankTargetInline(NoDeleteMixin, admin.TabularInline):
     model = TankTarget
+    form = TankTargetForm
     extra = 0
 
 

@@ -25,7 +25,7 @@ from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_requi
 from . import charts, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
-                    ScoreForm, StudyForm, TrialForm)
+                    ScoreForm, StudyForm, TrialForm, errors_text)
 from .models import Attachment, Booking, Cohort, Protocol, Stimulus, Study, Trial, cautions_for
 
 READ = (TECHNICIAN, RESEARCHER)
@@ -141,12 +141,15 @@ def booking_new(request):
 @require_GET
 @role_required(*READ)
 def booking_detail(request, pk):
-    booking = _get_booking(pk)
+    return _booking_page(request, _get_booking(pk))
+
+
+def _booking_page(request, booking, draw_form=None, status=200):
     ctx = {"booking": booking, "cohort": Cohort.objects.filter(booking=booking).first(),
            "available": services.available(booking.tank), "population": services.current_population(booking.tank),
-           "draw_form": DrawForm(booking=booking), "cancel_form": ReasonForm(),
+           "draw_form": draw_form or DrawForm(booking=booking), "cancel_form": ReasonForm(),
            "may_change": _may_change_booking(request.user, booking) and has_role(request.user, *RUN)}
-    return render(request, "experiments/booking_detail.html", ctx)
+    return render(request, "experiments/booking_detail.html", ctx, status=status)
 
 
 @require_POST
@@ -175,8 +178,8 @@ def booking_draw(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may draw the animals.")
     form = DrawForm(request.POST, booking=booking)
     if not form.is_valid():
-        messages.error(request, " ".join(m for msgs in form.errors.values() for m in msgs))
-        return redirect(booking)
+        messages.error(request, "Nothing was saved: " + errors_text(form))
+        return _booking_page(request, booking, draw_form=form, status=400)
     try:
         cohort = services.draw(user=request.user, booking=booking, count=form.cleaned_data["count"],
                                at=form.cleaned_data.get("drawn_at"))
@@ -235,7 +238,10 @@ def calendar(request):
 @require_GET
 @role_required(*READ)
 def cohort_detail(request, pk):
-    cohort = _get_cohort(pk)
+    return _cohort_page(request, _get_cohort(pk))
+
+
+def _cohort_page(request, cohort, end_form=None, status=200):
     trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("run_at"))
     rows = reports.ledger_rows(trials, trials, request.user)
     protocol = cohort.protocol
@@ -243,9 +249,9 @@ def cohort_detail(request, pk):
            "cumulative": None if any(r["blinded"] for r in rows) else sum(t.dose_mj_cm2 or 0 for t in trials),
            "last": trials[-1].run_at if trials else None,
            "next_allowed": trials[-1].run_at + timedelta(hours=protocol.min_rest_hours) if trials else None,
-           "end_form": CohortEndForm(cohort=cohort),
+           "end_form": end_form or CohortEndForm(cohort=cohort),
            "may_end": has_role(request.user, *RUN) and _may_end_cohort(request.user, cohort)}
-    return render(request, "experiments/cohort_detail.html", ctx)
+    return render(request, "experiments/cohort_detail.html", ctx, status=status)
 
 
 @require_POST
@@ -256,8 +262,8 @@ def cohort_end(request, pk):
         raise PermissionDenied("Only the researcher who drew the cohort or a manager may end it.")
     form = CohortEndForm(request.POST, cohort=cohort)
     if not form.is_valid():
-        messages.error(request, "Nothing was saved: " + " ".join(m for msgs in form.errors.values() for m in msgs))
-        return redirect(cohort)
+        messages.error(request, "Nothing was saved: " + errors_text(form))
+        return _cohort_page(request, cohort, end_form=form, status=400)
     d = form.cleaned_data
     try:
         services.end_cohort(user=request.user, cohort=cohort, end=d["end"], returned_to=d.get("returned_to"),
@@ -465,14 +471,17 @@ def trial_new(request, code):
 @require_GET
 @role_required(*READ)
 def trial_detail(request, pk):
-    trial = _get_trial(pk)
+    return _trial_detail_page(request, _get_trial(pk))
+
+
+def _trial_detail_page(request, trial, attachment_form=None, status=200):
     blind = trial.study.hides_conditions_from(request.user)
     ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
-           "attachment_form": AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
+           "attachment_form": attachment_form or AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
            "may_set_aside": has_role(request.user, *RUN) and _may_set_aside(request.user, trial),
            "cautions": [] if blind else trial.cautions(),
            "override": trial.override if reports._has_override(trial) else None}
-    return render(request, "experiments/trial_detail.html", ctx)
+    return render(request, "experiments/trial_detail.html", ctx, status=status)
 
 
 @require_http_methods(["GET", "POST"])
@@ -523,9 +532,9 @@ def attachment_add(request, pk):
         a = services.add_attachment(user=request.user, trial=trial, upload=form.cleaned_data["file"],
                                     kind=form.cleaned_data["kind"], caption=form.cleaned_data["caption"])
         messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
-    else:
-        messages.error(request, "Nothing was stored: " + " ".join(m for msgs in form.errors.values() for m in msgs))
-    return redirect(trial)
+        return redirect(trial)
+    messages.error(request, "Nothing was stored: " + errors_text(form))
+    return _trial_detail_page(request, trial, attachment_form=form, status=400)
 
 
 @require_GET
