@@ -143,23 +143,22 @@ def name_errors(form) -> None:
     for name, field in form.fields.items():
         label = str(field.label or name.replace("_", " ").capitalize())
         messages = dict(field.error_messages)
+        defaults = {}
+        for cls in reversed(type(field).__mro__):
+            defaults.update(getattr(cls, "default_error_messages", {}))
         for code, text in list(messages.items()):
             text = str(text)
-            if code in _GENERIC and not text.startswith(label):
+            if text and code in defaults and text == str(defaults[code]) and not text.startswith(label):
                 messages[code] = f"{label}: {text[0].lower()}{text[1:]}"
-        defaults = {
+        limits = {
             "max_length": f"{label}: %(show_value)d characters is too long; allowed at most %(limit_value)d.",
             "min_length": f"{label}: %(show_value)d characters is too short; allowed at least %(limit_value)d.",
             "min_value": f"{label}: %(value)s is impossible; allowed %(limit_value)s or more.",
             "max_value": f"{label}: %(value)s is impossible; allowed at most %(limit_value)s.",
         }
-        for code, text in defaults.items():
+        for code, text in limits.items():
             messages.setdefault(code, text)
         field.error_messages = messages
-
-
-_GENERIC = ("invalid", "required", "invalid_choice", "missing", "empty", "invalid_image", "contradiction",
-            "max_digits", "max_decimal_places", "overflow", "invalid_pk_value", "invalid_list")
 
 
 class NamedErrorsMixin:
