@@ -303,6 +303,7 @@ class SpeciesForm(NamedErrorsMixin, forms.ModelForm):
         fields = ["common_name", "habitat", "check_interval_hours", "feeding_interval_days",
                   "water_change_interval_days", "water_change_fraction", "census_interval_days",
                   "max_density_per_l", "reserve_min_animals", "notes"]
+        labels = {"max_density_per_l": "Maximum density (animals/L)", "reserve_min_animals": "Reserve (animals)"}
 
 
 class CareTargetForm(NamedErrorsMixin, forms.ModelForm):

@@ -42,6 +42,8 @@ def number(value) -> str:
     """A value as the message shows it: integers whole, floats in the shortest form."""
     if isinstance(value, int):
         return str(value)
+    if value.is_integer() and abs(value) < 1e12:  # 2000000.0 reads better as 2000000 than as 2e+06
+        return str(int(value))
     return f"{value:g}"
 
 

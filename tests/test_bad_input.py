@@ -119,6 +119,10 @@ READINGS = {"temp_c": "22", "ph": "7.2", "do_mg_l": "8", "tan_mg_l": "0.1", "no2
 OBSERVATIONS = {"dead_removed": "0", "note": "", "corrective_action": ""}
 
 
+def long_ago():
+    return timezone.localdate() - timedelta(days=60)
+
+
 def _old_tank(**overrides):
     tank = make_tank(started_on=timezone.localdate() - timedelta(days=60), volume_l=2.0, **overrides)
     return tank
@@ -280,7 +284,7 @@ def case_admin_protocol(users):
 # Trials
 def case_booking(users):
     protocol = make_protocol()
-    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], code="BI-B1")
+    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], started_on=long_ago(), code="BI-B1")
 
     def baseline():
         return {"protocol": protocol.pk, "species": tank.species_id, "animals": "5",
@@ -291,7 +295,7 @@ def case_booking(users):
 
 def case_draw(users):
     protocol = make_protocol()
-    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], code="BI-D1")
+    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], started_on=long_ago(), code="BI-D1")
     researcher = users["researcher"]
 
     def baseline():
@@ -305,7 +309,7 @@ def case_draw(users):
 
 def case_cohort_end(users):
     researcher = users["researcher"]
-    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], code="BI-C1")
+    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], started_on=long_ago(), code="BI-C1")
     protocol = make_protocol()
 
     def baseline():
@@ -331,7 +335,7 @@ def case_study(users):
 def _trial_setup(users, code):
     researcher = users["researcher"]
     protocol = make_protocol(max_exposures_per_group=1000, min_rest_hours=0, max_cumulative_dose_mj_cm2=1e7)
-    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], code=code)
+    tank = make_stocked_tank(estimate=100000, reserve=0, user=users["technician"], started_on=long_ago(), code=code)
     cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, animals=50,
                          at=timezone.now() - timedelta(days=10))
     study = make_study(user=researcher, protocol=protocol, replicates=200)
