@@ -108,7 +108,11 @@ class Case:
     success: tuple[int, ...] = (302,)
 
     def strategy(self):
-        return st.fixed_dictionaries({name: st.one_of(st.none(), KINDS[kind]) for name, kind in self.fields.items()})
+        """One field of the valid post replaced by a generated value (more would nearly always be refused
+        for an obvious reason, and the bounds of the others would go untested)."""
+        names = sorted(self.fields)
+        return st.lists(st.sampled_from(names), min_size=1, max_size=1).flatmap(
+            lambda chosen: st.fixed_dictionaries({name: KINDS[self.fields[name]] for name in chosen}))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -419,12 +423,13 @@ def test_generated_values_never_crash_half_save_or_store_the_impossible(name, cl
     def post_generated(values):
         data = case.baseline()
         url = case.url or case.baseline.url
-        data.update({k: v for k, v in values.items() if v is not None})
+        data.update(values)
         if case.files:
             data.update(case.files())
         before = row_counts()
 
         response = client.post(url, data)
+        print("DBG", values, response.status_code)
 
         assert response.status_code != 500
         if response.status_code not in case.success:
@@ -436,6 +441,6 @@ def test_generated_values_never_crash_half_save_or_store_the_impossible(name, cl
 
 
 settings_for_forms = hypothesis_settings(
-    max_examples=25, deadline=None, derandomize=True, database=None,
+    max_examples=30, deadline=None, derandomize=True, database=None,
     suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow, HealthCheck.data_too_large],
 )
