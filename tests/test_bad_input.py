@@ -429,7 +429,6 @@ def test_generated_values_never_crash_half_save_or_store_the_impossible(name, cl
         before = row_counts()
 
         response = client.post(url, data)
-        print("DBG", values, response.status_code)
 
         assert response.status_code != 500
         if response.status_code not in case.success:
