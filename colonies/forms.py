@@ -1,7 +1,4 @@
-from datetime import timedelta
-
 from django import forms
-from django.utils import timezone
 
 from . import derived, parameters, validators
 from .flags import limit_text, out_of_target

@@ -1,7 +1,6 @@
 """Writes that span several rows or models. Each is one transaction: all or nothing."""
 import math
 from dataclasses import dataclass
-from datetime import timedelta
 
 from django.core.exceptions import ValidationError
 from django.db import transaction

@@ -7,7 +7,6 @@ history (django-simple-history); history_user comes from the request middleware 
 explicitly in services.py.
 """
 from django.conf import settings
-from django.core.validators import MinValueValidator
 from django.db import models
 from django.db.models import Q
 from django.urls import reverse

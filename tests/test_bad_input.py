@@ -13,7 +13,7 @@ integers), odd dates (year 1, 9999, 30 February) and long, empty or unicode text
 modest, derandomized number of examples so CI is deterministic.
 """
 import itertools
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import timedelta
 from typing import Callable
 
@@ -28,7 +28,7 @@ from colonies import validators
 from colonies.models import (Census, CareTarget, Check, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget,
                              WaterChange)
 from colonies.services import SPLIT_BOOKS_TOLERANCE
-from experiments.models import Allowance, Attachment, Booking, Cohort, Protocol, Study, Trial
+from experiments.models import Allowance, Booking, Cohort, Protocol, Study, Trial
 from experiments import services as trial_services
 from tests.experiments.builders import make_cohort, make_protocol, make_stocked_tank, make_study, record, uv_values
 from tests.factories import make_check, make_room, make_species, make_tank, species_edit_data

@@ -1,6 +1,4 @@
 """Refusals on the draw, cohort-end and attachment forms name their field; bookings and protocols keep to plausible dates."""
-from datetime import timedelta
-
 import pytest
 from django.core.files.uploadedfile import SimpleUploadedFile
 from django.urls import reverse
