@@ -127,6 +127,8 @@ def _aicc_log(y, predicted, k: int) -> float:
     # Both models compared on ln(count), the scale of multiplicative counting error; k counts the
     # residual variance too. Small-sample corrected AIC (Hurvich & Tsai 1989).
     n = len(y)
+    if any(not (math.isfinite(b) and b > 0) for b in predicted):
+        return math.inf  # a curve predicting no (or infinitely many) animals at a count cannot win on ln(count)
     sse = sum((math.log(a) - math.log(b)) ** 2 for a, b in zip(y, predicted))
     sse = max(sse, 1e-12)
     return n * math.log(sse / n) + 2 * k + (2 * k * (k + 1)) / max(n - k - 1, 1)
