@@ -25,10 +25,16 @@ class DerivedValue:
     method: str
     compute: Callable[[Readings, str], float]
     habitats: tuple[str, ...] = parameters.BOTH
+    # Physical bounds of the derived value, inclusive: a care target outside them is refused.
+    minimum: float = 0.0
+    maximum: float = float("inf")
 
     @property
     def label_with_unit(self) -> str:
         return f"{self.label} ({self.unit})"
+
+    def bounds_text(self) -> str:
+        return f"{self.minimum:g} to {self.maximum:g} {self.unit}"
 
     def format(self, value: float | None) -> str:
         return "" if value is None else f"{value:.{self.decimals}f}"
@@ -69,15 +75,21 @@ def _salinity_from_cond(r: Readings, habitat: str) -> float:
 
 DERIVED: tuple[DerivedValue, ...] = (
     DerivedValue("nh3_mg_l", "Un-ionized ammonia", "NH3", "mg/L NH3-N", 4,
-                 "Emerson et al. 1975 pKa from pH and temperature, times total ammonia-N", _nh3),
+                 "Emerson et al. 1975 pKa from pH and temperature, times total ammonia-N", _nh3,
+                 maximum=100.0),  # never more than the total ammonia-N, whose bound is 100 mg/L
     DerivedValue("do_pct_sat", "Oxygen saturation", "DO %", "% air sat.", 0,
                  "Benson & Krause 1984 solubility (USGS tables) at standard pressure; salinity from the reading "
-                 "for marine tanks", _do_pct),
+                 "for marine tanks", _do_pct,
+                 # Pure oxygen at 1 atm holds 100/20.95 ≈ 480 % of the air-saturated concentration
+                 # (Henry's law, O2 mole fraction of dry air 0.2095; from memory): above 500 % is not water.
+                 maximum=500.0),
     DerivedValue("cond25_us_cm", "Conductivity at 25 °C", "EC25", "µS/cm", 0,
-                 "Linear compensation, α = 0.0191 /°C (Standard Methods 2510)", _cond25),
+                 "Linear compensation, α = 0.0191 /°C (Standard Methods 2510)", _cond25,
+                 # the raw bound 100000 µS/cm compensated from the coldest allowed water (-5 °C): 1/(1-0.0191*30)
+                 maximum=250000.0),
     DerivedValue("salinity_from_cond", "Salinity from conductivity", "Sal(EC)", "PSU", 1,
                  "PSS-78, UNESCO 1983 Tech. Pap. 44, at 0 dbar", _salinity_from_cond,
-                 habitats=(parameters.MARINE,)),
+                 habitats=(parameters.MARINE,), maximum=50.0),  # the measured salinity's bound
 )
 BY_KEY = {d.key: d for d in DERIVED}
 KEYS = tuple(BY_KEY)

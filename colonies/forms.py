@@ -1,9 +1,6 @@
-from datetime import timedelta
-
 from django import forms
-from django.utils import timezone
 
-from . import derived, parameters
+from . import derived, parameters, validators
 from .flags import limit_text, out_of_target
 from .models import REASON_MAX_CHARS, Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
 
@@ -18,9 +15,9 @@ def reason_field(label: str = "Reason", **kwargs) -> forms.CharField:
                         **kwargs.pop("error_messages", {})},
         **kwargs,
     )
+from .validators import MAX_COUNT, MAX_TEXT, NamedErrorsMixin, check_range
 
-
-MAX_COUNT = 1_000_000  # more animals than any culture tank holds: a typo, not a count
+MAX_ALIQUOTS = 100  # aliquots counted in one census; more is a pasted column, not a census
 
 
 def _impossible(tank, p: parameters.Parameter, raw) -> str:
@@ -28,7 +25,7 @@ def _impossible(tank, p: parameters.Parameter, raw) -> str:
     return f"{where}{p.label_with_unit}: {raw} is impossible; allowed range {p.bounds_text()}."
 
 
-class CheckEntryForm(forms.Form):
+class CheckEntryForm(NamedErrorsMixin, forms.Form):
     """One tank's daily check: used as a row of the round (prefix = tank code) and on the tank page.
 
     Physically impossible values are errors that name the tank, the field, the value and the range.
@@ -41,9 +38,9 @@ class CheckEntryForm(forms.Form):
     surface_film = forms.BooleanField(required=False, label="Film / mould")
     odour = forms.ChoiceField(choices=[("", "—")] + Check.Odour.choices, required=False)
     clarity = forms.ChoiceField(choices=[("", "—")] + Check.Clarity.choices, required=False)
-    note = forms.CharField(required=False, widget=forms.TextInput(attrs={"placeholder": "Note"}))
+    note = forms.CharField(required=False, max_length=MAX_TEXT, widget=forms.TextInput(attrs={"placeholder": "Note"}))
     corrective_action = forms.CharField(
-        required=False, label="Corrective action",
+        required=False, label="Corrective action", max_length=MAX_TEXT,
         widget=forms.TextInput(attrs={"placeholder": "What did you do about the flagged value?"}),
     )
 
@@ -155,7 +152,7 @@ class CheckEntryForm(forms.Form):
         return result
 
 
-class ObservedAtForm(forms.Form):
+class ObservedAtForm(NamedErrorsMixin, forms.Form):
     observed_at = forms.DateTimeField(
         required=False, label="Observed at",
         widget=forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M"),
@@ -163,13 +160,24 @@ class ObservedAtForm(forms.Form):
     )
 
     def clean_observed_at(self):
-        value = self.cleaned_data.get("observed_at")
-        if value and value > timezone.now() + timedelta(minutes=5):
-            raise forms.ValidationError(f"Observed at: {value:%Y-%m-%d %H:%M} is in the future.")
-        return value
+        return validators.check_moment("Observed at", self.cleaned_data.get("observed_at"))
+
+    def check_started(self, tanks) -> bool:
+        """False (with an error on the field) when the time is before any of these tanks was started."""
+        value = self.cleaned_data.get("observed_at") if self.is_valid() else None
+        if value is None or not tanks:
+            return self.is_valid()
+        latest_start = max(tanks, key=lambda t: t.started_on)
+        try:
+            validators.check_moment("Observed at", value, started_on=latest_start.started_on,
+                                    what=f"when tank {latest_start.code} was started")
+        except forms.ValidationError as error:
+            self.add_error("observed_at", error)
+            return False
+        return True
 
 
-class ReasonForm(forms.Form):
+class ReasonForm(NamedErrorsMixin, forms.Form):
     reason = reason_field(help_text="Required: why is this record being changed or voided? It is kept in the history.")
 
     def clean_reason(self):
@@ -179,23 +187,37 @@ class ReasonForm(forms.Form):
         return reason
 
 
-class FeedingForm(forms.ModelForm):
+class FeedingForm(NamedErrorsMixin, forms.ModelForm):
     class Meta:
         model = Feeding
         fields = ["food", "amount", "unit", "note"]
 
-    def clean_amount(self):
-        amount = self.cleaned_data["amount"]
-        if amount is not None and amount < 0:
-            raise forms.ValidationError(f"Amount: {amount:g} is impossible; allowed range 0 or more.")
-        return amount
+    def clean(self):
+        cleaned = super().clean()
+        amount, unit = cleaned.get("amount"), cleaned.get("unit")
+        if amount is not None and unit in validators.FEEDING_MAX:
+            try:
+                check_range("Amount", amount, 0, validators.FEEDING_MAX[unit], unit)
+            except forms.ValidationError as error:
+                self.add_error("amount", error)
+        return cleaned
 
 
-class WaterChangeForm(forms.ModelForm):
+class WaterChangeForm(NamedErrorsMixin, forms.ModelForm):
     class Meta:
         model = WaterChange
         fields = ["percent", "litres", "source_water", "note"]
         labels = {"percent": "Percent of volume", "litres": "Litres"}
+
+    def clean_percent(self):
+        return check_range("Percent of volume", self.cleaned_data.get("percent"), 0, 100, "%")
+
+    def clean_litres(self):
+        litres = self.cleaned_data.get("litres")
+        tank = self.instance.tank if self.instance.tank_id else None
+        if tank is not None:
+            return check_range("Litres", litres, 0, tank.volume_l, "L", f" (the volume of tank {tank.code})")
+        return check_range("Litres", litres, 0, validators.MAX_TANK_VOLUME_L, "L")
 
     def clean(self):
         cleaned = super().clean()
@@ -204,7 +226,7 @@ class WaterChangeForm(forms.ModelForm):
         return cleaned
 
 
-class CensusForm(forms.ModelForm):
+class CensusForm(NamedErrorsMixin, forms.ModelForm):
     aliquot_counts_text = forms.CharField(
         required=False, label="Aliquot counts",
         help_text="Animals in each aliquot, separated by commas or spaces, e.g. 31, 27, 35.",
@@ -218,6 +240,26 @@ class CensusForm(forms.ModelForm):
                   "total_mass_g": "Total wet mass (g)", "sample_mass_g": "Subsample mass (g)",
                   "sample_count": "Animals in subsample"}
 
+    def clean_direct_count(self):
+        return check_range("Direct count", self.cleaned_data.get("direct_count"), 0, MAX_COUNT, "animals")
+
+    def clean_aliquot_ml(self):
+        return check_range("Aliquot volume", self.cleaned_data.get("aliquot_ml"), 0.001, validators.CENSUS_MAX_ML, "mL")
+
+    def clean_total_ml(self):
+        return check_range("Total volume", self.cleaned_data.get("total_ml"), 0.001, validators.CENSUS_MAX_ML, "mL")
+
+    def clean_total_mass_g(self):
+        return check_range("Total wet mass", self.cleaned_data.get("total_mass_g"), 0.0001, validators.CENSUS_MAX_MASS_G,
+                           "g")
+
+    def clean_sample_mass_g(self):
+        return check_range("Subsample mass", self.cleaned_data.get("sample_mass_g"), 0.0001,
+                           validators.CENSUS_MAX_MASS_G, "g")
+
+    def clean_sample_count(self):
+        return check_range("Animals in subsample", self.cleaned_data.get("sample_count"), 1, MAX_COUNT, "animals")
+
     def clean_aliquot_counts_text(self):
         text = self.cleaned_data.get("aliquot_counts_text", "")
         counts = []
@@ -229,12 +271,25 @@ class CensusForm(forms.ModelForm):
             if not 0 <= n <= MAX_COUNT:
                 raise forms.ValidationError(f"Aliquot counts: {n} is impossible; allowed range 0 to {MAX_COUNT:,}.")
             counts.append(n)
+        if len(counts) > MAX_ALIQUOTS:
+            raise forms.ValidationError(f"Aliquot counts: {len(counts)} aliquots is impossible; allowed range 1 to "
+                                        f"{MAX_ALIQUOTS}.")
         return counts
 
     def clean(self):
         from .services import census_estimate
 
         cleaned = super().clean()
+        if self.errors:
+            return cleaned
+        aliquot, total = cleaned.get("aliquot_ml"), cleaned.get("total_ml")
+        if aliquot is not None and total is not None and aliquot > total:
+            self.add_error("aliquot_ml", f"Aliquot volume: {aliquot:g} mL is impossible; allowed range 0.001 to "
+                                         f"{total:g} mL (the total volume).")
+        sample, whole = cleaned.get("sample_mass_g"), cleaned.get("total_mass_g")
+        if sample is not None and whole is not None and sample > whole:
+            self.add_error("sample_mass_g", f"Subsample mass: {sample:g} g is impossible; allowed range 0.0001 to "
+                                            f"{whole:g} g (the total wet mass).")
         if self.errors:
             return cleaned
         self.instance.aliquot_counts = cleaned.get("aliquot_counts_text") or []
@@ -248,15 +303,16 @@ class CensusForm(forms.ModelForm):
         return cleaned
 
 
-class SpeciesForm(forms.ModelForm):
+class SpeciesForm(NamedErrorsMixin, forms.ModelForm):
     class Meta:
         model = Species
         fields = ["common_name", "habitat", "check_interval_hours", "feeding_interval_days",
                   "water_change_interval_days", "water_change_fraction", "census_interval_days",
                   "max_density_per_l", "reserve_min_animals", "notes"]
+        labels = {"max_density_per_l": "Maximum density (animals/L)", "reserve_min_animals": "Reserve (animals)"}
 
 
-class CareTargetForm(forms.ModelForm):
+class CareTargetForm(NamedErrorsMixin, forms.ModelForm):
     class Meta:
         model = CareTarget
         fields = ["parameter", "low", "high", "source"]
@@ -265,7 +321,7 @@ class CareTargetForm(forms.ModelForm):
     def clean(self):
         cleaned = super().clean()
         low, high, key = cleaned.get("low"), cleaned.get("high"), cleaned.get("parameter")
-        p = parameters.BY_KEY.get(key)  # derived values (e.g. DO % saturation) have no physical bounds here
+        p = parameters.BY_KEY.get(key) or derived.BY_KEY.get(key)  # derived values carry their own bounds
         if p is not None:
             for name, value in (("low", low), ("high", high)):
                 if value is not None and not (p.minimum <= value <= p.maximum):

@@ -25,6 +25,7 @@ from .models import (CareTarget, Census, Check, Deviation, Feeding, Species, Spl
                      WaterChange, tank_code_validator)
 from .idempotency import once_per_submission
 from .roles import RESEARCHER, TECHNICIAN, role_required
+from .validators import MAX_ANIMALS, MAX_TEXT, NamedErrorsMixin, check_moment
 
 READ_ROLES = (TECHNICIAN, RESEARCHER)
 PERIOD_DAYS = (30, 60, 120, 365)  # the period chooser's allow-list
@@ -35,7 +36,6 @@ LOGISTIC_MIN_POINTS = 6  # fewer points cannot tell a logistic curve from an exp
 FORECAST_HORIZON_DAYS = 365
 MORTALITY_WATCH_FACTOR = 2.0  # overview: "watch" a tank dying at twice its species' median rate (lab setting)
 FLAGGED_WATCH_PCT = 20.0  # overview: "watch" when a fifth of the checks had a value outside target (lab setting)
-MAX_ANIMALS = 10_000_000  # no culture tank holds more; larger numbers are typing errors
 CACHE_SECONDS = 24 * 3600
 
 
@@ -128,6 +128,8 @@ def _aicc_log(y, predicted, k: int) -> float:
     # Both models compared on ln(count), the scale of multiplicative counting error; k counts the
     # residual variance too. Small-sample corrected AIC (Hurvich & Tsai 1989).
     n = len(y)
+    if any(not (math.isfinite(b) and b > 0) for b in predicted):
+        return math.inf  # a curve predicting no (or infinitely many) animals at a count cannot win on ln(count)
     sse = sum((math.log(a) - math.log(b)) ** 2 for a, b in zip(y, predicted))
     sse = max(sse, 1e-12)
     return n * math.log(sse / n) + 2 * k + (2 * k * (k + 1)) / max(n - k - 1, 1)
@@ -694,7 +696,7 @@ def _animals(label: str, value, minimum: float) -> float:
     return value
 
 
-class SplitForm(forms.Form):
+class SplitForm(NamedErrorsMixin, forms.Form):
     split_at = forms.DateTimeField(
         required=False, label="Split at", help_text="Leave empty for now.",
         widget=forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M"),
@@ -702,20 +704,15 @@ class SplitForm(forms.Form):
     source_before = forms.FloatField(label="Animals before the split (estimate)",
                                      help_text="Usually the latest census estimate.")
     stayed = forms.FloatField(label="Animals left in this tank (estimate)")
-    note = forms.CharField(required=False, widget=forms.TextInput(attrs={"placeholder": "Note"}))
+    note = forms.CharField(required=False, max_length=MAX_TEXT, widget=forms.TextInput(attrs={"placeholder": "Note"}))
 
     def __init__(self, *args, tank: Tank, **kwargs):
         super().__init__(*args, **kwargs)
         self.tank = tank
 
     def clean_split_at(self):
-        value = self.cleaned_data.get("split_at")
-        if value and value > timezone.now() + timedelta(minutes=5):
-            raise forms.ValidationError(f"Split at: {value:%Y-%m-%d %H:%M} is in the future.")
-        if value and timezone.localtime(value).date() < self.tank.started_on:
-            raise forms.ValidationError(f"Split at: {value:%Y-%m-%d} is before tank {self.tank.code} was started "
-                                        f"({self.tank.started_on:%Y-%m-%d}).")
-        return value
+        return check_moment("Split at", self.cleaned_data.get("split_at"), started_on=self.tank.started_on,
+                            what=f"when tank {self.tank.code} was started")
 
     def clean_source_before(self):
         return _animals("Animals before the split", self.cleaned_data.get("source_before"), 1)
@@ -723,8 +720,16 @@ class SplitForm(forms.Form):
     def clean_stayed(self):
         return _animals("Animals left in this tank", self.cleaned_data.get("stayed"), 0)
 
+    def clean(self):
+        cleaned = super().clean()
+        before, stayed = cleaned.get("source_before"), cleaned.get("stayed")
+        if before is not None and stayed is not None and stayed > before:
+            self.add_error("stayed", f"Animals left in this tank: {stayed:g} is impossible; allowed range 0 to "
+                                     f"{before:g} animals (the animals before the split).")
+        return cleaned
 
-class SplitPartForm(forms.Form):
+
+class SplitPartForm(NamedErrorsMixin, forms.Form):
     """One destination: an existing tank of the same species, or a new tank set up now."""
 
     destination = forms.ChoiceField(required=False, label="To existing tank")

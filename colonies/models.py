@@ -17,6 +17,8 @@ from simple_history.models import HistoricalRecords
 
 from . import derived, parameters
 from .flags import Target
+from .validators import (CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
+                         MAX_DENSITY_PER_L, MAX_INTERVAL_DAYS, MAX_TANK_VOLUME_L, DateRange, Range)
 
 DEFAULT_CHECK_INTERVAL_HOURS = 24
 DEFAULT_FEEDING_INTERVAL_DAYS = 3
@@ -123,23 +125,29 @@ class Species(models.Model):
     common_name = models.CharField(max_length=120, blank=True)
     habitat = models.CharField(max_length=12, choices=Habitat.choices, default=Habitat.FRESHWATER)
     check_interval_hours = models.PositiveIntegerField(
-        default=DEFAULT_CHECK_INTERVAL_HOURS, validators=[MinValueValidator(1)],
+        default=DEFAULT_CHECK_INTERVAL_HOURS,
+        validators=[Range("Check interval", 1, MAX_CHECK_INTERVAL_HOURS, "h")],
         help_text="A daily check is due this many hours after the last one.",
     )
-    feeding_interval_days = models.PositiveIntegerField(default=DEFAULT_FEEDING_INTERVAL_DAYS, validators=[MinValueValidator(1)])
+    feeding_interval_days = models.PositiveIntegerField(
+        default=DEFAULT_FEEDING_INTERVAL_DAYS, validators=[Range("Feeding interval", 1, MAX_INTERVAL_DAYS, "days")])
     water_change_interval_days = models.PositiveIntegerField(
-        default=DEFAULT_WATER_CHANGE_INTERVAL_DAYS, validators=[MinValueValidator(1)]
+        default=DEFAULT_WATER_CHANGE_INTERVAL_DAYS,
+        validators=[Range("Water change interval", 1, MAX_INTERVAL_DAYS, "days")],
     )
     water_change_fraction = models.FloatField(
-        default=DEFAULT_WATER_CHANGE_FRACTION, validators=[MinValueValidator(0.01), MaxValueValidator(1.0)],
+        default=DEFAULT_WATER_CHANGE_FRACTION, validators=[Range("Water change fraction", 0.01, 1.0)],
         help_text="Fraction of the tank volume renewed at each water change (0.01-1).",
     )
-    census_interval_days = models.PositiveIntegerField(default=DEFAULT_CENSUS_INTERVAL_DAYS, validators=[MinValueValidator(1)])
+    census_interval_days = models.PositiveIntegerField(
+        default=DEFAULT_CENSUS_INTERVAL_DAYS, validators=[Range("Census interval", 1, MAX_INTERVAL_DAYS, "days")])
     max_density_per_l = models.PositiveIntegerField(
-        null=True, blank=True, help_text="Maximum stocking density, animals per litre of tank volume."
+        null=True, blank=True, validators=[Range("Maximum density", 1, MAX_DENSITY_PER_L, "animals/L")],
+        help_text="Maximum stocking density, animals per litre of tank volume.",
     )
     reserve_min_animals = models.PositiveIntegerField(
-        default=0, help_text="Animals that must stay in a culture and never be booked out."
+        default=0, validators=[Range("Reserve", 0, MAX_COUNT, "animals")],
+        help_text="Animals that must stay in a culture and never be booked out.",
     )
     notes = models.TextField(blank=True, help_text="Care notes; say here where no published value exists.")
     sources = models.JSONField(
@@ -151,6 +159,18 @@ class Species(models.Model):
     class Meta:
         ordering = ["scientific_name"]
         verbose_name_plural = "species"
+        constraints = [
+            models.CheckConstraint(
+                condition=Q(check_interval_hours__gte=1, check_interval_hours__lte=MAX_CHECK_INTERVAL_HOURS)
+                & Q(feeding_interval_days__gte=1, feeding_interval_days__lte=MAX_INTERVAL_DAYS)
+                & Q(water_change_interval_days__gte=1, water_change_interval_days__lte=MAX_INTERVAL_DAYS)
+                & Q(census_interval_days__gte=1, census_interval_days__lte=MAX_INTERVAL_DAYS)
+                & Q(water_change_fraction__gte=0.01, water_change_fraction__lte=1.0)
+                & Q(reserve_min_animals__lte=MAX_COUNT)
+                & (Q(max_density_per_l__isnull=True) | Q(max_density_per_l__lte=MAX_DENSITY_PER_L)),
+                name="species_schedule_plausible",
+            ),
+        ]
 
     def __str__(self):
         return f"{self.scientific_name} ({self.common_name})" if self.common_name else self.scientific_name
@@ -160,6 +180,17 @@ class Species(models.Model):
 
     def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
         return parameters.for_habitat(self.habitat)
+
+
+def target_within_bounds_q() -> Q:
+    """Database condition: a target's ends lie within its parameter's physical bounds (measured or derived)."""
+    condition = Q()
+    for p in (*parameters.PARAMETERS, *derived.DERIVED):
+        inside = Q(parameter=p.key)
+        for end in ("low", "high"):
+            inside &= Q(**{f"{end}__isnull": True}) | Q(**{f"{end}__gte": p.minimum, f"{end}__lte": p.maximum})
+        condition |= inside
+    return condition
 
 
 class CareTarget(models.Model):
@@ -180,6 +211,7 @@ class CareTarget(models.Model):
                 condition=Q(low__isnull=True) | Q(high__isnull=True) | Q(low__lte=models.F("high")),
                 name="care_target_low_not_above_high",
             ),
+            models.CheckConstraint(condition=target_within_bounds_q(), name="care_target_within_physical_bounds"),
         ]
 
     def __str__(self):
@@ -274,12 +306,12 @@ class Tank(models.Model):
     room = models.ForeignKey(Room, on_delete=models.PROTECT, related_name="tanks")
     position = models.CharField(max_length=30, blank=True, help_text="Rack and shelf, e.g. 'rack 2, shelf B'.")
     species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="tanks")
-    volume_l = models.FloatField(validators=[MinValueValidator(0.01), MaxValueValidator(10000)],
+    volume_l = models.FloatField(validators=[Range("Volume", 0.01, MAX_TANK_VOLUME_L, "L")],
                                  help_text="Water volume in litres.")
     system = models.CharField(max_length=12, choices=System.choices, default=System.STATIC)
     substrate = models.CharField(max_length=80, blank=True)
     status = models.CharField(max_length=12, choices=Status.choices, default=Status.ACTIVE)
-    started_on = models.DateField(default=timezone.localdate)
+    started_on = models.DateField(default=timezone.localdate, validators=[DateRange("Started on")])
     notes = models.TextField(blank=True)
     founded_from = models.ManyToManyField(
         "self", symmetrical=False, blank=True, related_name="offspring",
@@ -293,6 +325,7 @@ class Tank(models.Model):
         ordering = ["code"]
         constraints = [
             models.CheckConstraint(condition=Q(volume_l__gt=0), name="tank_volume_positive"),
+            models.CheckConstraint(condition=Q(volume_l__lte=MAX_TANK_VOLUME_L), name="tank_volume_plausible"),
         ]
 
     def __str__(self):
@@ -351,6 +384,7 @@ class TankTarget(models.Model):
                 condition=Q(low__isnull=True) | Q(high__isnull=True) | Q(low__lte=models.F("high")),
                 name="tank_target_low_not_above_high",
             ),
+            models.CheckConstraint(condition=target_within_bounds_q(), name="tank_target_within_physical_bounds"),
         ]
 
     def __str__(self):
@@ -421,7 +455,7 @@ class Check(Readings, Recorded):
                 name=f"check_{p.key}_physical_bounds",
             )
             for p in parameters.PARAMETERS
-        ]
+        ] + [models.CheckConstraint(condition=Q(dead_removed__lte=MAX_COUNT), name="check_dead_removed_plausible")]
         indexes = [
             # The round's "last value" subqueries and the tank page's recent checks.
             models.Index(fields=["tank", "-observed_at"], name="check_tank_recent"),
@@ -457,12 +491,16 @@ class Feeding(Recorded):
         PINCH = "pinch", "pinch"
 
     food = models.CharField(max_length=80, help_text="e.g. sinking fish-food pellets, liver paste, spirulina.")
-    amount = models.FloatField(validators=[MinValueValidator(0)])
+    amount = models.FloatField(validators=[Range("Amount", 0, max(FEEDING_MAX.values()))],
+                               help_text="Per unit at most: " + ", ".join(f"{v:g} {u}" for u, v in FEEDING_MAX.items()))
     unit = models.CharField(max_length=8, choices=Unit.choices, default=Unit.G)
     history = HistoricalRecords()
 
     class Meta(Recorded.Meta):
-        constraints = [models.CheckConstraint(condition=Q(amount__gte=0), name="feeding_amount_not_negative")]
+        constraints = [
+            models.CheckConstraint(condition=Q(amount__gte=0), name="feeding_amount_not_negative"),
+            models.CheckConstraint(condition=Q(amount__lte=max(FEEDING_MAX.values())), name="feeding_amount_plausible"),
+        ]
 
     def __str__(self):
         return f"Feeding of {self.tank}: {self.amount:g} {self.unit} {self.food}"
@@ -473,7 +511,8 @@ class Feeding(Recorded):
 
 class WaterChange(Recorded):
     percent = models.FloatField(null=True, blank=True, validators=[MinValueValidator(0), MaxValueValidator(100)])
-    litres = models.FloatField(null=True, blank=True, validators=[MinValueValidator(0)])
+    litres = models.FloatField(null=True, blank=True, validators=[Range("Litres", 0, MAX_TANK_VOLUME_L, "L")],
+                               help_text="At most the tank's volume.")
     source_water = models.CharField(max_length=80, blank=True,
                                     help_text="e.g. aged dechlorinated tap water, reconstituted salts, artificial seawater.")
     history = HistoricalRecords()
@@ -486,10 +525,13 @@ class WaterChange(Recorded):
                                    name="water_change_percent_0_100"),
             models.CheckConstraint(condition=Q(litres__isnull=True) | Q(litres__gte=0),
                                    name="water_change_litres_not_negative"),
+            models.CheckConstraint(condition=Q(litres__isnull=True) | Q(litres__lte=MAX_TANK_VOLUME_L),
+                                   name="water_change_litres_plausible"),
         ]
 
     def __str__(self):
-        amount = f"{self.percent:g} %" if self.percent is not None else f"{self.litres:g} L"
+        amount = (f"{self.percent:g} %" if self.percent is not None
+                  else f"{self.litres:g} L" if self.litres is not None else "amount not given")
         return f"Water change of {self.tank}: {amount}"
 
     def get_absolute_url(self):
@@ -529,6 +571,15 @@ class Census(Recorded):
         verbose_name_plural = "censuses"
         constraints = [
             models.CheckConstraint(condition=Q(estimate__isnull=True) | Q(estimate__gte=0), name="census_estimate_not_negative"),
+            models.CheckConstraint(
+                condition=(Q(direct_count__isnull=True) | Q(direct_count__lte=MAX_COUNT))
+                & (Q(sample_count__isnull=True) | Q(sample_count__lte=MAX_COUNT))
+                & (Q(aliquot_ml__isnull=True) | Q(aliquot_ml__gt=0, aliquot_ml__lte=CENSUS_MAX_ML))
+                & (Q(total_ml__isnull=True) | Q(total_ml__gt=0, total_ml__lte=CENSUS_MAX_ML))
+                & (Q(total_mass_g__isnull=True) | Q(total_mass_g__gt=0, total_mass_g__lte=CENSUS_MAX_MASS_G))
+                & (Q(sample_mass_g__isnull=True) | Q(sample_mass_g__gt=0, sample_mass_g__lte=CENSUS_MAX_MASS_G)),
+                name="census_raw_data_plausible",
+            ),
         ]
 
     def __str__(self):
@@ -723,6 +774,8 @@ class Split(Voidable):
         constraints = [
             models.CheckConstraint(condition=Q(source_before__gt=0), name="split_source_before_positive"),
             models.CheckConstraint(condition=Q(stayed__gte=0), name="split_stayed_not_negative"),
+            models.CheckConstraint(condition=Q(stayed__lte=models.F("source_before"), source_before__lte=MAX_ANIMALS),
+                                   name="split_stayed_not_above_before"),
         ]
         indexes = [
             # The tank page's and the overview's population series (latest split per tank).
@@ -757,6 +810,7 @@ class SplitPart(models.Model):
         ordering = ["split", "destination__code"]
         constraints = [
             models.CheckConstraint(condition=Q(animals__gte=0), name="split_part_animals_not_negative"),
+            models.CheckConstraint(condition=Q(animals__lte=MAX_ANIMALS), name="split_part_animals_plausible"),
             models.UniqueConstraint(fields=["split", "destination"], name="split_part_one_per_destination"),
         ]
 

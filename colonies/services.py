@@ -1,7 +1,6 @@
 """Writes that span several rows or models. Each is one transaction: all or nothing."""
 import math
 from dataclasses import dataclass
-from datetime import timedelta
 
 from django.core.exceptions import ValidationError
 from django.db import transaction
@@ -11,6 +10,7 @@ from simple_history.utils import bulk_create_with_history
 from . import deviations, parameters, population
 from .flags import flags_for
 from .models import Census, Check, Feeding, Split, SplitPart, Tank, WaterChange
+from .validators import check_moment
 
 OBSERVATION_FIELDS = ("activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "note",
                       "corrective_action")
@@ -183,6 +183,12 @@ class NewTank:
     position: str = ""
 
 
+# Split numbers are estimates: the parts (stayed + moved) may exceed the estimate before the split
+# by this fraction before the books are refused as impossible. Common practice: aliquot or
+# gravimetric estimates of worm numbers are rarely better than ±20-30 %, so 50 % is generous.
+SPLIT_BOOKS_TOLERANCE = 0.5
+
+
 @transaction.atomic
 def record_split(*, user, source: Tank, source_before: float, stayed: float, parts: list[tuple[Tank | NewTank, float]],
                  split_at=None, note: str = "") -> Split:
@@ -195,12 +201,22 @@ def record_split(*, user, source: Tank, source_before: float, stayed: float, par
     split_at = split_at or timezone.now()
     if source.status == Tank.Status.RETIRED:
         raise ValueError(f"Tank {source.code} is retired; it cannot be split.")
-    if split_at > timezone.now() + timedelta(minutes=5):
-        raise ValueError(f"Split at: {timezone.localtime(split_at):%Y-%m-%d %H:%M} is in the future.")
+    try:
+        check_moment("Split at", split_at, started_on=source.started_on, what=f"when tank {source.code} was started")
+    except ValidationError as error:
+        raise ValueError(" ".join(error.messages)) from None
     if not parts:
         raise ValueError("Destinations: a split needs at least one destination tank.")
-    population.split_balance(  # raises on impossible numbers
+    if not 0 <= stayed <= source_before:
+        raise ValueError(f"Animals left in this tank: {stayed:g} is impossible; allowed range 0 to {source_before:g} "
+                         "animals (the animals before the split).")
+    balance = population.split_balance(  # raises on impossible numbers
         source_before, [stayed] + [animals for _, animals in parts])
+    if balance.parts_total > source_before * (1 + SPLIT_BOOKS_TOLERANCE):
+        raise ValueError(
+            f"Animals moved: {balance.parts_total - stayed:g} in total is impossible; allowed range 0 to "
+            f"{source_before * (1 + SPLIT_BOOKS_TOLERANCE) - stayed:g} animals (the animals before the split, "
+            f"{source_before:g}, plus {SPLIT_BOOKS_TOLERANCE:.0%} for counting error, less the {stayed:g} that stayed).")
     split = Split(source=source, split_at=split_at, recorded_by=user, source_before=source_before, stayed=stayed,
                   note=note)
     split._history_user = user

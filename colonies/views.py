@@ -108,6 +108,7 @@ def round_view(request, room_code=None):
     when = ObservedAtForm(data, prefix="round")
     if request.method == "POST":
         valid = when.is_valid() & all([f.is_valid() for f in forms])
+        valid = valid and when.check_started([f.tank for f in forms if f.has_entry()])
         if valid and not unknown:
             rows = [(f.tank, f.row()) for f in forms if f.has_entry()]
             saved = services.record_round(user=request.user, rows=rows, observed_at=when.cleaned_data.get("observed_at"))

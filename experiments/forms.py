@@ -1,27 +1,39 @@
-from datetime import timedelta
-
 from django import forms
 from django.utils import timezone
 
 from colonies.forms import reason_field
 from colonies.models import Species, Tank
+from colonies.validators import FUTURE_LEEWAY, MAX_TEXT, NamedErrorsMixin, check_date, check_moment
 
 from . import filetypes, uploads
 from .allocation import BLOCK
 from .models import Attachment, Cohort, Protocol, Stimulus, Study, Trial
-from .validators import BOUNDS, outside_message
+from .validators import BOUNDS, MAX_BOOKING_AHEAD_DAYS, MAX_CONDITIONS, outside_message
 
 DATE = forms.DateInput(attrs={"type": "date"}, format="%Y-%m-%d")
 DATETIME = forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M")
 MAX_CLUSTER_POINTS = 50
-DRAWN_AT_LEEWAY_MIN = 5  # clocks differ a little; the same leeway as a trial's run_at
 
 
 def _minute(dt) -> str:
-    return f"{timezone.localtime(dt):%Y-%m-%d %H:%M}"
+    try:
+        dt = timezone.localtime(dt)
+    except (OverflowError, ValueError):  # year 1 or 9999 does not shift into another zone
+        pass
+    return f"{dt:%Y-%m-%d %H:%M}"
 
 
-class ReasonForm(forms.Form):
+def errors_text(form) -> str:
+    """Every error of a form as one line for a flash message; each names its field (see name_errors)."""
+    parts = []
+    for name, messages in form.errors.items():
+        label = str(form.fields[name].label or name.replace("_", " ").capitalize()) if name in form.fields else ""
+        for message in messages:
+            parts.append(message if not label or message.startswith(label) else f"{label}: {message}")
+    return " ".join(parts)
+
+
+class ReasonForm(NamedErrorsMixin, forms.Form):
     reason = reason_field(help_text="Required; kept in the history.",
                           error_messages={"required": "Reason: give a reason; it is kept in the history."})
 
@@ -32,7 +44,7 @@ class ReasonForm(forms.Form):
         return reason
 
 
-class BookingForm(forms.Form):
+class BookingForm(NamedErrorsMixin, forms.Form):
     protocol = forms.ModelChoiceField(queryset=Protocol.objects.none(),
                                       help_text="Only approved protocols in force are listed.")
     species = forms.ModelChoiceField(queryset=Species.objects.all())
@@ -55,7 +67,8 @@ class BookingForm(forms.Form):
         day = self.cleaned_data["needed_on"]
         if day < self.today:
             raise forms.ValidationError(f"Date {day:%Y-%m-%d} is in the past; book for {self.today:%Y-%m-%d} or later.")
-        return day
+        return check_date("Needed on", day, earliest=self.today, ahead_days=MAX_BOOKING_AHEAD_DAYS, today=self.today,
+                          why=" (at most a year ahead)")
 
     def clean(self):
         data = super().clean()
@@ -65,7 +78,7 @@ class BookingForm(forms.Form):
         return data
 
 
-class DrawForm(forms.Form):
+class DrawForm(NamedErrorsMixin, forms.Form):
     count = forms.IntegerField(min_value=1, label="Animals drawn",
                                error_messages={"min_value": "Animals drawn %(value)s is not possible: at least 1."})
     drawn_at = forms.DateTimeField(widget=DATETIME, required=False, help_text="Empty: now.")
@@ -83,7 +96,7 @@ class DrawForm(forms.Form):
             return None
         # The field holds whole minutes: compare with the minute the booking was made.
         earliest = self.booking.booked_at.replace(second=0, microsecond=0)
-        latest = timezone.now() + timedelta(minutes=DRAWN_AT_LEEWAY_MIN)
+        latest = timezone.now() + FUTURE_LEEWAY
         if not earliest <= drawn_at <= latest:
             raise forms.ValidationError(f"Drawn at {_minute(drawn_at)} is not possible: allowed range "
                                         f"{_minute(earliest)} (when it was booked) to {_minute(latest)} (now).")
@@ -96,14 +109,14 @@ class DrawForm(forms.Form):
         return count
 
 
-class CohortEndForm(forms.Form):
+class CohortEndForm(NamedErrorsMixin, forms.Form):
     end = forms.ChoiceField(choices=Cohort.End.choices)
     returned_to = forms.ModelChoiceField(queryset=Tank.objects.in_use(), required=False)
     returned_count = forms.IntegerField(min_value=0, required=False, label="Animals returned",
                                         error_messages={"min_value": "Animals returned %(value)s is not possible: "
                                                                      "at least 0."})
     method = forms.CharField(max_length=200, required=False, label="Retirement method")
-    note = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
+    note = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False, max_length=MAX_TEXT)
 
     def __init__(self, *args, cohort, **kwargs):
         super().__init__(*args, **kwargs)
@@ -128,12 +141,12 @@ class CohortEndForm(forms.Form):
         return data
 
 
-class StudyForm(forms.Form):
+class StudyForm(NamedErrorsMixin, forms.Form):
     code = forms.SlugField(max_length=40, help_text="Short name for addresses and exports, e.g. 'uv-dose-2026'.")
     title = forms.CharField(max_length=200)
     protocol = forms.ModelChoiceField(queryset=Protocol.objects.none())
-    question = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
-    conditions = forms.CharField(widget=forms.Textarea(attrs={"rows": 4}),
+    question = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False, max_length=MAX_TEXT)
+    conditions = forms.CharField(widget=forms.Textarea(attrs={"rows": 4}), max_length=MAX_TEXT,
                                  help_text="One condition per line; the first is the reference (control).")
     replicates = forms.IntegerField(
         min_value=1, max_value=200, initial=5, help_text="Trials (dishes) per condition.",
@@ -150,7 +163,7 @@ class StudyForm(forms.Form):
                                                                "allowed range 1–86400 s."},
                                               label="Observation window (s)",
                                               help_text="Still clumped at the end: censored at the window.")
-    exclusion_criteria = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False)
+    exclusion_criteria = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False, max_length=MAX_TEXT)
     blinded = forms.BooleanField(required=False, initial=True, help_text="Scorers see a code, not the condition.")
     scorer_not_operator = forms.BooleanField(
         required=False, initial=False, label="Scorer must not be the operator",
@@ -170,6 +183,8 @@ class StudyForm(forms.Form):
         labels = [line.strip() for line in self.cleaned_data["conditions"].splitlines() if line.strip()]
         if len(labels) < 2:
             raise forms.ValidationError("Give at least two conditions, one per line.")
+        if len(labels) > MAX_CONDITIONS:
+            raise forms.ValidationError(f"Conditions: {len(labels)} is impossible; allowed range 2–{MAX_CONDITIONS}.")
         if len(set(labels)) != len(labels):
             raise forms.ValidationError("Each condition needs its own label.")
         if any(len(label) > 80 for label in labels):
@@ -210,9 +225,10 @@ def clusters_text(points: list[dict]) -> str:
     return "\n".join(f"{p['t_s']:g} {p['clusters']} {p['largest_fraction']:g}" for p in points or [])
 
 
-class OutcomeFields(forms.ModelForm):
+class OutcomeFields(NamedErrorsMixin, forms.ModelForm):
     clusters_text = forms.CharField(
         widget=forms.Textarea(attrs={"rows": 3, "placeholder": "60 3 0.55\n120 6 0.30"}), required=False,
+        max_length=MAX_TEXT,
         label="Clusters over time", help_text="One line per time point: time (s), cluster count, largest-cluster fraction.")
 
     def window(self) -> int:
@@ -289,6 +305,9 @@ class TrialForm(OutcomeFields):
 
     def window(self) -> int:
         return self.study.observation_window_s
+
+    def clean_run_at(self):
+        return check_moment("Stimulus applied at", self.cleaned_data.get("run_at"))
 
     def animals(self):
         return self.cleaned_data.get("animals")
@@ -381,7 +400,7 @@ class ScoreForm(OutcomeFields):
                 "clusters": data.get("clusters") or []}
 
 
-class AttachmentForm(forms.ModelForm):
+class AttachmentForm(NamedErrorsMixin, forms.ModelForm):
     """A file is taken for what its first bytes say it is (experiments/filetypes.py), not for its name."""
 
     class Meta:
@@ -414,7 +433,7 @@ class AttachmentForm(forms.ModelForm):
         return data
 
 
-class CalendarForm(forms.Form):
+class CalendarForm(NamedErrorsMixin, forms.Form):
     room = forms.ModelChoiceField(queryset=None, required=False, empty_label="All rooms", to_field_name="code")
     view = forms.ChoiceField(choices=[("week", "Week"), ("month", "Month")], required=False)
     start = forms.DateField(widget=DATE, required=False)
@@ -423,4 +442,8 @@ class CalendarForm(forms.Form):
         from colonies.models import Room
         super().__init__(*args, **kwargs)
         self.fields["room"].queryset = Room.objects.all()
+
+    def clean_start(self):
+        day = self.cleaned_data.get("start")
+        return None if day is None else check_date("Start", day, ahead_days=10 * 366)
 

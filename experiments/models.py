@@ -7,7 +7,6 @@ history (django-simple-history); history_user comes from the request middleware 
 explicitly in services.py.
 """
 from django.conf import settings
-from django.core.validators import MinValueValidator
 from django.db import models
 from django.db.models import Q
 from django.urls import reverse
@@ -15,9 +14,10 @@ from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
 from colonies.models import Species, Tank, Voidable
+from colonies.validators import DateRange
 
 from . import limits
-from .validators import BOUNDS, Within, within_q
+from .validators import BOUNDS, PROTOCOL_AHEAD_DAYS, Within, within_q
 
 DEFAULT_OBSERVATION_WINDOW_S = 600
 DEFAULT_REPLICATES = 5
@@ -77,14 +77,14 @@ class Protocol(models.Model):
     title = models.CharField(max_length=200)
     reference = models.CharField(max_length=40, unique=True, help_text="The lab's approval reference, e.g. 'AWB-2026-014'.")
     approver = models.CharField(max_length=120, help_text="Who approved it: person and body.")
-    approved_on = models.DateField(null=True, blank=True)
-    starts_on = models.DateField()
-    expires_on = models.DateField()
+    approved_on = models.DateField(null=True, blank=True, validators=[DateRange("Approved on")])
+    starts_on = models.DateField(validators=[DateRange("Starts on", ahead_days=PROTOCOL_AHEAD_DAYS)])
+    expires_on = models.DateField(validators=[DateRange("Expires on", ahead_days=PROTOCOL_AHEAD_DAYS)])
     status = models.CharField(max_length=10, choices=Status.choices, default=Status.DRAFT)
-    max_animals_per_trial = models.PositiveIntegerField(validators=[MinValueValidator(1)],
+    max_animals_per_trial = models.PositiveIntegerField(validators=[Within("animals")],
                                                         help_text="Most animals in one trial arena.")
     max_exposures_per_group = models.PositiveIntegerField(
-        validators=[MinValueValidator(1)], help_text="Most trials (exposures, sham included) for one cohort.")
+        validators=[Within("exposures")], help_text="Most trials (exposures, sham included) for one cohort.")
     min_rest_hours = models.FloatField(default=0, validators=[Within("min_rest_hours")],
                                        help_text="Least time between two exposures of the same cohort, hours.")
     max_cumulative_dose_mj_cm2 = models.FloatField(
@@ -102,6 +102,8 @@ class Protocol(models.Model):
             models.CheckConstraint(condition=Q(max_animals_per_trial__gte=1), name="protocol_max_animals_positive"),
             models.CheckConstraint(condition=Q(max_exposures_per_group__gte=1), name="protocol_max_exposures_positive"),
             models.CheckConstraint(condition=within_q("min_rest_hours"), name="protocol_min_rest_bounds"),
+            models.CheckConstraint(condition=within_q("max_animals_per_trial", "animals")
+                                   & within_q("max_exposures_per_group", "exposures"), name="protocol_maxima_bounds"),
         ]
 
     def __str__(self):
@@ -166,8 +168,8 @@ class Allowance(models.Model):
     max_voltage_v = models.FloatField(null=True, blank=True, validators=[Within("voltage_v")])
     max_field_v_cm = models.FloatField(null=True, blank=True, validators=[Within("field_v_cm")])
     max_pulse_width_ms = models.FloatField(null=True, blank=True, validators=[Within("pulse_width_ms")])
-    max_pulse_count = models.PositiveIntegerField(null=True, blank=True)
-    max_temp_step_c = models.FloatField(null=True, blank=True, validators=[MinValueValidator(0)],
+    max_pulse_count = models.PositiveIntegerField(null=True, blank=True, validators=[Within("pulse_count")])
+    max_temp_step_c = models.FloatField(null=True, blank=True, validators=[Within("temp_step_abs_c")],
                                         help_text="Largest temperature step either way, °C.")
     max_temp_rate_c_min = models.FloatField(null=True, blank=True, validators=[Within("temp_rate_c_min")])
     substance = models.CharField(max_length=80, blank=True, help_text="Chemical stimulus: the approved substance.")
@@ -182,6 +184,8 @@ class Allowance(models.Model):
             models.CheckConstraint(
                 condition=Q(wavelength_min_nm__isnull=True) | Q(wavelength_max_nm__isnull=True)
                 | Q(wavelength_min_nm__lte=models.F("wavelength_max_nm")), name="allowance_band_ordered"),
+            models.CheckConstraint(condition=within_q("max_pulse_count", "pulse_count")
+                                   & within_q("max_temp_step_c", "temp_step_abs_c"), name="allowance_maxima_bounds"),
         ]
 
     def __str__(self):
@@ -245,7 +249,7 @@ class Booking(models.Model):
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="bookings")
     tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="bookings")
     species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="+")
-    animals = models.PositiveIntegerField(validators=[MinValueValidator(1)], help_text="How many animals to draw.")
+    animals = models.PositiveIntegerField(validators=[Within("animals")], help_text="How many animals to draw.")
     needed_on = models.DateField(help_text="The day the animals will be drawn. Not drawn by the end of it: expires.")
     purpose = models.CharField(max_length=200, blank=True)
     status = models.CharField(max_length=10, choices=Status.choices, default=Status.ACTIVE)
@@ -262,6 +266,7 @@ class Booking(models.Model):
         ordering = ["needed_on", "tank__code"]
         constraints = [
             models.CheckConstraint(condition=Q(animals__gte=1), name="booking_animals_positive"),
+            models.CheckConstraint(condition=within_q("animals"), name="booking_animals_bounds"),
             models.CheckConstraint(condition=~Q(status="cancelled") | ~Q(cancel_reason=""),
                                    name="booking_cancel_has_reason"),
         ]
@@ -301,7 +306,7 @@ class Cohort(models.Model):
     booking = models.OneToOneField(Booking, on_delete=models.PROTECT, related_name="cohort")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="cohorts")
     origin_tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="cohorts_drawn")
-    size = models.PositiveIntegerField(validators=[MinValueValidator(1)], help_text="Animals drawn.")
+    size = models.PositiveIntegerField(validators=[Within("animals")], help_text="Animals drawn.")
     drawn_at = models.DateTimeField(default=timezone.now)
     drawn_by = _user_fk()
     end = models.CharField(max_length=10, choices=End.choices, blank=True)
@@ -319,6 +324,7 @@ class Cohort(models.Model):
         get_latest_by = "drawn_at"
         constraints = [
             models.CheckConstraint(condition=Q(size__gte=1), name="cohort_size_positive"),
+            models.CheckConstraint(condition=within_q("size", "animals"), name="cohort_size_bounds"),
             models.CheckConstraint(condition=Q(returned_count__isnull=True) | Q(returned_count__lte=models.F("size")),
                                    name="cohort_returned_not_above_size"),
             models.CheckConstraint(
@@ -370,7 +376,7 @@ class Study(models.Model):
     question = models.TextField(blank=True, help_text="What the study asks; written before allocation.")
     conditions = models.JSONField(default=list, help_text="Condition labels in order; the first is the reference "
                                                           "(control) for the log-rank comparisons.")
-    replicates = models.PositiveIntegerField(default=DEFAULT_REPLICATES, validators=[MinValueValidator(1)],
+    replicates = models.PositiveIntegerField(default=DEFAULT_REPLICATES, validators=[Within("replicates")],
                                              help_text="Trials (dishes) per condition; the dish is the unit.")
     primary_outcome = models.CharField(max_length=200, default="Time to disperse (s), right-censored at the window")
     observation_window_s = models.PositiveIntegerField(default=DEFAULT_OBSERVATION_WINDOW_S,
@@ -479,7 +485,7 @@ class Trial(Voidable):
     water_temp_c = _bounded("water_temp_c")
     light_lux = _bounded("light_lux", help_text="Ambient light level at the arena.")
     acclimation_min = _bounded("acclimation_min")
-    animals = models.PositiveIntegerField(validators=[MinValueValidator(1)], help_text="Animals in the arena.")
+    animals = models.PositiveIntegerField(validators=[Within("animals")], help_text="Animals in the arena.")
     # stimulus
     kind = models.CharField(max_length=12, choices=Stimulus.choices, verbose_name="Stimulus type")
     wavelength_nm = _bounded("wavelength_nm")
@@ -507,7 +513,8 @@ class Trial(Voidable):
     censored = models.BooleanField(default=False, help_text="Still clumped when the observation window ended.")
     clusters = models.JSONField(default=list, blank=True,
                                 help_text="Cluster count and largest-cluster fraction at recorded times.")
-    mortality_24h = models.PositiveIntegerField(null=True, blank=True, help_text="Dead animals 24 h after the trial.")
+    mortality_24h = models.PositiveIntegerField(null=True, blank=True, validators=[Within("mortality_24h")],
+                                                help_text="Dead animals 24 h after the trial.")
     scored_at = models.DateTimeField(null=True, blank=True)
     scored_by = _user_fk(null=True, blank=True)
     excluded_at = models.DateTimeField(null=True, blank=True)
@@ -525,6 +532,7 @@ class Trial(Voidable):
             models.UniqueConstraint(fields=["study", "slot"], condition=Q(voided_at__isnull=True),
                                     name="trial_one_per_slot"),
             models.CheckConstraint(condition=Q(animals__gte=1), name="trial_animals_positive"),
+            models.CheckConstraint(condition=within_q("animals"), name="trial_animals_bounds"),
             models.CheckConstraint(condition=Q(disperse_s__isnull=True) | Q(disperse_s__lte=models.F("observation_window_s")),
                                    name="trial_disperse_within_window"),
             models.CheckConstraint(condition=Q(censored=False) | Q(disperse_s=models.F("observation_window_s")),

@@ -35,6 +35,7 @@ from simple_history.utils import bulk_update_with_history
 from colonies.deviations import Finding, apply_findings
 from colonies.models import Census, Deviation, Split, SplitPart, Tank
 from colonies.roles import MANAGER, has_role
+from colonies.validators import FUTURE_LEEWAY
 
 from . import allocation, limits, stimulus
 from .models import (LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort, Override, Protocol,
@@ -217,7 +218,7 @@ def draw(*, user, booking: Booking, count: int | None = None, at: datetime | Non
     """
     now = timezone.now()
     at = at or now
-    if at > now + timedelta(minutes=5):
+    if at > now + FUTURE_LEEWAY:
         raise Refused(f"Drawn at {timezone.localtime(at):%Y-%m-%d %H:%M} is in the future; record a draw once "
                       "it has happened.")
     day = timezone.localdate(at)
@@ -386,7 +387,7 @@ def _check_order(trial: Trial, cohort: Cohort, now: datetime) -> None:
     if trial.run_at < cohort.drawn_at.replace(second=0, microsecond=0):  # forms record whole minutes
         raise ValidationError({"run_at": f"Run at {timezone.localtime(trial.run_at):%Y-%m-%d %H:%M} is before cohort "
                                          f"{cohort.label} was drawn ({timezone.localtime(cohort.drawn_at):%Y-%m-%d %H:%M})."})
-    if trial.run_at > now + timedelta(minutes=5):
+    if trial.run_at > now + FUTURE_LEEWAY:
         raise ValidationError({"run_at": "Run at is in the future; record a trial once it has run."})
     if trial.mortality_24h is not None and now < trial.run_at + timedelta(hours=24):
         raise ValidationError({"mortality_24h": "Mortality at 24 h can only be recorded from 24 h after the trial ran."})

@@ -55,13 +55,23 @@ BOUNDS: dict[str, Bound] = {
     "largest_fraction": Bound("Largest-cluster fraction", "", 0, 1),
     # protocol limits
     "min_rest_hours": Bound("Minimum rest between exposures", "h", 0, 8760),
+    "temp_step_abs_c": Bound("Temperature step (size)", "°C", 0, 40),
+    "exposures": Bound("Exposures per cohort", "", 1, 10000),
+    # counts of animals: bookings, cohorts, trial arenas (the booking form's long-standing limit)
+    "animals": Bound("Animals", "", 1, 100000),
+    "mortality_24h": Bound("Dead at 24 h", "", 0, 100000),
+    "replicates": Bound("Replicates", "", 1, 200),
 }
+MAX_CONDITIONS = 50  # conditions in one study; more is a pasted list, not a design
+MAX_BOOKING_AHEAD_DAYS = 366  # book at most a year ahead: a booking holds animals back from everyone else
+PROTOCOL_AHEAD_DAYS = 3653  # protocols start and expire at most ten years from today (approvals run 1-5 years)
 
 
 def outside_message(key: str, value) -> str:
     b = BOUNDS[key]
     unit = f" {b.unit}" if b.unit else ""
-    return f"{b.label} {value:g}{unit} is not possible here: allowed range {b.text()}."
+    shown = str(value) if isinstance(value, int) else f"{value:g}"
+    return f"{b.label} {shown}{unit} is not possible here: allowed range {b.text()}."
 
 
 @deconstructible
@@ -75,7 +85,7 @@ class Within:
         if value is None:
             return
         b = BOUNDS[self.key]
-        if not b.low <= value <= b.high:
+        if not b.low <= value <= b.high:  # also refuses nan
             raise ValidationError(outside_message(self.key, value), code="out_of_bounds")
 
     def __eq__(self, other):

@@ -25,21 +25,12 @@ from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_requi
 from . import charts, filetypes, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
-                    ScoreForm, StudyForm, TrialForm)
+                    ScoreForm, StudyForm, TrialForm, errors_text)
 from .models import Attachment, Booking, Cohort, Protocol, Stimulus, Study, Trial, cautions_for
 
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
 TRIAL_RELATED = ("study", "cohort__origin_tank", "protocol", "run_by", "scored_by", "override__recorded_by")
-
-
-def _form_errors(form) -> str:
-    """A bound form's errors as one line, each message led by its field's label unless it names it already."""
-    parts = []
-    for name, msgs in form.errors.items():
-        label = str(form[name].label) if name in form.fields else ""
-        parts += [m if not label or m.lower().startswith(label.lower()) else f"{label}: {m}" for m in msgs]
-    return " ".join(parts)
 
 
 def _error_text(error) -> str:
@@ -152,13 +143,16 @@ def booking_new(request):
 @require_GET
 @role_required(*READ)
 def booking_detail(request, pk):
-    booking = _get_booking(pk)
+    return _booking_page(request, _get_booking(pk))
+
+
+def _booking_page(request, booking, draw_form=None, status=200):
     booking.shown_status = booking.status_on(timezone.localdate())
     ctx = {"booking": booking, "cohort": Cohort.objects.filter(booking=booking).first(),
            "available": services.available(booking.tank), "population": services.current_population(booking.tank),
-           "draw_form": DrawForm(booking=booking), "cancel_form": ReasonForm(),
+           "draw_form": draw_form or DrawForm(booking=booking), "cancel_form": ReasonForm(),
            "may_change": _may_change_booking(request.user, booking) and has_role(request.user, *RUN)}
-    return render(request, "experiments/booking_detail.html", ctx)
+    return render(request, "experiments/booking_detail.html", ctx, status=status)
 
 
 def _reason_problem(form: ReasonForm, missing: str) -> str:
@@ -196,8 +190,8 @@ def booking_draw(request, pk):
         raise PermissionDenied("Only the researcher who booked or a manager may draw the animals.")
     form = DrawForm(request.POST, booking=booking)
     if not form.is_valid():
-        messages.error(request, "Nothing was drawn: " + _form_errors(form))
-        return redirect(booking)
+        messages.error(request, "Nothing was saved: " + errors_text(form))
+        return _booking_page(request, booking, draw_form=form, status=400)
     try:
         cohort = services.draw(user=request.user, booking=booking, count=form.cleaned_data["count"],
                                at=form.cleaned_data.get("drawn_at"))
@@ -257,7 +251,10 @@ def calendar(request):
 @require_GET
 @role_required(*READ)
 def cohort_detail(request, pk):
-    cohort = _get_cohort(pk)
+    return _cohort_page(request, _get_cohort(pk))
+
+
+def _cohort_page(request, cohort, end_form=None, status=200):
     trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("run_at"))
     rows = reports.ledger_rows(trials, trials, request.user)
     protocol = cohort.protocol
@@ -265,9 +262,9 @@ def cohort_detail(request, pk):
            "cumulative": None if any(r["blinded"] for r in rows) else sum(t.dose_mj_cm2 or 0 for t in trials),
            "last": trials[-1].run_at if trials else None,
            "next_allowed": trials[-1].run_at + timedelta(hours=protocol.min_rest_hours) if trials else None,
-           "end_form": CohortEndForm(cohort=cohort),
+           "end_form": end_form or CohortEndForm(cohort=cohort),
            "may_end": has_role(request.user, *RUN) and _may_end_cohort(request.user, cohort)}
-    return render(request, "experiments/cohort_detail.html", ctx)
+    return render(request, "experiments/cohort_detail.html", ctx, status=status)
 
 
 @require_POST
@@ -279,8 +276,8 @@ def cohort_end(request, pk):
         raise PermissionDenied("Only the researcher who drew the cohort or a manager may end it.")
     form = CohortEndForm(request.POST, cohort=cohort)
     if not form.is_valid():
-        messages.error(request, "Nothing was saved: " + _form_errors(form))
-        return redirect(cohort)
+        messages.error(request, "Nothing was saved: " + errors_text(form))
+        return _cohort_page(request, cohort, end_form=form, status=400)
     d = form.cleaned_data
     try:
         services.end_cohort(user=request.user, cohort=cohort, end=d["end"], returned_to=d.get("returned_to"),
@@ -488,16 +485,19 @@ def trial_new(request, code):
 @require_GET
 @role_required(*READ)
 def trial_detail(request, pk):
-    trial = _get_trial(pk)
+    return _trial_detail_page(request, _get_trial(pk))
+
+
+def _trial_detail_page(request, trial, attachment_form=None, status=200):
     blind = trial.study.hides_conditions_from(request.user)
     ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
-           "attachment_form": AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
+           "attachment_form": attachment_form or AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
            "may_set_aside": has_role(request.user, *RUN) and _may_set_aside(request.user, trial),
            "may_attach": has_role(request.user, *RUN) and services.may_change_study(request.user, trial.study),
            "may_score": has_role(request.user, *RUN) and _score_refusal(request.user, trial) is None,
            "cautions": [] if blind else trial.cautions(),
            "override": trial.override if reports._has_override(trial) else None}
-    return render(request, "experiments/trial_detail.html", ctx)
+    return render(request, "experiments/trial_detail.html", ctx, status=status)
 
 
 def _score_refusal(user, trial) -> str | None:
@@ -567,14 +567,15 @@ def attachment_add(request, pk):
         for field, message in refused.items():
             form.add_error(field if field in form.fields else None, message)
     if not form.is_valid():
-        messages.error(request, "Nothing was stored: " + _form_errors(form))
-        return redirect(trial)
+        messages.error(request, "Nothing was stored: " + errors_text(form))
+        return _trial_detail_page(request, trial, attachment_form=form, status=400)
     try:
         a = services.add_attachment(user=request.user, trial=trial, upload=form.cleaned_data["file"],
                                     kind=form.cleaned_data["kind"], caption=form.cleaned_data["caption"])
     except services.Refused as refusal:
+        form.add_error("file", str(refusal))
         messages.error(request, f"Nothing was stored. {refusal}")
-        return redirect(trial)
+        return _trial_detail_page(request, trial, attachment_form=form, status=400)
     messages.success(request, f"{a.name} stored (SHA-256 {a.sha256[:16]}…).")
     return redirect(trial)
 

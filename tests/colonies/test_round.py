@@ -112,6 +112,7 @@ def test_round_saves_one_check_per_filled_row_and_skips_empty_rows(client, techn
 
 def test_round_uses_the_observed_time_when_given(client, technician, tanks, url):
     client.force_login(technician)
+    Tank.objects.update(started_on=timezone.localdate() - timedelta(days=30))
     earlier = timezone.localtime() - timedelta(hours=10)
 
     response = client.post(url, round_data({"FW-01": {"ph": "7.0"}},
@@ -119,6 +120,31 @@ def test_round_uses_the_observed_time_when_given(client, technician, tanks, url)
 
     assert response.status_code == 302
     assert Check.objects.get().observed_at == earlier.replace(second=0, microsecond=0)
+
+
+@pytest.mark.parametrize("observed", ["1900-01-01T08:00", "0001-01-01T00:00", "9999-12-31T23:59"])
+def test_round_rejects_an_observed_time_before_the_tank_or_far_off_and_saves_nothing(client, technician, tanks, url,
+                                                                                     observed):
+    client.force_login(technician)
+
+    response = client.post(url, round_data({"FW-01": {"ph": "7.0"}}, **{"round-observed_at": observed}))
+
+    assert response.status_code == 400
+    assert "Observed at: " in page_text(response) and "allowed range" in page_text(response)
+    assert Check.objects.count() == 0
+
+
+def test_round_rejects_an_observed_time_before_the_tank_was_started(client, technician, tanks, url):
+    client.force_login(technician)
+    Tank.objects.update(started_on=timezone.localdate())
+    yesterday = timezone.localtime() - timedelta(days=1)
+
+    response = client.post(url, round_data({"FW-01": {"ph": "7.0"}},
+                                           **{"round-observed_at": yesterday.strftime("%Y-%m-%dT%H:%M")}))
+
+    assert response.status_code == 400
+    assert "(when tank FW-01 was started)" in page_text(response)
+    assert Check.objects.count() == 0
 
 
 def test_round_rejects_an_observed_time_in_the_future_and_saves_nothing(client, technician, tanks, url):

@@ -89,7 +89,7 @@ def test_feeding_with_negative_amount_is_rejected(client, technician, tank):
     response = _add(client, tank, "feeding", {"feeding-food": "pellets", "feeding-amount": "-1", "feeding-unit": "g"})
 
     assert response.status_code == 400
-    assert "Amount: -1 is impossible; allowed range 0 or more." in page_text(response)
+    assert "Amount: -1 g is impossible; allowed range 0 to 1000 g." in page_text(response)
     assert Feeding.objects.count() == 0
 
 
@@ -169,20 +169,31 @@ def test_census_by_wet_mass_scales_the_subsample(client, technician, tank):
 
 @pytest.mark.parametrize("data,message", [
     pytest.param({"census-method": "aliquot", "census-aliquot_counts_text": "12", "census-aliquot_ml": "2000",
-                  "census-total_ml": "1000"}, "more than total_ml", id="aliquot-larger-than-total"),
+                  "census-total_ml": "1000"}, "Aliquot volume: 2000 mL is impossible; allowed range 0.001 to 1000 mL (the total volume).",
+                 id="aliquot-larger-than-total"),
     pytest.param({"census-method": "aliquot", "census-aliquot_counts_text": "12, x", "census-aliquot_ml": "20",
                   "census-total_ml": "1000"}, "Aliquot counts: 'x' is not a whole number.", id="count-not-a-number"),
     pytest.param({"census-method": "aliquot", "census-aliquot_counts_text": "12, -3", "census-aliquot_ml": "20",
                   "census-total_ml": "1000"}, "Aliquot counts: -3 is impossible", id="negative-count"),
     pytest.param({"census-method": "mass", "census-total_mass_g": "1", "census-sample_mass_g": "2",
-                  "census-sample_count": "10"}, "sample_mass_g must be <= total_mass_g",
+                  "census-sample_count": "10"},
+                 "Subsample mass: 2 g is impossible; allowed range 0.0001 to 1 g (the total wet mass).",
                  id="sample-heavier-than-total"),
     pytest.param({"census-method": "direct"}, "Direct count: enter the number of animals counted.", id="no-count"),
     pytest.param({"census-method": "aliquot", "census-aliquot_counts_text": "99999999999999999999999",
                   "census-aliquot_ml": "20", "census-total_ml": "1000"}, "allowed range 0 to 1,000,000",
                  id="absurd-count"),
     pytest.param({"census-method": "mass", "census-total_mass_g": "1e300", "census-sample_mass_g": "1e-300",
-                  "census-sample_count": "10"}, "is impossible (allowed up to 1e+08)", id="unit-mistake"),
+                  "census-sample_count": "10"},
+                 "Total wet mass: 1e+300 g is impossible; allowed range 0.0001 to 100000 g.", id="unit-mistake"),
+    pytest.param({"census-method": "mass", "census-total_mass_g": "10000", "census-sample_mass_g": "0.0001",
+                  "census-sample_count": "100000"}, "is impossible (allowed up to 1e+08)", id="estimate-too-large"),
+    pytest.param({"census-method": "mass", "census-total_mass_g": "10", "census-sample_mass_g": "1",
+                  "census-sample_count": "10000000000000000000"},
+                 "Animals in subsample: 10000000000000000000 animals is impossible; allowed range 1 to 1000000 animals.",
+                 id="subsample-count-1e19"),
+    pytest.param({"census-method": "direct", "census-direct_count": "1e19"}, "Direct count: enter a whole number.",
+                 id="count-in-e-notation"),
 ])
 def test_bad_census_data_is_a_form_error_and_nothing_is_saved(client, technician, tank, data, message):
     client.force_login(technician)
