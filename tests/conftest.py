@@ -1,9 +1,17 @@
 """Personas and speed settings shared by every test. Test data builders live in tests/factories.py."""
 import pytest
 from django.contrib.auth.models import User
+from hypothesis import HealthCheck, settings as hypothesis_settings
 
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 from tests.factories import make_user
+
+
+# Property tests are derandomized (the same examples on every run, so CI is repeatable) and are never
+# timed: on a loaded 2-core CI machine a slow example is not a failure.
+hypothesis_settings.register_profile("vermilog", derandomize=True, deadline=None,
+                                     suppress_health_check=[HealthCheck.too_slow])
+hypothesis_settings.load_profile("vermilog")
 
 
 def pytest_configure(config):

@@ -97,7 +97,7 @@ def test_an_attachment_that_is_refused_releases_its_key(client, world, researche
     client.force_login(researcher)
     response = client.post(reverse("experiments:attachment-add", args=[world.trial.pk]),
                            {"kind": "photo", SUBMISSION_FIELD: str(uuid.uuid4())})  # no file
-    assert response.status_code == 302 and "Nothing was stored" in " ".join(_messages(response))
+    assert response.status_code == 400 and "Nothing was stored" in " ".join(_messages(response))
     assert not Submission.objects.exists()
 
 
