@@ -10,14 +10,15 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from .exports import frame_csv, spreadsheet_safe
 from .filters import DeviationFilter
+from .forms import reason_field
 from .models import Deviation
 from .idempotency import once_per_submission
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
 
 
 class CloseForm(forms.Form):
-    corrective_action = forms.CharField(
-        widget=forms.Textarea(attrs={"rows": 3}), label="Corrective action",
+    corrective_action = reason_field(
+        "Corrective action", widget=forms.Textarea(attrs={"rows": 3}),
         help_text="What was done about it, and what was checked afterwards. Required to close.",
         error_messages={"required": "Corrective action: describe what was done before closing."},
     )

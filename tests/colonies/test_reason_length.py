@@ -1,6 +1,7 @@
 """Reasons of any length up to REASON_MAX_CHARS are kept whole; longer ones are refused with a message."""
 import pytest
 from django.urls import reverse
+from django.utils import timezone
 
 from colonies.admin import ReasonAdminForm
 from colonies.forms import ReasonForm, TankTargetForm
@@ -59,3 +60,19 @@ def test_every_reason_field_allows_the_documented_maximum(form_class, name):
     field = form_class.base_fields[name]
     assert field.max_length == REASON_MAX_CHARS
     assert field.error_messages["max_length"].endswith("this one has %(show_value)s. Shorten it.")
+
+
+def test_a_corrective_action_longer_than_the_limit_is_refused_and_the_deviation_stays_open(client, manager):
+    from colonies.models import Deviation
+    from tests.factories import make_tank
+
+    tank = make_tank()
+    dev = Deviation.objects.create(tank=tank, rule=Deviation.Rule.OUT_OF_TARGET, parameter="ph", summary="pH high",
+                                   opened_at=timezone.now())
+    client.force_login(manager)
+    response = client.post(reverse("colonies:deviation-close", args=[dev.pk]),
+                           {"corrective_action": "x" * (REASON_MAX_CHARS + 1)})
+    assert response.status_code in (200, 400)
+    assert "Corrective action: at most 2,000 characters" in response.content.decode()
+    dev.refresh_from_db()
+    assert dev.status != Deviation.Status.CLOSED and dev.corrective_action == ""
