@@ -18,7 +18,8 @@ from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Over
 BLINDED_TRIAL_FIELDS = frozenset({"condition", "replicate", "kind", *SETTING_FIELDS, "substance", "mechanical_note",
                                   "dose_mj_cm2", "field_v_cm", "pulse_on_s", "train_s"})
 # The allocation (slot -> condition) is the key itself; the labels are hidden too, as on the study page.
-BLINDED_STUDY_FIELDS = frozenset({"allocation", "conditions"})
+# The seed too: with the design (conditions x replicates) it rebuilds the allocation.
+BLINDED_STUDY_FIELDS = frozenset({"allocation", "conditions", "seed"})
 BLINDED_OVERRIDE_FIELDS = frozenset({"reason", "breaches"})  # they name the stimulus settings
 BLINDED = "blinded"
 

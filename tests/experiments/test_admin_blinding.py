@@ -94,3 +94,14 @@ def test_revert_form_of_a_blinded_trial_is_refused(client, superuser, blinded):
 
     assert response.status_code == 403
     assert _leaks(response.content.decode()) == []
+
+
+def test_study_change_page_withholds_the_seed_until_unblinding(client, researcher, staff_manager, blinded):
+    # The seed with the design (conditions x replicates) would rebuild the allocation (experiments/allocation.py).
+    study, _trial, _second = blinded
+    client.force_login(staff_manager)
+    html = client.get(_url("study", "change", study.pk)).content.decode()
+    assert "field-seed" not in html and 'name="seed"' not in html
+    services.unblind(user=researcher, study=study, reason="All dishes scored")
+    html = client.get(_url("study", "change", study.pk)).content.decode()
+    assert "field-seed" in html
