@@ -91,8 +91,32 @@ class RoomAdmin(ReasonAdmin):
     search_fields = ["code", "name"]
 
 
+class TankAdminForm(ReasonAdminForm):
+    class Meta:
+        model = Tank
+        fields = "__all__"
+
+    def clean_founded_from(self):
+        """A culture line runs forward in time: a tank cannot be founded from itself or from its descendants."""
+        parents = self.cleaned_data.get("founded_from")
+        if not parents or self.instance.pk is None:
+            return parents
+        descendants, frontier = {self.instance.pk}, {self.instance.pk}
+        while frontier:  # the lineage is small (tens of tanks): walk it level by level
+            frontier = set(Tank.founded_from.through.objects.filter(to_tank_id__in=frontier)
+                           .values_list("from_tank_id", flat=True)) - descendants
+            descendants |= frontier
+        loops = [t.code for t in parents if t.pk in descendants]
+        if loops:
+            raise forms.ValidationError(
+                f"Founded from: {', '.join(loops)} is this tank or was founded from it; "
+                "a tank can only be founded from other, earlier lines.")
+        return parents
+
+
 @admin.register(Tank)
 class TankAdmin(ReasonAdmin):
+    form = TankAdminForm
     list_display = ["code", "room", "position", "species", "status", "volume_l", "system", "started_on"]
     list_filter = ["status", "room", "species", "system"]
     search_fields = ["code", "position", "notes", "substrate"]

@@ -249,3 +249,28 @@ def test_a_manager_without_is_staff_is_sent_to_the_login_by_the_back_office(clie
     response = client.get(_admin_url(Room, "changelist"))
 
     assert response.status_code == 302 and "/admin/login/" in response["Location"]
+
+
+@pytest.mark.django_db
+def test_tank_cannot_be_founded_from_itself_or_its_descendants():
+    from colonies.admin import TankAdminForm
+    from tests.factories import make_tank
+
+    parent = make_tank(code="LIN-01")
+    child = make_tank(code="LIN-02")
+    child.founded_from.add(parent)
+    grandchild = make_tank(code="LIN-03")
+    grandchild.founded_from.add(child)
+
+    def errors(tank, parents):
+        form = TankAdminForm(instance=tank)
+        form.cleaned_data = {"founded_from": Tank.objects.filter(pk__in=[p.pk for p in parents])}
+        try:
+            form.clean_founded_from()
+        except Exception as error:  # ValidationError
+            return " ".join(error.messages)
+        return ""
+
+    assert "LIN-01 is this tank" in errors(parent, [parent])
+    assert "LIN-03" in errors(parent, [grandchild])  # a loop of three
+    assert errors(grandchild, [parent]) == ""  # an earlier line is fine
