@@ -17,7 +17,7 @@ from simple_history.models import HistoricalRecords
 
 from . import derived, parameters
 from .flags import Target
-from .validators import (CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
+from .validators import (MAX_TEXT, CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
                          MAX_DENSITY_PER_L, MAX_INTERVAL_DAYS, MAX_TANK_VOLUME_L, DateRange, Range)
 
 DEFAULT_CHECK_INTERVAL_HOURS = 24
@@ -105,7 +105,7 @@ class Recorded(Voidable):
     recorded_at = models.DateTimeField(default=timezone.now, editable=False,
                                        help_text="When the record was entered; set by the server, never by a form.")
     recorded_by = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="+")
-    note = models.TextField(blank=True)
+    note = models.TextField(max_length=MAX_TEXT, blank=True)
 
     class Meta:
         abstract = True
@@ -149,7 +149,7 @@ class Species(models.Model):
         default=0, validators=[Range("Reserve", 0, MAX_COUNT, "animals")],
         help_text="Animals that must stay in a culture and never be booked out.",
     )
-    notes = models.TextField(blank=True, help_text="Care notes; say here where no published value exists.")
+    notes = models.TextField(max_length=MAX_TEXT, blank=True, help_text="Care notes; say here where no published value exists.")
     sources = models.JSONField(
         default=dict, blank=True,
         help_text="Where each default value comes from: field name → citation (document, year, table).",
@@ -200,7 +200,7 @@ class CareTarget(models.Model):
     parameter = models.CharField(max_length=32, choices=derived.TARGET_CHOICES)
     low = models.FloatField(null=True, blank=True)
     high = models.FloatField(null=True, blank=True)
-    source = models.TextField(blank=True, help_text="Document, year and table the range comes from, or 'lab setting'.")
+    source = models.TextField(max_length=MAX_TEXT, blank=True, help_text="Document, year and table the range comes from, or 'lab setting'.")
     history = HistoricalRecords()
 
     class Meta:
@@ -230,7 +230,7 @@ class CareTarget(models.Model):
 class Room(models.Model):
     code = models.SlugField(max_length=20, unique=True, help_text="Short name used in addresses, e.g. 'wet-lab-1'.")
     name = models.CharField(max_length=80)
-    notes = models.TextField(blank=True)
+    notes = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
     class Meta:
@@ -312,7 +312,7 @@ class Tank(models.Model):
     substrate = models.CharField(max_length=80, blank=True)
     status = models.CharField(max_length=12, choices=Status.choices, default=Status.ACTIVE)
     started_on = models.DateField(default=timezone.localdate, validators=[DateRange("Started on")])
-    notes = models.TextField(blank=True)
+    notes = models.TextField(max_length=MAX_TEXT, blank=True)
     founded_from = models.ManyToManyField(
         "self", symmetrical=False, blank=True, related_name="offspring",
         help_text="The tank(s) this culture was founded or split from.",
@@ -445,7 +445,7 @@ class Check(Readings, Recorded):
         default=dict, blank=True, editable=False,
         help_text="Readings outside the care targets in force when the check was saved.",
     )
-    corrective_action = models.TextField(blank=True, help_text="What was done about a flagged value.")
+    corrective_action = models.TextField(max_length=MAX_TEXT, blank=True, help_text="What was done about a flagged value.")
     history = HistoricalRecords()
 
     class Meta(Recorded.Meta):
@@ -765,7 +765,7 @@ class Split(Voidable):
     )
     stayed = models.FloatField(validators=[MinValueValidator(0)],
                                help_text="Estimated animals left in the source tank.")
-    note = models.TextField(blank=True)
+    note = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
     class Meta:

@@ -14,7 +14,7 @@ from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
 from colonies.models import Species, Tank, Voidable
-from colonies.validators import DateRange
+from colonies.validators import MAX_TEXT, DateRange
 
 from . import limits
 from .validators import BOUNDS, PROTOCOL_AHEAD_DAYS, Within, within_q
@@ -90,7 +90,7 @@ class Protocol(models.Model):
     max_cumulative_dose_mj_cm2 = models.FloatField(
         null=True, blank=True, validators=[Within("dose_mj_cm2")],
         help_text="Most light/UV dose one cohort may receive in total, mJ/cm². Empty: no light stimulus approved.")
-    notes = models.TextField(blank=True)
+    notes = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
     objects = ProtocolQuerySet.as_manager()
@@ -174,7 +174,7 @@ class Allowance(models.Model):
     max_temp_rate_c_min = models.FloatField(null=True, blank=True, validators=[Within("temp_rate_c_min")])
     substance = models.CharField(max_length=80, blank=True, help_text="Chemical stimulus: the approved substance.")
     max_concentration_um = models.FloatField(null=True, blank=True, validators=[Within("concentration_um")])
-    notes = models.TextField(blank=True, help_text="Mechanical stimulus: what is approved (e.g. 'pipette jet, 1 mL').")
+    notes = models.TextField(max_length=MAX_TEXT, blank=True, help_text="Mechanical stimulus: what is approved (e.g. 'pipette jet, 1 mL').")
     history = HistoricalRecords()
 
     class Meta:
@@ -316,7 +316,7 @@ class Cohort(models.Model):
                                     related_name="cohorts_returned")
     returned_count = models.PositiveIntegerField(null=True, blank=True, help_text="Animals put back (alive).")
     end_method = models.CharField(max_length=200, blank=True, help_text="Retired: the method used.")
-    end_note = models.TextField(blank=True)
+    end_note = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
     class Meta:
@@ -373,7 +373,7 @@ class Study(models.Model):
     title = models.CharField(max_length=200)
     owner = _user_fk(help_text="Holds the allocation key; the only person who may unblind.")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="studies")
-    question = models.TextField(blank=True, help_text="What the study asks; written before allocation.")
+    question = models.TextField(max_length=MAX_TEXT, blank=True, help_text="What the study asks; written before allocation.")
     conditions = models.JSONField(default=list, help_text="Condition labels in order; the first is the reference "
                                                           "(control) for the log-rank comparisons.")
     replicates = models.PositiveIntegerField(default=DEFAULT_REPLICATES, validators=[Within("replicates")],
@@ -381,7 +381,7 @@ class Study(models.Model):
     primary_outcome = models.CharField(max_length=200, default="Time to disperse (s), right-censored at the window")
     observation_window_s = models.PositiveIntegerField(default=DEFAULT_OBSERVATION_WINDOW_S,
                                                        validators=[Within("observation_window_s")])
-    exclusion_criteria = models.TextField(blank=True)
+    exclusion_criteria = models.TextField(max_length=MAX_TEXT, blank=True)
     method = models.CharField(max_length=10, choices=Method.choices, default=Method.BLOCK)
     seed = models.BigIntegerField(help_text="Seed of the random generator used for the allocation.")
     generator = models.CharField(max_length=120, blank=True)
@@ -520,7 +520,7 @@ class Trial(Voidable):
     excluded_at = models.DateTimeField(null=True, blank=True)
     excluded_by = _user_fk(null=True, blank=True)
     exclusion_reason = models.TextField(blank=True)
-    note = models.TextField(blank=True)
+    note = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
     objects = TrialQuerySet.as_manager()

@@ -205,3 +205,16 @@ def test_census_with_a_subsample_count_of_1e19_is_refused_not_a_crash(client, te
 
     assert response.status_code == 400
     assert Census.objects.count() == 0
+
+
+@pytest.mark.parametrize("kind,data,model", [
+    ("feeding", {"feeding-food": "pellets", "feeding-amount": "0.05", "feeding-unit": "g"}, Feeding),
+    ("water-change", {"water-percent": "20"}, WaterChange),
+])
+def test_a_note_longer_than_the_text_limit_is_refused_and_nothing_saved(client, technician, tank, kind, data, model):
+    client.force_login(technician)
+    prefix = "feeding" if kind == "feeding" else "water"
+    response = _add(client, tank, kind, {**data, f"{prefix}-note": "x" * (validators.MAX_TEXT + 1)})
+    assert response.status_code == 400
+    assert f"at most {validators.MAX_TEXT}" in page_text(response).replace(",", "")
+    assert model.objects.count() == 0
