@@ -299,6 +299,14 @@ def build(*, tanks: int = 400, days: int = 1095, seed: int = 7, today=None, prog
             "today": today.isoformat()}
 
 
+def counts() -> dict:
+    """What a database holds (for a reused one, whose build counts are not at hand)."""
+    from colonies.models import Deviation
+    models = {"tanks": Tank, "rooms": Room, "users": User, "check": Check, "feeding": Feeding,
+              "water change": WaterChange, "census": Census, "deviation": Deviation}
+    return {name: model.objects.count() for name, model in models.items()}
+
+
 def checksum() -> str:
     """A digest of the generated values (not of ids or times of day), equal for equal seeds."""
     digest = hashlib.sha256()

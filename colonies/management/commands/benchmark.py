@@ -22,9 +22,14 @@ class Command(BaseCommand):
         parser.add_argument("--db", help="SQLite: path of the new database file (default: a temporary file in /tmp).")
         parser.add_argument("--keep", action="store_true", help="Keep the scratch database afterwards.")
         parser.add_argument("--json", help="Where to write the results (default benchmark-<engine>-<tanks>x<years>.json).")
+        parser.add_argument("--reuse", metavar="DB",
+                            help="Time an earlier database kept with --keep (SQLite path or PostgreSQL name) "
+                                 "instead of building one; its new migrations are applied first.")
+        parser.add_argument("--only", action="append", metavar="TEXT",
+                            help="Time only the cases whose name contains TEXT (case-insensitive; repeatable).")
         parser.add_argument("--no-memory", action="store_true", help="Skip the extra tracemalloc run of each export.")
 
-    def handle(self, *args, tanks, years, days, seed, repeats, db, keep, json, no_memory, verbosity, **options):
+    def handle(self, *args, tanks, years, days, seed, repeats, db, keep, json, no_memory, reuse, only, verbosity, **options):
         days = days if days is not None else round(years * 365)
         if tanks < 1 or days < 1 or repeats < 1:
             raise CommandError(f"--tanks {tanks}, --days {days}, --repeats {repeats}: each must be at least 1.")
@@ -34,17 +39,26 @@ class Command(BaseCommand):
         say = self.stdout.write if verbosity > 0 else (lambda msg: None)
         started = time.perf_counter()
         try:
-            with database.scratch_database(db_path=db, keep=keep) as name:
-                say(f"Scratch database {name} migrated in {time.perf_counter() - started:.0f} s; building "
-                    f"{tanks} tanks x {days} days (seed {seed})...")
-                build = synthetic.build(tanks=tanks, days=days, seed=seed, progress=say if verbosity > 1 else None)
+            opened = (database.existing_database(reuse) if reuse
+                      else database.scratch_database(db_path=db, keep=keep))
+            with opened as name:
+                if reuse:
+                    build = {"counts": synthetic.counts(), "reused": True}
+                    say(f"Reusing {name}: {build['counts']}")
+                else:
+                    say(f"Scratch database {name} migrated in {time.perf_counter() - started:.0f} s; building "
+                        f"{tanks} tanks x {days} days (seed {seed})...")
+                    build = synthetic.build(tanks=tanks, days=days, seed=seed,
+                                            progress=say if verbosity > 1 else None)
+                    say(f"Built in {sum(build['build_seconds'].values()):.0f} s: {build['counts']}")
                 build["database"] = name
-                say(f"Built in {sum(build['build_seconds'].values()):.0f} s: {build['counts']}")
                 results = []
                 # As in production (DEBUG off) and as the test client needs (its host name allowed).
                 with override_settings(DEBUG=False, ALLOWED_HOSTS=[*settings.ALLOWED_HOSTS, "testserver"]), \
                         timing.quiet_request_logs():
                     for case in cases.build_cases():
+                        if only and not any(text.lower() in case.name.lower() for text in only):
+                            continue
                         results.append(timing.measure(case, repeats, memory=not no_memory))
                         if verbosity > 1:
                             say(f"  {case.name}: {results[-1].median_ms or 0:.0f} ms")
