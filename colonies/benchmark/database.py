@@ -61,6 +61,25 @@ def _migrate_sqlite(scratch, name: str, verbosity: int) -> None:
     os.replace(partial, template)  # atomic: a concurrent run sees the whole file or none
 
 
+def _exists(original, name: str) -> bool:
+    if engine_name(original.settings_dict) == "sqlite":
+        return os.path.exists(name)
+    with original._nodb_cursor() as cursor:
+        cursor.execute("SELECT 1 FROM pg_database WHERE datname = %s", [name])
+        return cursor.fetchone() is not None
+
+
+def drop(name: str) -> None:
+    """Remove a kept scratch database (a SQLite file and its journals, or a PostgreSQL database)."""
+    original = connections[DEFAULT_DB_ALIAS]
+    if engine_name(original.settings_dict) == "postgresql":
+        _pg_execute(original, f"DROP DATABASE IF EXISTS {original.ops.quote_name(name)}")
+        return
+    for suffix in ("", "-wal", "-shm", "-journal"):
+        if os.path.exists(name + suffix):
+            os.unlink(name + suffix)
+
+
 def _pg_execute(original, sql: str) -> None:
     with original._nodb_cursor() as cursor:
         cursor.execute(sql)
@@ -76,8 +95,8 @@ def existing_database(name: str, verbosity: int = 0):
     """
     original = connections[DEFAULT_DB_ALIAS]
     settings_dict = dict(original.settings_dict)
-    if engine_name(settings_dict) == "sqlite" and not os.path.exists(name):
-        raise ValueError(f"--reuse: {name} does not exist; build one with --keep --db {name}.")
+    if not _exists(original, name):
+        raise ValueError(f"--reuse: {name} does not exist; build one first with --keep.")
     settings_dict["NAME"] = name
     settings_dict.setdefault("TEST", {})
     scratch = load_backend(settings_dict["ENGINE"]).DatabaseWrapper(settings_dict, DEFAULT_DB_ALIAS)
@@ -116,9 +135,4 @@ def scratch_database(*, db_path: str | None = None, keep: bool = False, verbosit
         scratch.close()
         connections[DEFAULT_DB_ALIAS] = original
         if not keep:
-            if engine == "postgresql":
-                _pg_execute(original, f"DROP DATABASE IF EXISTS {original.ops.quote_name(name)}")
-            else:
-                for suffix in ("", "-wal", "-shm", "-journal"):
-                    if os.path.exists(name + suffix):
-                        os.unlink(name + suffix)
+            drop(name)
