@@ -17,6 +17,18 @@ def _sync_roles(sender, **kwargs):
     sync_role_groups(Group, Permission)
 
 
+def _create_cache_tables(sender, using="default", **kwargs):
+    """After every migrate: the table of a database cache (VERMILOG_CACHE=db) exists wherever migrate
+    runs (demo, tests, CI, a restore target); it skips a table that is already there."""
+    from django.conf import settings
+    from django.core.management import call_command
+
+    from vermilog.caches import database_cache_tables
+
+    if database_cache_tables(settings.CACHES):
+        call_command("createcachetable", database=using, verbosity=0)
+
+
 class ColoniesConfig(AppConfig):
     name = "colonies"
     verbose_name = "Colonies and husbandry"
@@ -26,3 +38,4 @@ class ColoniesConfig(AppConfig):
 
         integrity.connect()
         post_migrate.connect(_sync_roles, sender=self, dispatch_uid="vermilog-sync-roles")
+        post_migrate.connect(_create_cache_tables, sender=self, dispatch_uid="vermilog-cache-tables")

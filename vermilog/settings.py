@@ -13,6 +13,8 @@ from pathlib import Path
 import dj_database_url
 from django.core.exceptions import ImproperlyConfigured
 
+from .caches import cache_settings
+
 BASE_DIR = Path(__file__).resolve().parent.parent
 
 _TRUE = {"1", "true", "yes", "on"}
@@ -210,15 +212,9 @@ STORAGES = {
     },
 }
 # Rendered colony-health plots (colonies/health_views.py); keys carry a records version, so a new
-# record makes a new key. Per-process memory suits one server process; a deployment with several
-# processes can point this at a shared backend.
-CACHES = {
-    "default": {
-        "BACKEND": "django.core.cache.backends.locmem.LocMemCache",
-        "LOCATION": "vermilog-plots",
-        "OPTIONS": {"MAX_ENTRIES": env_int("PLOT_CACHE_ENTRIES", 500)},
-    }
-}
+# record makes a new key. One cache shared by every worker process: a folder on disk by default,
+# or the database or Redis for several app servers (VERMILOG_CACHE, vermilog/caches.py, README).
+CACHES = cache_settings(os.environ, BASE_DIR)
 
 MEDIA_ROOT = Path(os.environ.get("MEDIA_ROOT", BASE_DIR / "media"))
 MEDIA_URL = "media/"
@@ -226,6 +222,8 @@ MEDIA_URL = "media/"
 # Production hardening; each can be relaxed from the environment (e.g. behind a TLS proxy).
 if not DEBUG:
     SECURE_SSL_REDIRECT = env_bool("SECURE_SSL_REDIRECT", True)
+    # A load balancer's health probe talks plain HTTP to the app server inside the network.
+    SECURE_REDIRECT_EXEMPT = [r"^healthz/$"]
     SECURE_PROXY_SSL_HEADER = ("HTTP_X_FORWARDED_PROTO", "https") if env_bool("BEHIND_TLS_PROXY", False) else None
     SECURE_HSTS_SECONDS = env_int("SECURE_HSTS_SECONDS", 31536000)
     SECURE_HSTS_INCLUDE_SUBDOMAINS = env_bool("SECURE_HSTS_INCLUDE_SUBDOMAINS", True)
