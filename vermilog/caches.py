@@ -84,11 +84,12 @@ def database_cache_tables(caches: Mapping[str, dict]) -> list[str]:
     return [c["LOCATION"] for c in caches.values() if c["BACKEND"] == BACKENDS["db"]]
 
 
-def database_identity() -> str:
-    """A short digest of the default database's engine, host, port and name, as used right now."""
-    from django.db import connections
+def database_identity(conf: Mapping | None = None) -> str:
+    """A short digest of a database's engine, host, port and name (default: the default database now)."""
+    if conf is None:
+        from django.db import connections
 
-    conf = connections["default"].settings_dict
+        conf = connections["default"].settings_dict
     ident = "|".join(str(conf.get(k) or "") for k in ("ENGINE", "HOST", "PORT", "NAME"))
     return hashlib.sha256(ident.encode()).hexdigest()[:12]
 
