@@ -61,6 +61,7 @@ class Result:
     rows: int | None = None
     bytes: int | None = None
     peak_mib: float | None = None
+    streaming: bool | None = None  # the response streamed its body (memory independent of rows)
 
     @property
     def median_ms(self):
@@ -138,6 +139,7 @@ def measure(case: Case, repeats: int, memory: bool = True) -> Result:
             result.ok = False
             result.error = facts.get("error") or f"HTTP {result.status}, expected {'/'.join(map(str, case.expect))}"
         result.rows, result.bytes = facts.get("rows"), facts.get("bytes")
+        result.streaming = facts.get("streaming")
         samples.append((elapsed, timer))
         result.cpu_ms.append(facts["cpu_s"] * 1000)
     if samples:
@@ -167,7 +169,7 @@ def consume(response) -> dict:
     for chunk in chunks:
         size += len(chunk)
         lines += chunk.count(b"\n")
-    facts = {"status": response.status_code, "bytes": size, "lines": lines}
+    facts = {"status": response.status_code, "bytes": size, "lines": lines, "streaming": response.streaming}
     if response.status_code >= 400 and not response.streaming:
         text = response.content.decode(errors="replace")
         title = re.search(r"<title>(.*?)</title>", text, re.S)

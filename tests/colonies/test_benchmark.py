@@ -44,7 +44,14 @@ def test_benchmark_reports_every_page_and_leaves_the_configured_database_alone(t
     checks_csv = next(r for r in exports if r["name"] == "Export: checks CSV")
     assert checks_csv["rows"] == doc["build"]["counts"]["check"]
     assert doc["build"]["counts"]["tanks"] == 20 and doc["build"]["counts"]["study"] == 2
+    # Every result is judged against the targets, in the JSON and in the table.
+    assert all(r["verdict"] in ("met", "not met", "floor", "") for r in doc["results"])
+    today = next(r for r in doc["results"] if r["name"] == "Today")
+    assert today["target"] == "<= 150 ms, <= 3x SQL" and today["target_ms"] == 150 and today["verdict"]
+    assert checks_csv["streaming"] is True and checks_csv["target_rows_per_s"] == 50_000
+    assert sum(1 for r in doc["results"] if r["target"]) >= len(EXPECTED) - 4
     table = printed.getvalue()
+    assert "| verdict " in table and "<= 3x SQL" in table
     assert "median ms" in table and "| Today " in table and "Back office: checks list" in table
     # Nothing reached the configured (test) database, and the connection points at it again.
     assert connection.settings_dict["NAME"] == name

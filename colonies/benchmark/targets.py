@@ -1,0 +1,90 @@
+"""The targets of issue #9 (400 tanks x 3 years on a 2-core machine), and whether a result meets them.
+
+A case gets its target by the start of its name; a new page or export falls under the general rule for
+its kind. Verdicts: "met", "not met" (with what missed), "floor" (not met, and the SQL alone already
+exceeds the time allowed: the floor is the SQL, named in the detail), or "" where the issue sets none.
+"""
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class Target:
+    ms: float | None = None  # median wall time allowed
+    sql_factor: float | None = None  # median <= factor x the page's own SQL time
+    rows_per_s: float | None = None  # exports and jobs: throughput
+    streaming: bool = False  # exports: memory must not grow with rows (the response streams)
+    works: bool = False  # the only target is that it succeeds (e.g. the all-rooms round save)
+
+    def describe(self) -> str:
+        parts = []
+        if self.ms is not None:
+            parts.append(f"<= {self.ms:,.0f} ms")
+        if self.sql_factor is not None:
+            parts.append(f"<= {self.sql_factor:g}x SQL")
+        if self.rows_per_s is not None:
+            parts.append(f">= {self.rows_per_s / 1000:,.0f}k rows/s")
+        if self.streaming:
+            parts.append("streams")
+        if self.works:
+            parts.append("works")
+        return ", ".join(parts)
+
+
+PAGE = Target(ms=150, sql_factor=3)
+EXPORT = Target(rows_per_s=50_000, streaming=True)
+# First match wins, so the specific names come before the general rules.
+BY_NAME = [
+    ("Round, all rooms", Target(ms=1000)),
+    ("Round save, all rooms", Target(works=True)),
+    ("Round save, ", Target(ms=300)),  # 40 tanks from all rooms; one room holds fewer
+    ("Colony-health overview", Target(ms=300)),
+    ("Overview figure, first", Target(ms=3000)),
+    ("Overview figure, cached", Target(ms=50)),
+    ("Tank figure", None),  # set below: first and cached differ
+    ("Labels, all tanks", Target(ms=1000)),
+    ("Job: record rules over all checks", Target(rows_per_s=50_000)),
+    ("Job: ", None),
+    ("Back office: ", None),  # the generic reference, not a target
+]
+
+
+def target_for(name: str, kind: str) -> Target | None:
+    if name.startswith("Tank figure"):
+        return Target(ms=500) if name.endswith("first") else None
+    for prefix, target in BY_NAME:
+        if name.startswith(prefix):
+            return target
+    return {"page": PAGE, "export": EXPORT}.get(kind)
+
+
+def _misses(result, target: Target) -> list[str]:
+    median, sql = result.median_ms, result.sql_ms or 0.0
+    misses = []
+    if target.ms is not None and median > target.ms:
+        misses.append(f"{median:,.0f} ms > {target.ms:,.0f} ms")
+    if target.sql_factor is not None and median > target.sql_factor * sql:
+        misses.append(f"{median:,.0f} ms > {target.sql_factor:g} x {sql:,.0f} ms SQL")
+    if target.rows_per_s is not None and (result.rows_per_s or 0) < target.rows_per_s:
+        # An export of a few rows is judged as a page: its time is the request's, not the rows'.
+        if not (result.kind == "export" and median <= PAGE.ms):
+            misses.append(f"{result.rows_per_s or 0:,.0f} rows/s < {target.rows_per_s:,.0f}")
+    if target.streaming and not result.streaming:
+        misses.append("not streamed")
+    return misses
+
+
+def verdict(result, target: Target | None) -> tuple[str, str]:
+    """(verdict, detail) of one result against its target."""
+    if target is None:
+        return "", ""
+    if not result.ok:
+        return "not met", "failed"
+    if target.works:
+        return "met", ""
+    misses = _misses(result, target)
+    if not misses:
+        return "met", ""
+    sql = result.sql_ms or 0.0
+    if target.ms is not None and sql > target.ms:
+        return "floor", f"SQL alone {sql:,.0f} ms > {target.ms:,.0f} ms; " + "; ".join(misses)
+    return "not met", "; ".join(misses)

@@ -1,0 +1,78 @@
+"""The issue's targets per benchmark case and the verdicts (colonies/benchmark/targets.py); no database."""
+import pytest
+
+from colonies.benchmark.report import judged, table
+from colonies.benchmark.targets import EXPORT, PAGE, target_for, verdict
+from colonies.benchmark.timing import Result
+
+
+def _result(name, kind="page", ms=100.0, sql=40.0, **extra):
+    return Result(name, "technician", kind, runs_ms=[ms], cpu_ms=[ms], queries=7, sql_ms=sql, **extra)
+
+
+@pytest.mark.parametrize("name,kind,described", [
+    # Targets from issue #9, "Targets, at 400 tanks x 3 years".
+    ("Today", "page", "<= 150 ms, <= 3x SQL"),
+    ("Tank list", "page", "<= 150 ms, <= 3x SQL"),
+    ("Round, all rooms (400 tanks)", "page", "<= 1,000 ms"),
+    ("Round, one room (34 tanks)", "page", "<= 150 ms, <= 3x SQL"),
+    ("Round save, 40 tanks from all rooms", "page", "<= 300 ms"),
+    ("Round save, all rooms (400 tanks)", "page", "works"),
+    ("Colony-health overview", "page", "<= 300 ms"),
+    ("Overview figure, first", "figure", "<= 3,000 ms"),
+    ("Overview figure, cached", "figure", "<= 50 ms"),
+    ("Tank figure (LV-01), first", "figure", "<= 500 ms"),
+    ("Labels, all tanks (400)", "page", "<= 1,000 ms"),
+    ("Export: checks CSV", "export", ">= 50k rows/s, streams"),
+    ("Job: record rules over all checks (436000)", "job", ">= 50k rows/s"),
+])
+def test_each_case_gets_the_issue_s_target(name, kind, described):
+    assert target_for(name, kind).describe() == described
+
+
+@pytest.mark.parametrize("name,kind", [("Back office: checks list", "page"), ("Job: scan_deviations", "job"),
+                                       ("Tank figure (LV-01), cached", "figure")])
+def test_cases_the_issue_sets_no_target_for_have_none(name, kind):
+    assert target_for(name, kind) is None and verdict(_result(name, kind), None) == ("", "")
+
+
+def test_a_page_within_time_and_three_times_its_sql_is_met():
+    assert verdict(_result("Today", ms=100, sql=40), PAGE) == ("met", "")
+
+
+def test_a_page_over_three_times_its_sql_is_not_met_even_when_fast():
+    assert verdict(_result("Today", ms=100, sql=20), PAGE) == ("not met", "100 ms > 3 x 20 ms SQL")
+
+
+def test_a_page_whose_sql_alone_exceeds_the_time_reports_the_floor():
+    outcome, detail = verdict(_result("Today", ms=400, sql=249), PAGE)
+    assert outcome == "floor" and detail.startswith("SQL alone 249 ms > 150 ms; 400 ms > 150 ms")
+
+
+def test_an_export_must_stream_and_reach_the_rate_unless_it_is_as_quick_as_a_page():
+    fast = _result("Export: checks CSV", "export", ms=2000, sql=500, rows=200_000, streaming=True)
+    buffered = _result("Export: checks XLSX", "export", ms=2000, sql=500, rows=200_000, streaming=False)
+    slow = _result("Export: checks CSV", "export", ms=2000, sql=500, rows=50_000, streaming=True)
+    tiny = _result("Export: study trials CSV", "export", ms=30, sql=5, rows=40, streaming=True)
+
+    assert verdict(fast, EXPORT) == ("met", "")
+    assert verdict(buffered, EXPORT) == ("not met", "not streamed")
+    assert verdict(slow, EXPORT) == ("not met", "25,000 rows/s < 50,000")
+    assert verdict(tiny, EXPORT) == ("met", "")
+
+
+def test_a_failed_case_is_not_met_and_the_all_rooms_save_only_has_to_work():
+    target = target_for("Round save, all rooms (400 tanks)", "page")
+    assert verdict(_result("Round save, all rooms", ms=5000, ok=False, error="HTTP 400"), target) == ("not met",
+                                                                                                      "failed")
+    assert verdict(_result("Round save, all rooms", ms=5000), target) == ("met", "")
+
+
+def test_the_table_and_json_carry_target_and_verdict():
+    r = _result("Today", ms=100, sql=20)
+    j = judged(r)
+    assert j == {"target": "<= 150 ms, <= 3x SQL", "target_ms": 150, "target_sql_factor": 3,
+                 "target_rows_per_s": None, "verdict": "not met", "verdict_detail": "100 ms > 3 x 20 ms SQL"}
+    header, _, row = table([r]).splitlines()
+    assert "| target " in header and "| verdict " in header
+    assert "<= 150 ms, <= 3x SQL" in row and "not met: 100 ms > 3 x 20 ms SQL" in row
