@@ -22,7 +22,7 @@ from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
-from .history import record_history
+from .history import history_index, page_entries
 from .models import Census, Check, Deviation, Feeding, Room, Species, Tank, WaterChange
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
@@ -307,8 +307,10 @@ def _flash_check(request, check):
 @role_required(*READ_ROLES)
 def tank_history(request, code):
     tank = _get_tank(code)
-    page = Paginator(record_history(tank), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
-    return render(request, "colonies/history.html", {"tank": tank, "entries": page.object_list, "page": page})
+    # Counted and sliced in the database; only the page's versions (and the ones before them) are loaded.
+    page = Paginator(history_index(tank), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
+    return render(request, "colonies/history.html", {"tank": tank, "entries": page_entries(tank, page.object_list),
+                                                     "page": page})
 
 
 HISTORY_PAGE_SIZE = 200
