@@ -1,5 +1,5 @@
 """Reading the change history (django-simple-history tables) for display."""
-from django.db.models import Q
+from django.db.models import IntegerField, Q, Value
 
 from .models import Census, Check, Feeding, Split, SplitPart, WaterChange
 
@@ -22,7 +22,8 @@ def _entries_for(history_qs, label):
                 changes = [(c.field, c.old, c.new) for c in h.diff_against(prev).changes if c.field not in FIELD_SKIP]
             out.append({"when": h.history_date, "who": h.history_user, "what": f"{label} #{h.id}",
                         "action": _action(h, prev),
-                        "reason": h.history_change_reason or "", "changes": changes, "object_id": h.id})
+                        "reason": h.history_change_reason or "", "changes": changes, "object_id": h.id,
+                        "history_id": h.history_id})
             prev = h
     return out
 
@@ -35,19 +36,45 @@ def _action(h, prev) -> str:
     return TYPE_WORD.get(h.history_type, h.history_type)
 
 
-def record_history(tank) -> list[dict]:
-    """Every version of the tank and of its records (splits included), newest first.
-
-    A fixed number of queries (one per record type), whatever the number of records; the page
-    shows them in pages, nothing is cut off.
-    """
-    entries = _entries_for(tank.history.all(), "Tank")
-    entries += _entries_for(tank.target_overrides.model.history.filter(tank_id=tank.pk), "Tank target")
-    for model, label in ((Check, "Check"), (Feeding, "Feeding"), (WaterChange, "Water change"), (Census, "Census")):
-        entries += _entries_for(model.history.filter(tank_id=tank.pk), label)
+def _sources(tank) -> list[tuple[str, object]]:
+    """(label, history queryset) of the tank and of every record type shown in its history."""
     split_ids = SplitPart.history.filter(destination_id=tank.pk).values("split_id")
-    entries += _entries_for(Split.history.filter(Q(source_id=tank.pk) | Q(id__in=split_ids)), "Split")
-    entries += _entries_for(SplitPart.history.filter(Q(destination_id=tank.pk) | Q(split__source_id=tank.pk)),
-                            "Split part")
-    entries.sort(key=lambda e: e["when"], reverse=True)
-    return entries
+    return [
+        ("Tank", tank.history.all()),
+        ("Tank target", tank.target_overrides.model.history.filter(tank_id=tank.pk)),
+        *((label, model.history.filter(tank_id=tank.pk)) for model, label in (
+            (Check, "Check"), (Feeding, "Feeding"), (WaterChange, "Water change"), (Census, "Census"))),
+        ("Split", Split.history.filter(Q(source_id=tank.pk) | Q(id__in=split_ids))),
+        ("Split part", SplitPart.history.filter(Q(destination_id=tank.pk) | Q(split__source_id=tank.pk))),
+    ]
+
+
+def history_index(tank):
+    """Every version of the tank and its records (splits included) as (source, history_id, date) rows,
+    newest first: one UNION query, so a Paginator counts and slices it in the database."""
+    parts = [qs.annotate(history_source=Value(i, IntegerField()))
+             .values_list("history_source", "history_id", "history_date")
+             .order_by() for i, (_, qs) in enumerate(_sources(tank))]
+    return parts[0].union(*parts[1:], all=True).order_by("-history_date", "history_source", "-history_id")
+
+
+def page_entries(tank, rows) -> list[dict]:
+    """The displayed entries for one page of history_index() rows, each with its changes since the
+    version before. One query per record type on the page (all versions of the objects it shows)."""
+    sources = _sources(tank)
+    wanted: dict[int, set[int]] = {}
+    for source, history_id, _ in rows:
+        wanted.setdefault(source, set()).add(history_id)
+    by_key = {}
+    for source, ids in wanted.items():
+        label, qs = sources[source]
+        objects = qs.filter(history_id__in=ids).values("id")
+        for entry in _entries_for(qs.filter(id__in=objects), label):
+            if entry["history_id"] in ids:
+                by_key[(source, entry["history_id"])] = entry
+    return [by_key[(source, history_id)] for source, history_id, _ in rows]
+
+
+def record_history(tank) -> list[dict]:
+    """Every version of the tank and of its records, newest first (all of them; tests and small uses)."""
+    return page_entries(tank, list(history_index(tank)))

@@ -497,6 +497,12 @@ class Feeding(Recorded):
     history = HistoricalRecords()
 
     class Meta(Recorded.Meta):
+        indexes = [
+            # The "latest per tank" subquery of Tank.objects.with_last_events() (Today, tank list, round) and the
+            # tank page's recent feedings. SQLite plan before: SEARCH USING INDEX ..._tank_id (tank_id=?) + USE TEMP
+            # B-TREE FOR ORDER BY (sorts every row of the tank); after: SEARCH USING INDEX feeding_tank_recent (tank_id=?), no sort.
+            models.Index(fields=["tank", "-observed_at"], name="feeding_tank_recent"),
+        ]
         constraints = [
             models.CheckConstraint(condition=Q(amount__gte=0), name="feeding_amount_not_negative"),
             models.CheckConstraint(condition=Q(amount__lte=max(FEEDING_MAX.values())), name="feeding_amount_plausible"),
@@ -518,6 +524,12 @@ class WaterChange(Recorded):
     history = HistoricalRecords()
 
     class Meta(Recorded.Meta):
+        indexes = [
+            # The "latest per tank" subquery of Tank.objects.with_last_events() (Today, tank list, round) and the
+            # tank page's recent water changes. SQLite plan before: SEARCH USING INDEX ..._tank_id (tank_id=?) + USE TEMP
+            # B-TREE FOR ORDER BY (sorts every row of the tank); after: SEARCH USING INDEX waterchange_tank_recent (tank_id=?), no sort.
+            models.Index(fields=["tank", "-observed_at"], name="waterchange_tank_recent"),
+        ]
         constraints = [
             models.CheckConstraint(condition=Q(percent__isnull=False) | Q(litres__isnull=False),
                                    name="water_change_has_amount"),
@@ -569,6 +581,12 @@ class Census(Recorded):
 
     class Meta(Recorded.Meta):
         verbose_name_plural = "censuses"
+        indexes = [
+            # The "latest per tank" subquery of Tank.objects.with_last_events() (Today, tank list, round) and the
+            # tank page's recent censuses. SQLite plan before: SEARCH USING INDEX ..._tank_id (tank_id=?) + USE TEMP
+            # B-TREE FOR ORDER BY (sorts every row of the tank); after: SEARCH USING INDEX census_tank_recent (tank_id=?), no sort.
+            models.Index(fields=["tank", "-observed_at"], name="census_tank_recent"),
+        ]
         constraints = [
             models.CheckConstraint(condition=Q(estimate__isnull=True) | Q(estimate__gte=0), name="census_estimate_not_negative"),
             models.CheckConstraint(

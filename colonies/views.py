@@ -9,7 +9,7 @@ from django.contrib import messages
 from django.core.exceptions import PermissionDenied
 from django.core.paginator import Paginator
 from django.db.models import Count, Q
-from django.http import Http404, HttpResponse, StreamingHttpResponse
+from django.http import Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.utils.safestring import mark_safe
@@ -22,9 +22,10 @@ from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
-from .history import record_history
+from .history import history_index, page_entries
 from .models import Census, Check, Deviation, Feeding, Room, Species, Tank, WaterChange
 from .idempotency import once_per_submission
+from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, can_record_husbandry, role_required
 
 READ_ROLES = (TECHNICIAN, RESEARCHER)
@@ -95,41 +96,63 @@ def _posted_codes(post) -> set[str]:
 @once_per_submission
 def round_view(request, room_code=None):
     room = get_object_or_404(Room, code=room_code) if room_code else None
-    tanks = list(Tank.objects.for_round().in_room(room))
-    data = None
-    unknown = []
     if request.method == "POST":
         if not can_record_husbandry(request.user):
             raise PermissionDenied("Only technicians and managers record the round.")
-        data = request.POST
-        by_code = {t.code: t for t in tanks}
-        unknown = sorted(_posted_codes(data) - set(by_code))
-    forms = [CheckEntryForm(data, tank=t, prefix=t.code) for t in tanks]
-    when = ObservedAtForm(data, prefix="round")
-    if request.method == "POST":
-        valid = when.is_valid() & all([f.is_valid() for f in forms])
-        valid = valid and when.check_started([f.tank for f in forms if f.has_entry()])
-        if valid and not unknown:
-            rows = [(f.tank, f.row()) for f in forms if f.has_entry()]
-            saved = services.record_round(user=request.user, rows=rows, observed_at=when.cleaned_data.get("observed_at"))
-            flagged = sum(1 for c in saved if c.flags)
-            missing_action = sum(1 for c in saved if c.needs_corrective_action)
-            msg = f"Saved {len(saved)} check{'s' if len(saved) != 1 else ''}; {flagged} with flagged values."
-            if missing_action:
-                msg += f" {missing_action} still need a corrective-action note."
-                messages.warning(request, msg)
-            else:
-                messages.success(request, msg)
-            return redirect(request.path)
-        for code in unknown:
-            messages.error(request, f"Tank code '{code}' does not exist or is retired; allowed: the codes of "
-                                    f"tanks in use {'in ' + room.name if room else 'in any room'}. Nothing was saved.")
-        messages.error(request, "Nothing was saved. Correct the fields marked below and save again.")
+        try:
+            data = round_data(request.POST)
+        except PayloadError as error:
+            return HttpResponseBadRequest(f"{error} Nothing was saved.", content_type="text/plain; charset=utf-8")
+        saved, when, checked = _save_round(request, room, data)
+        if saved is not None:
+            return saved
+    else:
+        data, when, checked = None, ObservedAtForm(prefix="round"), {}
+    # Shown again after a refusal: the validated rows keep their errors, the others their posted values.
+    forms = [checked.get(t.code) or CheckEntryForm(data, tank=t, prefix=t.code)
+             for t in Tank.objects.for_round().in_room(room)]
     ctx = {
         "room": room, "rooms": Room.objects.all(), "rows": _round_rows(forms), "when": when,
-        "tank_codes": ",".join(t.code for t in tanks),
+        "tank_codes": ",".join(f.tank.code for f in forms), "rows_field": ROWS_FIELD,
     }
-    return render(request, "colonies/round.html", ctx, status=400 if request.method == "POST" else 200)
+    return render(request, "colonies/round.html", ctx, status=400 if data is not None else 200)
+
+
+def _save_round(request, room, data):
+    """Validate and save the filled rows only (forms for them alone).
+
+    Returns (redirect, None, {}) when saved, else (None, the time form, the validated forms by code).
+
+    Every posted tank code must be a tank in use in scope, otherwise nothing is saved.
+    """
+    in_scope = set(Tank.objects.in_use().in_room(room).values_list("code", flat=True))
+    unknown = sorted(_posted_codes(data) - in_scope)
+    filled = filled_codes(data, ROUND_FIELDS) & in_scope
+    tanks = Tank.objects.for_round().in_room(room).filter(code__in=filled)
+    forms = [CheckEntryForm(data, tank=t, prefix=t.code) for t in tanks]
+    when = ObservedAtForm(data, prefix="round")
+    valid = when.is_valid() & all([f.is_valid() for f in forms])
+    valid = valid and when.check_started([f.tank for f in forms if f.has_entry()])
+    if valid and not unknown:
+        rows = [(f.tank, f.row()) for f in forms if f.has_entry()]
+        saved = services.record_round(user=request.user, rows=rows, observed_at=when.cleaned_data.get("observed_at"))
+        _flash_round(request, saved)
+        return redirect(request.path), None, {}
+    for code in unknown:
+        messages.error(request, f"Tank code '{code}' does not exist or is retired; allowed: the codes of "
+                                f"tanks in use {'in ' + room.name if room else 'in any room'}. Nothing was saved.")
+    messages.error(request, "Nothing was saved. Correct the fields marked below and save again.")
+    return None, when, {f.tank.code: f for f in forms}
+
+
+def _flash_round(request, saved):
+    flagged = sum(1 for c in saved if c.flags)
+    missing_action = sum(1 for c in saved if c.needs_corrective_action)
+    msg = f"Saved {len(saved)} check{'s' if len(saved) != 1 else ''}; {flagged} with flagged values."
+    if missing_action:
+        messages.warning(request, msg + f" {missing_action} still need a corrective-action note.")
+    else:
+        messages.success(request, msg)
 
 
 def _round_rows(forms):
@@ -284,8 +307,10 @@ def _flash_check(request, check):
 @role_required(*READ_ROLES)
 def tank_history(request, code):
     tank = _get_tank(code)
-    page = Paginator(record_history(tank), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
-    return render(request, "colonies/history.html", {"tank": tank, "entries": page.object_list, "page": page})
+    # Counted and sliced in the database; only the page's versions (and the ones before them) are loaded.
+    page = Paginator(history_index(tank), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
+    return render(request, "colonies/history.html", {"tank": tank, "entries": page_entries(tank, page.object_list),
+                                                     "page": page})
 
 
 HISTORY_PAGE_SIZE = 200
