@@ -2,8 +2,8 @@
 
 Rows come from `values_list` (no model instances) in the order of the `check_export_order` index,
 so neither the database nor Python holds the whole table. Derived values are the registry's own
-functions (colonies/derived.py), memoised per chunk on their exact inputs: readings are stored
-with a few decimals, so many checks share them, and the numbers are the same as `Check.derived()`.
+functions (colonies/derived.py), the numbers `Check.derived()` gives. (Memoising them on their inputs
+was tried: readings carry noise, so on the benchmark facility no two checks shared them.)
 """
 import tempfile
 from collections.abc import Iterator
@@ -34,36 +34,27 @@ def header() -> list[str]:
     return out + TAIL
 
 
-def _derived_cells(habitat: str, inputs: tuple, memo: dict) -> list:
-    key = (habitat, inputs)
-    cells = memo.get(key)
-    if cells is None:
-        values = derived.derive(dict(zip(DERIVED_INPUTS, inputs)), habitat)
-        cells = memo[key] = ["" if values.get(d.key) is None else round(values[d.key], d.decimals + 2)
-                             for d in derived.DERIVED]
-    return cells
+def _derived_cells(habitat: str, inputs: tuple) -> list:
+    values = derived.derive(dict(zip(DERIVED_INPUTS, inputs)), habitat)
+    return ["" if values.get(d.key) is None else round(values[d.key], d.decimals + 2) for d in derived.DERIVED]
 
 
-def _row(v: tuple, memo: dict) -> list:
+def _row(v: tuple) -> list:
     """One export row from a values_list tuple; free text defused (spreadsheet_safe)."""
     (pk, tank, room, observed, recorded, user, habitat), params = v[:7], v[_PARAMS]
     (activity, clumping, dead, film, odour, clarity, flags, action, note, voided_at, void_reason) = v[_PARAMS.stop:]
     return ([pk, spreadsheet_safe(tank), spreadsheet_safe(room), observed.isoformat(), recorded.isoformat(),
              spreadsheet_safe(user)]
             + ["" if x is None else x for x in params]
-            + _derived_cells(habitat, tuple(v[i] for i in _INPUT_AT), memo)
+            + _derived_cells(habitat, tuple(v[i] for i in _INPUT_AT))
             + [activity, int(clumping), dead, int(film), odour, clarity, " ".join(sorted(flags)),
                spreadsheet_safe(action), spreadsheet_safe(note), int(voided_at is not None),
                spreadsheet_safe(void_reason)])
 
 
 def rows(queryset) -> Iterator[list]:
-    """Export rows of `queryset` (checks), oldest first; the memo is dropped every chunk (memory flat)."""
-    memo: dict = {}
-    for i, values in enumerate(queryset.order_by("observed_at", "pk").values_list(*FIELDS).iterator(chunk_size=CHUNK)):
-        if i % CHUNK == 0:
-            memo.clear()
-        yield _row(values, memo)
+    """Export rows of `queryset` (checks), oldest first, fetched CHUNK at a time (memory flat)."""
+    return map(_row, queryset.order_by("observed_at", "pk").values_list(*FIELDS).iterator(chunk_size=CHUNK))
 
 
 def write_xlsx(queryset):
