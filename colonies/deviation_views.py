@@ -76,7 +76,7 @@ def register_csv(request):
         "closed_at_utc": d.closed_at, "closed_by": d.closed_by.get_username() if d.closed_by else "",
         "hours_to_close": round(d.time_to_close.total_seconds() / 3600, 2) if d.time_to_close else None,
         "corrective_action": spreadsheet_safe(d.corrective_action),
-    } for d in dfilter.qs.order_by("opened_at")]
+    } for d in dfilter.qs.defer("evidence").order_by("opened_at").iterator(chunk_size=1000)]  # evidence: not exported
     frame = pd.DataFrame(rows, columns=["id", "tank", "room", "subject", "rule", "parameter", "severity", "status",
                                         "opened_at_utc", "last_seen_at_utc", "evidence_count", "summary",
                                         "acknowledged_at_utc", "acknowledged_by", "closed_at_utc", "closed_by",

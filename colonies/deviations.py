@@ -14,6 +14,7 @@ deviation automatically: a value back in range is new evidence, not a corrective
 Later rules (stocking density, protocol limits) register with `record_rule` / `scan_rule`, or call
 `apply_findings` directly.
 """
+import bisect
 import math
 from collections import defaultdict
 from collections.abc import Callable, Iterable
@@ -55,6 +56,7 @@ DRIFT_MIN_BASELINE = 10
 DRIFT_ZONE = 0.25  # common practice: warn in the outer quarter of the target band
 DRIFT_METHOD = "EWMA chart, λ = 0.3, L = 3 (NIST/SEMATECH e-Handbook §6.3.2.4)"
 HISTORY_DAYS = 35  # how far back record rules look for baselines
+WINDOW_DAYS = 60  # a rescan loads its context in slices of this much observed time
 
 
 @dataclass(frozen=True)
@@ -136,8 +138,12 @@ class Context:
     _values: dict[int, dict] = field(default_factory=dict)
     _position: dict[int, int] = field(default_factory=dict)
 
+    _since: dict[int, int] = field(default_factory=dict)
+
     @classmethod
     def load(cls, checks: list[Check]) -> "Context":
+        """Tanks and their stored checks from HISTORY_DAYS before the batch's oldest check to its newest (four
+        queries). Later checks cannot be earlier than any in the batch, so they are not read."""
         tank_ids = {c.tank_id for c in checks}
         tanks = {
             t.pk: t for t in Tank.objects.filter(pk__in=tank_ids).select_related("species")
@@ -147,22 +153,28 @@ class Context:
             ))
         }
         oldest = min(c.observed_at for c in checks) - timedelta(days=HISTORY_DAYS)
+        newest = max(c.observed_at for c in checks)
         batch = {c.pk for c in checks}
         series: dict[int, list[Check]] = defaultdict(list)
-        stored = (Check.objects.current().filter(tank_id__in=tank_ids, observed_at__gte=oldest)
-                  .exclude(pk__in=batch))
-        for c in list(stored) + list(checks):
+        stored = Check.objects.current().filter(tank_id__in=tank_ids, observed_at__gte=oldest, observed_at__lte=newest)
+        for c in [c for c in stored if c.pk not in batch] + list(checks):  # the batch's own objects, not copies
             c.tank = tanks[c.tank_id]
             series[c.tank_id].append(c)
         ctx = cls(tanks, series, {pk: t.latest_estimate for pk, t in tanks.items()})
         for items in series.values():
             items.sort(key=lambda c: (c.observed_at, c.pk))
+            times = [c.observed_at for c in items]
             for i, c in enumerate(items):
                 ctx._position[id(c)] = i
+                ctx._since[id(c)] = bisect.bisect_left(times, c.observed_at - timedelta(days=HISTORY_DAYS), 0, i)
         return ctx
 
-    def earlier(self, check: Check) -> list[Check]:
-        return self.series[check.tank_id][:self._position[id(check)]]
+    def earlier(self, check: Check, limit: int | None = None) -> list[Check]:
+        """The tank's checks before `check` (oldest first), at most HISTORY_DAYS back from it and at most
+        `limit` of them: what the rules saw when the check was saved, however large the batch."""
+        end = self._position[id(check)]
+        start = self._since[id(check)] if limit is None else max(self._since[id(check)], end - limit)
+        return self.series[check.tank_id][start:end]
 
     def values(self, check: Check) -> dict:
         cached = self._values.get(id(check))
@@ -202,7 +214,7 @@ def mortality_rule(checks, ctx):
         dead = check.dead_removed or 0
         if dead < MORTALITY_MIN_DEAD:
             continue
-        earlier = ctx.earlier(check)[-MORTALITY_BASELINE_CHECKS:]
+        earlier = ctx.earlier(check, MORTALITY_BASELINE_CHECKS)
         baseline = sum(c.dead_removed for c in earlier) / len(earlier) if earlier else 0.0
         poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
         estimate = ctx.latest_estimate.get(check.tank_id)
@@ -229,7 +241,7 @@ def drift_rule(checks, ctx):
     for check in checks:
         tank = ctx.tanks[check.tank_id]
         targets = tank.care_targets()
-        series = ctx.earlier(check)[-(DRIFT_WINDOW + 40):] + [check]
+        series = ctx.earlier(check, DRIFT_WINDOW + 40) + [check]
         for key, value in ctx.values(check).items():
             target = targets.get(key)
             if value is None or target is None or out_of_target(value, target):
@@ -277,9 +289,25 @@ def evaluate_checks(checks: list[Check], now: datetime | None = None) -> Outcome
     checks = [c for c in checks if c.pk and not c.is_voided]
     if not checks:
         return Outcome()
-    ctx = Context.load(checks)
-    findings = [f for rule in RECORD_RULES for f in rule(checks, ctx)]
+    findings = []
+    for window in _windows(checks):
+        ctx = Context.load(window)
+        findings += [f for rule in RECORD_RULES for f in rule(window, ctx)]
     return apply_findings(findings, now=now)
+
+
+def _windows(checks: list[Check]) -> list[list[Check]]:
+    """The batch cut into WINDOW_DAYS slices of observed time (a round is one slice), each in its given order.
+
+    Bounds what a rescan of years of checks holds in memory; each check still sees HISTORY_DAYS before it.
+    Checks observed at the same moment fall in the same slice, so apply_findings sees same-moment findings
+    in the order a single batch would give them.
+    """
+    start = min(c.observed_at for c in checks)
+    windows: dict[int, list[Check]] = defaultdict(list)
+    for c in checks:
+        windows[(c.observed_at - start) // timedelta(days=WINDOW_DAYS)].append(c)
+    return [windows[k] for k in sorted(windows)]
 
 
 # ---------------------------------------------------------------------------------------------

@@ -459,6 +459,8 @@ class Check(Readings, Recorded):
         indexes = [
             # The round's "last value" subqueries and the tank page's recent checks.
             models.Index(fields=["tank", "-observed_at"], name="check_tank_recent"),
+            # The checks CSV/XLSX export: ORDER BY observed_at, id reads this index instead of sorting every row.
+            models.Index(fields=["observed_at", "id"], name="check_export_order"),
         ]
 
     def __str__(self):

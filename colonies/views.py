@@ -1,23 +1,19 @@
 import csv
-import io
 import itertools
 from datetime import timedelta
-
-import pandas as pd
 
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
 from django.core.paginator import Paginator
 from django.db.models import Count, Q
-from django.http import Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
+from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import derived, health_views, parameters, services
+from . import check_export, derived, health_views, parameters, services
 from . import labels as labels_module
-from .exports import safe_row, spreadsheet_safe
 from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
@@ -430,11 +426,6 @@ def species_edit(request, pk):
 # ---------------------------------------------------------------------------------------------
 # Export
 # ---------------------------------------------------------------------------------------------
-def _derived_cells(check) -> list:
-    values = check.derived()
-    return ["" if values.get(d.key) is None else round(values[d.key], d.decimals + 2) for d in derived.DERIVED]
-
-
 class _Echo:
     def write(self, value):
         return value
@@ -444,10 +435,10 @@ class _Echo:
 @role_required(*READ_ROLES)
 def checks_csv(request):
     """All checks matching the filter, one row each; columns come from the parameter registry."""
-    header, rows = _check_export(request)
     writer = csv.writer(_Echo())
-    response = StreamingHttpResponse((writer.writerow(safe_row(r)) for r in itertools.chain([header], rows)),
-                                     content_type="text/csv; charset=utf-8")
+    lines = itertools.chain([writer.writerow(check_export.header())],
+                            map(writer.writerow, check_export.rows(_check_export(request))))
+    response = StreamingHttpResponse(lines, content_type="text/csv; charset=utf-8")
     response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
     return response
 
@@ -455,36 +446,12 @@ def checks_csv(request):
 @require_GET
 @role_required(*READ_ROLES)
 def checks_xlsx(request):
-    """The same table as the CSV, as a spreadsheet (one sheet; times in UTC)."""
-    header, rows = _check_export(request)
-    frame = pd.DataFrame([safe_row(r) for r in rows], columns=header).replace("", None)
-    buffer = io.BytesIO()
-    with pd.ExcelWriter(buffer, engine="openpyxl") as writer:
-        frame.to_excel(writer, sheet_name="checks", index=False, freeze_panes=(1, 2))
-    response = HttpResponse(buffer.getvalue(),
-                            content_type="application/vnd.openxmlformats-officedocument.spreadsheetml.sheet")
-    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.xlsx"'
-    return response
+    """The same table as the CSV, as a spreadsheet (one sheet; times in UTC), built in a temporary file."""
+    return FileResponse(check_export.write_xlsx(_check_export(request)), as_attachment=True,
+                        filename="vermilog-checks.xlsx",
+                        content_type="application/vnd.openxmlformats-officedocument.spreadsheetml.sheet")
 
 
 def _check_export(request):
-    """Header and a row iterator of the checks matching the request's filter (one query, streamed)."""
-    check_filter = CheckFilter(request.GET, queryset=Check.objects.select_related("tank__room", "tank__species",
-                                                                                  "recorded_by"))
-    qs = check_filter.qs.order_by("observed_at", "pk")
-    header = ["check_id", "tank", "room", "observed_at_utc", "recorded_at_utc", "recorded_by"]
-    header += [f"{p.key} [{p.unit}]" if p.unit else p.key for p in parameters.PARAMETERS]
-    header += [f"{d.key} [{d.unit}] (derived)" for d in derived.DERIVED]
-    header += ["activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "flagged",
-               "corrective_action", "note", "voided", "void_reason"]
-
-    def rows():
-        for c in qs.iterator(chunk_size=2000):
-            yield [c.pk, c.tank.code, c.tank.room.code, c.observed_at.isoformat(), c.recorded_at.isoformat(),
-                   c.recorded_by.get_username()] + [
-                "" if getattr(c, p.key) is None else getattr(c, p.key) for p in parameters.PARAMETERS
-            ] + _derived_cells(c) + [c.activity, int(c.clumping), c.dead_removed, int(c.surface_film), c.odour, c.clarity,
-                 " ".join(sorted(c.flags)), spreadsheet_safe(c.corrective_action), spreadsheet_safe(c.note),
-                 int(c.is_voided), spreadsheet_safe(c.void_reason)]
-
-    return header, rows()
+    """The checks matching the request's filter (rows are built by colonies.check_export)."""
+    return CheckFilter(request.GET, queryset=Check.objects.all()).qs

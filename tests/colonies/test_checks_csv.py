@@ -78,7 +78,7 @@ def test_spreadsheet_export_has_the_same_columns_and_rows_as_the_csv(client, res
     response = client.get(reverse("colonies:checks-xlsx"), {"tank": "XL-01"})
     assert response.status_code == 200
     assert response["Content-Type"].startswith("application/vnd.openxmlformats")
-    sheet = load_workbook(io.BytesIO(response.content))["checks"]
+    sheet = load_workbook(io.BytesIO(b"".join(response.streaming_content)))["checks"]  # a FileResponse streams
     rows = list(sheet.iter_rows(values_only=True))
     header = rows[0]
     assert header[:3] == ("check_id", "tank", "room")
@@ -98,3 +98,36 @@ def test_free_text_that_looks_like_a_formula_is_defused(client, researcher):
     rows = csv_rows(client.get(reverse("colonies:checks-csv"), {"tank": "FX-01"}))
     note = rows[1][rows[0].index("note")]
     assert note == "'=HYPERLINK(\"http://x.invalid\")"
+
+
+def test_csv_rows_equal_a_recomputation_from_the_stored_checks(client, researcher, technician):
+    """The streamed rows (values_list, memoised derived values) hold what each Check instance computes."""
+    from colonies import derived
+    from colonies.models import Check
+    from tests.factories import make_species
+
+    fresh = make_tank(code="RC-01")
+    marine = make_tank(code="RC-02", species=make_species(habitat=parameters.MARINE))
+    readings = [dict(temp_c=21.5, ph=7.25, tan_mg_l=0.4, do_mg_l=7.9, conductivity_us_cm=420.0),
+                dict(temp_c=21.5, ph=7.25, tan_mg_l=0.4, do_mg_l=7.9, conductivity_us_cm=420.0),  # same inputs
+                dict(temp_c=18.0, ph=8.1, do_mg_l=6.5),
+                dict(temp_c=24.0, salinity=33.0, do_mg_l=6.1, conductivity_us_cm=50000.0, tan_mg_l=0.05, ph=8.2)]
+    for tank, values in zip([fresh, fresh, fresh, marine], readings):
+        make_check(tank, user=technician, note="+ see log", **values)
+    client.force_login(researcher)
+
+    header, *rows = csv_rows(client.get(reverse("colonies:checks-csv")))
+
+    assert len(rows) == 4
+    for row in rows:
+        record = dict(zip(header, row))
+        check = Check.objects.select_related("tank__species").get(pk=int(record["check_id"]))
+        computed = check.derived()  # the per-check path (colonies/derived.py), # common practice: compare to it
+        for d in derived.DERIVED:
+            value = computed.get(d.key)
+            assert record[f"{d.key} [{d.unit}] (derived)"] == ("" if value is None else str(round(value, d.decimals + 2)))
+        for p in parameters.PARAMETERS:
+            stored = getattr(check, p.key)
+            assert record[f"{p.key} [{p.unit}]" if p.unit else p.key] == ("" if stored is None else str(stored))
+        assert (record["tank"], record["note"], record["voided"]) == (check.tank.code, "'+ see log", "0")
+        assert record["observed_at_utc"] == check.observed_at.isoformat()

@@ -48,3 +48,14 @@ def test_label_sheet_query_count_does_not_grow(client, technician, django_assert
     with django_assert_max_num_queries(len(small.captured_queries)):
         response = client.get(reverse("colonies:tank-labels"))
     assert len(response.context["labels"]) == 33
+
+
+def test_qr_svg_is_remembered_by_content_and_a_new_url_gets_its_own_code():
+    qr_svg.cache_clear()
+    first = qr_svg("http://lab.invalid/tanks/KC-01/")
+    again = qr_svg("http://lab.invalid/tanks/KC-01/")
+    other = qr_svg("http://lab.invalid/tanks/KC-02/")
+    assert again == first and qr_svg.cache_info().hits == 1
+    assert other != first and "<title>http://lab.invalid/tanks/KC-02/</title>" in other
+    # the cached text is what a fresh encoding gives (segno is deterministic)
+    assert qr_svg.__wrapped__("http://lab.invalid/tanks/KC-01/") == first
