@@ -79,7 +79,7 @@ def overview_frame(rows: Iterable[Mapping]) -> pd.DataFrame:
 
 
 def _typed(frame: pd.DataFrame) -> pd.DataFrame:
-    for col in ("value", "lower", "upper", "target_low", "target_high"):
+    for col in NUMERIC_COLUMNS:
         if col in frame:
             frame[col] = pd.to_numeric(frame[col], errors="coerce")
     if "at" in frame:
@@ -87,9 +87,12 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
-def to_csv(frame: pd.DataFrame) -> bytes:
+NUMERIC_COLUMNS = {"value", "lower", "upper", "target_low", "target_high"}
+
+
+def to_csv(frame: pd.DataFrame, header: bool = True) -> bytes:
     """The chart's rows as CSV, every text cell defused for spreadsheets (colonies/exports.py)."""
-    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z").encode("utf-8")
+    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z", header=header).encode("utf-8")
 
 
 def _naive(times: pd.Series) -> pd.Series:

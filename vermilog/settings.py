@@ -209,7 +209,7 @@ STORAGES = {
         )
     },
 }
-# Rendered colony-health plots (colonies/health_views.py); keys carry a records version, so a new
+# Rendered colony-health plots (colonies/health_plots.py); keys carry a records version, so a new
 # record makes a new key. Per-process memory suits one server process; a deployment with several
 # processes can point this at a shared backend.
 CACHES = {
