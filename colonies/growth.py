@@ -77,16 +77,21 @@ def fit_points(points: list[Point], now: datetime, window_days: int = FIT_WINDOW
     Exponential by default; logistic when there are at least LOGISTIC_MIN_POINTS points and it
     fits better by AICc on ln(count).
     """
+    return fit_usable(usable_points(points, now, window_days), window_days)
+
+
+def usable_points(points: list[Point], now: datetime, window_days: int = FIT_WINDOW_DAYS) -> tuple[Point, ...]:
+    """The estimates a fit uses: the last `window_days` up to `now`, from the latest split on."""
     since = now - timedelta(days=window_days)
     usable = [p for p in points if p.kind != "before-split" and since <= p.at <= now]
     resets = [i for i, p in enumerate(usable) if p.kind == "split"]
     if resets:
         usable = usable[resets[-1]:]  # a split changes the culture: fit from the animals left after it
-    return _fit(tuple(usable), window_days)
+    return tuple(usable)
 
 
 @lru_cache(maxsize=FIT_MEMO_SIZE)
-def _fit(usable: tuple[Point, ...], window_days: int) -> Growth:
+def fit_usable(usable: tuple[Point, ...], window_days: int = FIT_WINDOW_DAYS) -> Growth:
     """The fit of exactly these estimates, remembered by their values (a pure function of its
     arguments, so a remembered result is the result: any new, corrected or voided estimate changes
     the arguments)."""
@@ -144,13 +149,24 @@ def mortality(points: list[Point], deaths: int, start: datetime, end: datetime,
     if started_at is not None:
         start = max(start, started_at)
     series = {}
-    for p in points:
+    for p in _around(points, start, end):
         series[(p.at - start).total_seconds() / 86400] = p.value
     if not series or end <= start:
         return Mortality(deaths, None, None, start, end)
     exposure = population.animal_days(sorted(series.items()), 0.0, (end - start).total_seconds() / 86400)
     rate = population.mortality_rate_per_1000_animal_days(deaths, exposure) if exposure > 0 else None
     return Mortality(deaths, exposure, rate, start, end)
+
+
+def _around(points: list[Point], start: datetime, end: datetime) -> list[Point]:
+    """The points (sorted by time) that animal-days over [start, end] depend on: those inside, and
+    the nearest time at or before start and at or after end (population.animal_days interpolates
+    linearly and holds the end values), so the result is the same as with every point."""
+    before = [p for p in points if p.at <= start]
+    after = [p for p in points if p.at >= end]
+    inside = [p for p in points if start < p.at < end]
+    return ([p for p in before if p.at == before[-1].at] if before else []) + inside + \
+        ([p for p in after if p.at == after[0].at] if after else [])
 
 
 @dataclass
@@ -188,12 +204,13 @@ class Summary:
 
 
 def summarize(tank, points: list[Point], deaths: int, now: datetime, started_at: datetime | None = None,
-              mortality_days: int = DEFAULT_MORTALITY_DAYS) -> Summary:
+              mortality_days: int = DEFAULT_MORTALITY_DAYS, fitted: Growth | None = None) -> Summary:
     """Everything the population panel shows, from loaded rows (no query; needs tank.species).
-    `started_at` is the start of the tank's first day (mortality counts from there)."""
+    `started_at` is the start of the tank's first day (mortality counts from there); `fitted`, the
+    growth fit when the caller has it (e.g. from a cache keyed by the fit's inputs)."""
     current = [p for p in points if p.kind != "before-split" and p.at <= now]
     latest = current[-1] if current else None
-    growth = fit_points(points, now)
+    growth = fitted or fit_points(points, now)
     summary = Summary(tank, latest, growth,
                       mortality(points, deaths, now - timedelta(days=mortality_days), now, started_at))
     if tank.species.max_density_per_l:

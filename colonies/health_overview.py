@@ -151,4 +151,4 @@ def select(data: dict, room: str = "", page: int | None = 1) -> dict:
     label = where if page is None or pages == 1 else f"{where}, page {page} of {pages}"
     return {"rows": shown, "room": room, "page": page, "pages": pages, "page_numbers": range(1, pages + 1),
             "rooms_with_tanks": codes, "label": label, "total": len(rows),
-            "first_rank": shown[0]["rank"] if shown else None}
+            "first_rank": shown[0]["rank"] if shown else None, "per_page": PAGE_TANKS}

@@ -2,9 +2,11 @@
 versions that key the plot cache. Each function runs a fixed number of queries whatever the number
 of tanks or records; the numbers are computed by colonies/growth.py (pure).
 """
+import hashlib
 from collections import defaultdict
 from datetime import datetime, time, timedelta
 
+from django.core.cache import cache
 from django.db.models import Count, Max, OuterRef, Q, Subquery, Sum
 from django.utils import timezone
 
@@ -13,6 +15,8 @@ from .growth import Point
 from .models import (CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank,
                      TankTarget, WaterChange)
 
+FIT_CACHE_SECONDS = 7 * 24 * 3600
+METHOD_LABELS = dict(Census.Method.choices)
 STEP = timedelta(seconds=1)  # a split is drawn as a step: the estimate just before it, then after it
 
 
@@ -28,7 +32,7 @@ def load_points(tank_ids) -> dict[int, list[Point]]:
     for tank_id, at, value, low, high, method in (
             Census.objects.current().filter(tank_id__in=ids, estimate__isnull=False)
             .values_list("tank_id", "observed_at", "estimate", "estimate_lower", "estimate_upper", "method")):
-        raw[tank_id].append((at, 0, Point(at, value, low, high, "census", Census.Method(method).label)))
+        raw[tank_id].append((at, 0, Point(at, value, low, high, "census", METHOD_LABELS[method])))
     for tank_id, at, before, stayed in (Split.objects.current().filter(source_id__in=ids)
                                         .values_list("source_id", "split_at", "source_before", "stayed")):
         raw[tank_id].append((at - STEP, 1, Point(at - STEP, before, None, None, "before-split")))
@@ -69,8 +73,20 @@ def started_at(tank: Tank) -> datetime:
     return timezone.make_aware(datetime.combine(tank.started_on, time.min))
 
 
+def fit(points, now: datetime) -> growth.Growth:
+    """growth.fit_points, shared between processes through Django's cache under a key made of the
+    fit's inputs themselves (the estimates it uses), so a stored fit is never stale."""
+    usable = growth.usable_points(points, now)
+    key = "vermilog:fit:" + hashlib.sha256(repr((usable, growth.FIT_WINDOW_DAYS)).encode()).hexdigest()
+    found = cache.get(key)
+    if found is None:
+        found = growth.fit_usable(usable)
+        cache.set(key, found, FIT_CACHE_SECONDS)
+    return found
+
+
 def summarize(tank: Tank, points, deaths: int, now: datetime, mortality_days: int) -> growth.Summary:
-    return growth.summarize(tank, points, deaths, now, started_at(tank), mortality_days)
+    return growth.summarize(tank, points, deaths, now, started_at(tank), mortality_days, fit(points, now))
 
 
 def tank_summary(tank: Tank, now: datetime | None = None,
@@ -161,7 +177,7 @@ def tank_plot_rows(tank: Tank, start: datetime, end: datetime, now: datetime | N
             rows.append({"series": "population", "at": local(p.at), "value": p.value, "lower": p.lower,
                          "upper": p.upper, "unit": "animals", "note": "split" if p.kind == "split" else "census",
                          "label": p.note})
-    fitted = growth.fit_points(points, min(now, end))
+    fitted = fit(points, min(now, end))
     if fitted.fit is not None:
         first = max(start, fitted.t0)
         steps = 60
