@@ -79,7 +79,7 @@ def overview_frame(rows: Iterable[Mapping]) -> pd.DataFrame:
 
 
 def _typed(frame: pd.DataFrame) -> pd.DataFrame:
-    for col in ("value", "lower", "upper", "target_low", "target_high"):
+    for col in NUMERIC_COLUMNS:
         if col in frame:
             frame[col] = pd.to_numeric(frame[col], errors="coerce")
     if "at" in frame:
@@ -87,9 +87,12 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
-def to_csv(frame: pd.DataFrame) -> bytes:
+NUMERIC_COLUMNS = {"value", "lower", "upper", "target_low", "target_high"}
+
+
+def to_csv(frame: pd.DataFrame, header: bool = True) -> bytes:
     """The chart's rows as CSV, every text cell defused for spreadsheets (colonies/exports.py)."""
-    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z").encode("utf-8")
+    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z", header=header).encode("utf-8")
 
 
 def _naive(times: pd.Series) -> pd.Series:
@@ -343,14 +346,19 @@ def overview_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: da
              .drop_duplicates("tank")[["tank", "room", "species"]].to_dict("records"))
     columns = max(1, min(columns, len(tanks) or 1))
     n_rows = max(1, math.ceil(len(tanks) / columns))
-    fig = Figure(figsize=(2.9 * columns, 0.8 + 2.15 * n_rows), layout="constrained")
-    fig.suptitle(title, x=0.01, ha="left", fontsize=12, fontweight="bold", color=INK)
+    # A fixed layout (margins in inches), not constrained layout: its cost grows steeply with the
+    # number of panels, and these panels are all alike. The caller shows a page of tanks at a time.
+    width, height = 2.9 * columns, 0.8 + 2.15 * n_rows + 0.45
+    fig = Figure(figsize=(width, height))
+    fig.suptitle(title, x=0.01, y=1 - 0.12 / height, ha="left", va="top", fontsize=12, fontweight="bold", color=INK)
     if not tanks:
         ax = fig.add_subplot(1, 1, 1)
         ax.set_axis_off()
         _empty(ax, "No tanks in use")
         return _render(fig, fmt)
-    axes = fig.subplots(n_rows, columns, squeeze=False, sharex=True)
+    layout = {"left": 0.62 / width, "right": 1 - 0.12 / width, "top": 1 - 1.0 / height, "bottom": 0.75 / height,
+              "wspace": 0.3, "hspace": 0.72 / 1.43}
+    axes = fig.subplots(n_rows, columns, squeeze=False, sharex=True, gridspec_kw=layout)
     for ax in axes.flat[len(tanks):]:
         ax.set_axis_off()
     for i, (ax, tank) in enumerate(zip(axes.flat, tanks)):
@@ -364,7 +372,8 @@ def overview_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: da
         Line2D([], [], color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)), label="Maximum stocking"),
     ] + [Line2D([], [], color=edge, linestyle=style, linewidth=2, label=f"Frame: {label}")
          for label, edge, style in STATUS_STYLE.values()]
-    fig.legend(handles=handles, loc="outside lower center", ncol=len(handles), fontsize=7.5, frameon=False)
+    fig.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, 0.05 / height), ncol=len(handles),
+               fontsize=7.5, frameon=False)
     return _render(fig, fmt)
 
 

@@ -502,7 +502,7 @@ def latest_estimates(tank_ids) -> dict[int, tuple[float, datetime, str, str]]:
 
     The newest of: its latest current census, the animals that stayed at its latest split, and
     (for a tank set up by a split) the animals moved into it. Animals split into an existing tank
-    after that are added to it, as the tank page does (colonies.health_views.load_points).
+    after that are added to it, as the tank page does (colonies.health_series.load_points).
     """
     from .models import Split, SplitPart
 

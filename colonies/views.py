@@ -12,7 +12,7 @@ from django.utils import timezone
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import check_export, derived, health_views, parameters, services
+from . import check_export, derived, health_forms, health_series, parameters, services
 from . import labels as labels_module
 from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
@@ -196,8 +196,8 @@ def tank_labels(request):
 
 def _tank_page_ctx(request, tank, **forms):
     tank_with = Tank.objects.for_round().filter(pk=tank.pk).first() or tank
-    summary = health_views.tank_summary(tank)  # population, growth, forecast, mortality, splits: fixed queries
-    split_form, part_forms = health_views.split_forms(tank, latest=summary.latest.value if summary.latest else None)
+    summary = health_series.tank_summary(tank)  # population, growth, forecast, mortality, splits: fixed queries
+    split_form, part_forms = health_forms.split_forms(tank, latest=summary.latest.value if summary.latest else None)
     checks = list(tank.check_set.current().select_related("recorded_by")[:30])
     params = tank.relevant_parameters()
     columns = params + derived.for_habitat(tank.species.habitat)

@@ -10,7 +10,7 @@ VERMILOG_CACHE picks the backend and VERMILOG_CACHE_LOCATION says where it keeps
           (pip install redis), which is not a requirement of Vermilog
   locmem  memory of each process: development and tests only, never shared between worker processes
 
-Entries are rendered figures whose keys carry the records' versions (colonies/health_views.py), so a
+Entries are rendered figures whose keys carry the records' versions (colonies/health_plots.py), so a
 shared cache never serves a figure older than the records; the backend only decides who can reuse it.
 Those versions are row ids, which mean something only in one database: make_key() puts the database's
 identity in every key, so a test database, a benchmark's scratch database or a second facility on the

@@ -211,7 +211,7 @@ STORAGES = {
         )
     },
 }
-# Rendered colony-health plots (colonies/health_views.py); keys carry a records version, so a new
+# Rendered colony-health plots (colonies/health_plots.py); keys carry a records version, so a new
 # record makes a new key. One cache shared by every worker process: a folder on disk by default,
 # or the database or Redis for several app servers (VERMILOG_CACHE, vermilog/caches.py, README).
 CACHES = cache_settings(os.environ, BASE_DIR)

@@ -1,5 +1,5 @@
 """Population on the tank page, stocking density, splits and lineage, mortality, the health plots
-and the colony-health overview (colonies/health_views.py)."""
+and the colony-health overview (colonies/health_views.py and the modules it uses)."""
 import csv
 import io
 import math
@@ -14,7 +14,7 @@ from django.test.utils import CaptureQueriesContext
 from django.urls import reverse
 from django.utils import timezone
 
-from colonies import deviations, health_views, services
+from colonies import charts, deviations, growth, health_plots, health_views, services
 from colonies.models import Census, Deviation, Feeding, Split, SplitPart, Tank
 from tests.factories import make_check, make_room, make_species, make_tank, page_text
 
@@ -26,6 +26,11 @@ def _empty_cache():
     cache.clear()
     yield
     cache.clear()
+
+
+def _body(response) -> str:
+    """A streamed CSV's text."""
+    return b"".join(response.streaming_content).decode()
 
 
 def visible(response) -> str:
@@ -320,8 +325,8 @@ def test_mortality_rate_hand_worked_linear_population():
     # = 33,000; 66 deaths -> 66 / 33,000 x 1000 = 2.0 per 1000 animal-days. (hand-worked)
     start = timezone.now() - timedelta(days=30)
     end = start + timedelta(days=30)
-    points = [health_views.Point(start, 1000, None, None, "census"), health_views.Point(end, 1200, None, None, "census")]
-    m = health_views.mortality(points, 66, start, end)
+    points = [growth.Point(start, 1000, None, None, "census"), growth.Point(end, 1200, None, None, "census")]
+    m = growth.mortality(points, 66, start, end)
     assert m.animal_days == pytest.approx(33_000)
     assert m.rate == pytest.approx(2.0)
 
@@ -389,9 +394,9 @@ def test_tank_plot_csv_has_the_chart_columns_and_rows(client, world, technician)
     make_check(world.tank, user=technician, temp_c=26.0, dead_removed=2)
     client.force_login(technician)
     response = client.get(reverse("colonies:tank-plot-csv", args=[world.tank.code]))
-    rows = list(csv.DictReader(io.StringIO(response.content.decode())))
+    rows = list(csv.DictReader(io.StringIO(_body(response))))
     assert response["Content-Type"].startswith("text/csv")
-    assert list(rows[0]) == health_views.charts.TANK_COLUMNS
+    assert list(rows[0]) == charts.TANK_COLUMNS
     series = {r["series"] for r in rows}
     assert {"population", "fit", "capacity", "reading", "deaths"} <= series
     reading = next(r for r in rows if r["series"] == "reading")
@@ -405,8 +410,8 @@ def test_overview_plot_and_csv(client, world, technician):
     png = client.get(reverse("colonies:health-overview-plot") + "?format=png")
     assert png.content.startswith(PNG_MAGIC)
     response = client.get(reverse("colonies:health-overview-csv"))
-    rows = list(csv.DictReader(io.StringIO(response.content.decode())))
-    assert list(rows[0]) == health_views.charts.OVERVIEW_COLUMNS
+    rows = list(csv.DictReader(io.StringIO(_body(response))))
+    assert list(rows[0]) == charts.OVERVIEW_COLUMNS
     assert {r["series"] for r in rows} >= {"population", "status", "mortality_per_1000_animal_days"}
 
 
@@ -414,13 +419,13 @@ def test_overview_plot_and_csv(client, world, technician):
 def test_cached_plot_is_reused_until_a_record_of_the_tank_changes(world, technician, add):
     _doubling_series(world, technician)
     tank = health_views._tank_for_plot(world.tank.code)
-    first, hit = health_views.render_tank_plot(tank, 120, "svg")
+    first, hit = health_plots.render_tank_plot(tank, 120, "svg")
     assert not hit
-    again, hit = health_views.render_tank_plot(tank, 120, "svg")
+    again, hit = health_plots.render_tank_plot(tank, 120, "svg")
     assert hit and again == first
     other = make_tank(code="Z-01", room=world.room, species=world.species)
     make_check(other, user=technician, ph=7.0)  # another tank's record: still cached
-    assert health_views.render_tank_plot(tank, 120, "svg")[1]
+    assert health_plots.render_tank_plot(tank, 120, "svg")[1]
     if add == "check":
         make_check(world.tank, user=technician, ph=7.0)
     elif add == "feeding":
@@ -429,16 +434,16 @@ def test_cached_plot_is_reused_until_a_record_of_the_tank_changes(world, technic
         census(world.tank, technician, 150, 0)
     else:
         Census.objects.filter(tank=world.tank).latest().void(user=technician, reason="Miscounted")
-    changed, hit = health_views.render_tank_plot(tank, 120, "svg")
+    changed, hit = health_plots.render_tank_plot(tank, 120, "svg")
     assert not hit
 
 
 def test_overview_cache_is_invalidated_by_a_new_record(world, technician):
     _doubling_series(world, technician)
-    assert not health_views.render_overview_plot(30, "png")[1]
-    assert health_views.render_overview_plot(30, "png")[1]
+    assert not health_plots.render_overview_plot(30, "png")[1]
+    assert health_plots.render_overview_plot(30, "png")[1]
     make_check(world.tank, user=technician, dead_removed=3)
-    assert not health_views.render_overview_plot(30, "png")[1]
+    assert not health_plots.render_overview_plot(30, "png")[1]
 
 
 # ---------------------------------------------------------------------------------------------

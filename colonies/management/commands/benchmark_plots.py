@@ -4,7 +4,7 @@ import time
 from django.core.cache import cache
 from django.core.management.base import BaseCommand, CommandError
 
-from colonies import health_views
+from colonies import health_plots, health_views
 from colonies.models import Tank
 
 
@@ -23,13 +23,13 @@ class Command(BaseCommand):
         target = self._tank(tank)
         fmt = format
         tank_first, tank_cached, size = self._measure(
-            lambda: health_views.tank_plot_key(target, days, fmt),
-            lambda: health_views.render_tank_plot(target, days, fmt), repeat)
+            lambda: health_plots.tank_plot_key(target, days, fmt),
+            lambda: health_plots.render_tank_plot(target, days, fmt), repeat)
         self._line(f"Tank {target.code}, {days} days, {fmt}", tank_first, tank_cached, size)
         over_days = health_views.DEFAULT_MORTALITY_DAYS
         over_first, over_cached, size = self._measure(
-            lambda: health_views.overview_plot_key(over_days, fmt),
-            lambda: health_views.render_overview_plot(over_days, fmt), repeat)
+            lambda: health_plots.overview_plot_key(over_days, fmt),
+            lambda: health_plots.render_overview_plot(over_days, fmt), repeat)
         n = Tank.objects.in_use().count()
         self._line(f"Overview, {n} tanks, {over_days} days, {fmt}", over_first, over_cached, size)
 

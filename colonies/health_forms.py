@@ -1,0 +1,122 @@
+"""The split form of the tank page and its destination rows."""
+import math
+
+from django import forms
+
+from . import services
+from .models import Tank, tank_code_validator
+from .validators import MAX_ANIMALS, MAX_TEXT, NamedErrorsMixin, check_moment
+
+
+def _animals(label: str, value, minimum: float) -> float:
+    if value is None:
+        return value
+    if not (math.isfinite(value) and minimum <= value <= MAX_ANIMALS):
+        raise forms.ValidationError(f"{label}: {value:g} is impossible; allowed range {minimum:g} to {MAX_ANIMALS:,} animals.")
+    return value
+
+
+class SplitForm(NamedErrorsMixin, forms.Form):
+    split_at = forms.DateTimeField(
+        required=False, label="Split at", help_text="Leave empty for now.",
+        widget=forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M"),
+    )
+    source_before = forms.FloatField(label="Animals before the split (estimate)",
+                                     help_text="Usually the latest census estimate.")
+    stayed = forms.FloatField(label="Animals left in this tank (estimate)")
+    note = forms.CharField(required=False, max_length=MAX_TEXT, widget=forms.TextInput(attrs={"placeholder": "Note"}))
+
+    def __init__(self, *args, tank: Tank, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.tank = tank
+
+    def clean_split_at(self):
+        return check_moment("Split at", self.cleaned_data.get("split_at"), started_on=self.tank.started_on,
+                            what=f"when tank {self.tank.code} was started")
+
+    def clean_source_before(self):
+        return _animals("Animals before the split", self.cleaned_data.get("source_before"), 1)
+
+    def clean_stayed(self):
+        return _animals("Animals left in this tank", self.cleaned_data.get("stayed"), 0)
+
+    def clean(self):
+        cleaned = super().clean()
+        before, stayed = cleaned.get("source_before"), cleaned.get("stayed")
+        if before is not None and stayed is not None and stayed > before:
+            self.add_error("stayed", f"Animals left in this tank: {stayed:g} is impossible; allowed range 0 to "
+                                     f"{before:g} animals (the animals before the split).")
+        return cleaned
+
+
+class SplitPartForm(NamedErrorsMixin, forms.Form):
+    """One destination: an existing tank of the same species, or a new tank set up now."""
+
+    destination = forms.ChoiceField(required=False, label="To existing tank")
+    new_code = forms.CharField(required=False, max_length=12, label="or new tank code")
+    new_position = forms.CharField(required=False, max_length=30, label="New tank position")
+    new_volume_l = forms.FloatField(required=False, label="New tank volume (L)")
+    animals = forms.FloatField(required=False, label="Animals moved (estimate)")
+
+    def __init__(self, *args, destinations: list[Tank], **kwargs):
+        super().__init__(*args, **kwargs)
+        self.by_code = {t.code: t for t in destinations}
+        self.fields["destination"].choices = [("", "—")] + [(t.code, t.code) for t in destinations]
+
+    def clean_new_code(self):
+        code = self.cleaned_data.get("new_code", "").strip().upper()
+        if code:
+            try:
+                tank_code_validator(code)
+            except forms.ValidationError:
+                raise forms.ValidationError(f"New tank code: '{code}' is not a tank code; use 1-12 capital letters, "
+                                            "digits or hyphens (e.g. FW-A07).") from None
+        return code
+
+    def clean_new_volume_l(self):
+        volume = self.cleaned_data.get("new_volume_l")
+        if volume is not None and not (0.01 <= volume <= 10000):
+            raise forms.ValidationError(f"New tank volume (L): {volume:g} is impossible; allowed range 0.01 to 10000 L.")
+        return volume
+
+    def clean_animals(self):
+        return _animals("Animals moved", self.cleaned_data.get("animals"), 0)
+
+    def clean(self):
+        cleaned = super().clean()
+        if self.errors or not self.has_entry():
+            return cleaned
+        code, new_code = cleaned.get("destination"), cleaned.get("new_code")
+        if bool(code) == bool(new_code):
+            self.add_error("destination", "Destination: choose an existing tank or enter a new tank code (one of them).")
+        if new_code and cleaned.get("new_volume_l") is None:
+            self.add_error("new_volume_l", f"New tank volume (L): enter the volume of {new_code} (0.01 to 10000 L).")
+        if cleaned.get("animals") is None:
+            self.add_error("animals", "Animals moved: enter the estimated number of animals moved.")
+        return cleaned
+
+    def has_entry(self) -> bool:
+        c = self.cleaned_data
+        return any(c.get(name) not in (None, "") for name in ("destination", "new_code", "new_volume_l", "animals"))
+
+    def part(self):
+        c = self.cleaned_data
+        if c.get("new_code"):
+            target = services.NewTank(code=c["new_code"], volume_l=c["new_volume_l"], position=c.get("new_position", ""))
+        else:
+            target = self.by_code[c["destination"]]
+        return target, c["animals"]
+
+
+SplitPartFormSet = forms.formset_factory(SplitPartForm, extra=3, max_num=6)
+
+
+def split_forms(tank: Tank, data=None, latest: float | None = None):
+    """The split form and its destination rows for the tank page (one query for the destinations)."""
+    destinations = list(Tank.objects.in_use().filter(species_id=tank.species_id).exclude(pk=tank.pk)
+                        .only("code").order_by("code"))
+    initial = {"source_before": round(latest)} if latest else {}
+    form = SplitForm(data, tank=tank, prefix="split", initial=initial)
+    parts = SplitPartFormSet(data, prefix="part", form_kwargs={"destinations": destinations})
+    return form, parts
+

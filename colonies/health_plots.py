@@ -1,0 +1,110 @@
+"""Rendered colony-health figures and their CSV, cached under keys that carry a data version.
+
+A tank's figure is keyed by that tank's records version (health_series.records_versions); the
+overview's by the facility version (the newest history id of each record type it shows), so any
+save, correction or void anywhere it looks makes a new key. The pictures come from charts.py.
+"""
+import hashlib
+from datetime import datetime, timedelta
+
+from django.core.cache import cache
+from django.utils import timezone
+
+from . import charts, growth, health_overview, health_series
+from .health_series import local, window
+from .models import Tank
+
+CACHE_SECONDS = 24 * 3600
+
+
+def cached(key: str, build) -> tuple[bytes, bool]:
+    """(bytes, came from the cache)."""
+    hit = cache.get(key)
+    if hit is not None:
+        return hit, True
+    value = build()
+    cache.set(key, value, CACHE_SECONDS)
+    return value, False
+
+
+def cache_key(*parts) -> str:
+    return "vermilog:" + hashlib.sha256(":".join(str(p) for p in parts).encode()).hexdigest()
+
+
+# ---------------------------------------------------------------------------------------------
+# One tank
+# ---------------------------------------------------------------------------------------------
+def tank_plot_key(tank: Tank, days: int, fmt: str) -> str:
+    """Cache key of a tank's figure: tank, period (whole local days), records version and format."""
+    start, _ = window(days)
+    return cache_key("tank-plot", tank.pk, days, start.isoformat(),
+                     health_series.records_versions([tank.pk])[tank.pk], fmt)
+
+
+def render_tank_plot(tank: Tank, days: int, fmt: str) -> tuple[bytes, bool]:
+    """The tank's figure for the last `days` days, from the cache when its records have not changed."""
+    start, end = window(days)
+
+    def build():
+        frame = charts.tank_frame(health_series.tank_plot_rows(tank, start, end))
+        title = f"Tank {tank.code} · {tank.species.scientific_name} · {tank.room.name}"
+        subtitle = (f"{local(start):%d %b %Y} to {local(end - timedelta(seconds=1)):%d %b %Y} ({days} days) · "
+                    f"{tank.volume_l:g} L · made by Vermilog {timezone.localdate():%Y-%m-%d}")
+        return charts.tank_figure(frame, title=title, subtitle=subtitle, start=local(start), end=local(end), fmt=fmt)
+
+    return cached(tank_plot_key(tank, days, fmt), build)
+
+
+def tank_csv_chunks(tank: Tank, days: int):
+    """The tank figure's rows as CSV text, one chunk per series (header first)."""
+    start, end = window(days)
+    rows = health_series.tank_plot_rows(tank, start, end)
+    by_series: dict[str, list] = {}
+    for row in rows:
+        by_series.setdefault(row["series"], []).append(row)
+    return _csv_chunks(charts.TANK_COLUMNS, charts.tank_frame, by_series.values())
+
+
+def _csv_chunks(columns, make_frame, groups):
+    """CSV text chunk by chunk, the same text charts.to_csv gives for the whole frame: numeric
+    columns are written as floats in every chunk (as in a whole frame, where empty cells make them so)."""
+    yield charts.to_csv(make_frame([]).reindex(columns=columns))
+    for group in groups:
+        frame = make_frame(group)
+        for col in charts.NUMERIC_COLUMNS & set(frame.columns):
+            frame[col] = frame[col].astype("float64")
+        yield charts.to_csv(frame, header=False)
+
+
+# ---------------------------------------------------------------------------------------------
+# The facility overview, one page (a room, or all rooms, PAGE_TANKS tanks worst first) at a time
+# ---------------------------------------------------------------------------------------------
+def overview_plot_key(days: int, fmt: str, room: str = "", page: int = 1) -> str:
+    return cache_key("overview-plot", days, timezone.localdate().isoformat(), room, page,
+                     health_series.facility_version(), fmt)
+
+
+def render_overview_plot(days: int, fmt: str, room: str = "", page: int = 1) -> tuple[bytes, bool]:
+    today = timezone.localdate()
+
+    def build():
+        data = health_overview.overview(days)
+        shown = health_overview.select(data, room, page)
+        trend_start = trend_from(data)
+        frame = charts.overview_frame(health_overview.overview_rows(data, trend_start, shown["rows"]))
+        title = (f"Colony health · {today:%d %b %Y} · {shown['label']} · worst first · health over the last "
+                 f"{days} days, population over {max(days, growth.FIT_WINDOW_DAYS)} days")
+        return charts.overview_figure(frame, title=title, start=local(trend_start), end=local(data["end"]), fmt=fmt)
+
+    return cached(overview_plot_key(days, fmt, room, page), build)
+
+
+def trend_from(data: dict) -> datetime:
+    return data["end"] - timedelta(days=max(data["days"], growth.FIT_WINDOW_DAYS))
+
+
+def overview_csv_chunks(data: dict, rows: list[dict]):
+    """The overview's rows (`rows`, a selection of data["rows"]) as CSV text, one chunk per tank."""
+    trend_start = trend_from(data)
+    groups = (health_overview.overview_rows(data, trend_start, [row]) for row in rows)
+    return _csv_chunks(charts.OVERVIEW_COLUMNS, charts.overview_frame, groups)

@@ -1,0 +1,225 @@
+"""Loading a tank's (or every tank's) population series, deaths and plot rows, and the data
+versions that key the plot cache. Each function runs a fixed number of queries whatever the number
+of tanks or records; the numbers are computed by colonies/growth.py (pure).
+"""
+import hashlib
+from collections import defaultdict
+from datetime import datetime, time, timedelta
+
+from django.core.cache import cache
+from django.db.models import Count, Max, OuterRef, Q, Subquery, Sum
+from django.utils import timezone
+
+from . import growth, parameters, population, population_hooks
+from .growth import Point
+from .models import (CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank,
+                     TankTarget, WaterChange)
+
+FIT_CACHE_SECONDS = 7 * 24 * 3600
+METHOD_LABELS = dict(Census.Method.choices)
+STEP = timedelta(seconds=1)  # a split is drawn as a step: the estimate just before it, then after it
+
+
+def load_points(tank_ids) -> dict[int, list[Point]]:
+    """Every tank's population estimates, oldest first, in three queries whatever the number of tanks.
+
+    A split is a step: the estimate just before it and the estimate after it. A split into an
+    existing tank adds the animals moved to that tank's previous estimate. One pass per tank over
+    its own rows (the animals moved in are grouped by destination first).
+    """
+    ids = list(tank_ids)
+    raw: dict[int, list[tuple]] = {pk: [] for pk in ids}
+    for tank_id, at, value, low, high, method in (
+            Census.objects.current().filter(tank_id__in=ids, estimate__isnull=False)
+            .values_list("tank_id", "observed_at", "estimate", "estimate_lower", "estimate_upper", "method")):
+        raw[tank_id].append((at, 0, Point(at, value, low, high, "census", METHOD_LABELS[method])))
+    for tank_id, at, before, stayed in (Split.objects.current().filter(source_id__in=ids)
+                                        .values_list("source_id", "split_at", "source_before", "stayed")):
+        raw[tank_id].append((at - STEP, 1, Point(at - STEP, before, None, None, "before-split")))
+        raw[tank_id].append((at, 1, Point(at, stayed, None, None, "split", "left after a split")))
+    moved_in = defaultdict(list)
+    for tank_id, at, animals, created, source in (
+            SplitPart.objects.filter(destination_id__in=ids, split__voided_at__isnull=True)
+            .values_list("destination_id", "split__split_at", "animals", "created_tank", "split__source__code")):
+        moved_in[tank_id].append((at, animals, created, source))
+    return {tank_id: _with_moves_in([p for *_, p in sorted(items, key=lambda i: (i[0], i[1]))],
+                                    sorted(moved_in.get(tank_id, ()), key=lambda m: m[0]))
+            for tank_id, items in raw.items()}
+
+
+def _with_moves_in(points: list[Point], moves: list[tuple]) -> list[Point]:
+    for at, animals, created, source in moves:
+        earlier = [p for p in points if p.at < at]
+        if created:
+            points.append(Point(at, animals, None, None, "split", f"set up from {source}"))
+        elif earlier:
+            prior = earlier[-1].value
+            points.append(Point(at - STEP, prior, None, None, "before-split"))
+            points.append(Point(at, prior + animals, None, None, "split", f"{animals:.0f} added from {source}"))
+        points.sort(key=lambda p: p.at)
+    return points
+
+
+def check_counts(tank_ids, start, end) -> dict[int, dict]:
+    """Per tank: dead removed, checks and checks with a flagged value over [start, end] (one query)."""
+    rows = (Check.objects.current().filter(tank_id__in=list(tank_ids), observed_at__gte=start, observed_at__lte=end)
+            .values("tank_id").annotate(dead=Sum("dead_removed"), checks=Count("id"),
+                                        flagged=Count("id", filter=~Q(flags={}))))
+    return {r["tank_id"]: r for r in rows}
+
+
+def started_at(tank: Tank) -> datetime:
+    """The start of the tank's first day (local midnight)."""
+    return timezone.make_aware(datetime.combine(tank.started_on, time.min))
+
+
+def fit(points, now: datetime) -> growth.Growth:
+    """growth.fit_points, shared between processes through Django's cache under a key made of the
+    fit's inputs themselves (the estimates it uses), so a stored fit is never stale."""
+    usable = growth.usable_points(points, now)
+    key = "vermilog:fit:" + hashlib.sha256(repr((usable, growth.FIT_WINDOW_DAYS)).encode()).hexdigest()
+    found = cache.get(key)
+    if found is None:
+        found = growth.fit_usable(usable)
+        cache.set(key, found, FIT_CACHE_SECONDS)
+    return found
+
+
+def summarize(tank: Tank, points, deaths: int, now: datetime, mortality_days: int) -> growth.Summary:
+    return growth.summarize(tank, points, deaths, now, started_at(tank), mortality_days, fit(points, now))
+
+
+def tank_summary(tank: Tank, now: datetime | None = None,
+                 mortality_days: int = growth.DEFAULT_MORTALITY_DAYS) -> growth.Summary:
+    """The tank page's population summary and splits: six queries whatever the tank's history."""
+    now = now or timezone.now()
+    points = load_points([tank.pk])[tank.pk]
+    dead = check_counts([tank.pk], now - timedelta(days=mortality_days), now).get(tank.pk, {}).get("dead") or 0
+    summary = summarize(tank, points, dead, now, mortality_days)
+    summary.splits = split_rows(tank.splits_out.current().prefetch_related("parts__destination")[:10])
+    if summary.latest:
+        summary.movements = population_hooks.movements_since(tank.pk, summary.latest.at)
+    return summary
+
+
+def split_rows(splits) -> list[dict]:
+    rows = []
+    for split in splits:
+        parts = list(split.parts.all())
+        balance = population.split_balance(split.source_before, [split.stayed] + [p.animals for p in parts])
+        rows.append({"split": split, "parts": parts, "balance": balance,
+                     "difference_pct": 100 * balance.relative_difference})
+    return rows
+
+
+# ---------------------------------------------------------------------------------------------
+# Cache keys: a version that changes with any record of the tank
+# ---------------------------------------------------------------------------------------------
+def _newest(history_qs, **match):
+    return Subquery(history_qs.filter(**match).order_by("-history_id").values("history_id")[:1])
+
+
+def records_versions(tank_ids) -> dict[int, str]:
+    """Per tank, a string that changes whenever anything its plots show changes (one query).
+
+    History rows are only ever added (saves, corrections and voids each add one), so the newest
+    history id of each record type is a version that cannot go back.
+    """
+    pk = OuterRef("pk")
+    split_ids_in = SplitPart.objects.filter(destination_id=OuterRef(OuterRef("pk"))).values("split_id")
+    rows = Tank.objects.filter(pk__in=list(tank_ids)).annotate(
+        v_tank=_newest(Tank.history, id=pk),
+        v_check=_newest(Check.history, tank_id=pk),
+        v_feeding=_newest(Feeding.history, tank_id=pk),
+        v_water=_newest(WaterChange.history, tank_id=pk),
+        v_census=_newest(Census.history, tank_id=pk),
+        v_split_out=_newest(Split.history, source_id=pk),
+        v_split_in=_newest(Split.history, id__in=split_ids_in),
+        v_part=_newest(SplitPart.history, destination_id=pk),
+        v_override=_newest(TankTarget.history, tank_id=pk),
+        v_species=_newest(Species.history, id=OuterRef("species_id")),
+        v_targets=_newest(CareTarget.history, species_id=OuterRef("species_id")),
+        v_room=_newest(Room.history, id=OuterRef("room_id")),
+    ).values_list("pk", "v_tank", "v_check", "v_feeding", "v_water", "v_census", "v_split_out", "v_split_in",
+                  "v_part", "v_override", "v_species", "v_targets", "v_room")
+    return {row[0]: ".".join(str(v or 0) for v in row[1:]) for row in rows}
+
+
+# Every record type that the overview shows (its tanks, rooms, species and targets, censuses, splits,
+# checks and deviations). History rows are only ever added, so the newest history id of each is a
+# version of the whole facility that changes with any save, correction or void.
+FACILITY_HISTORIES = (Tank, Room, Species, CareTarget, TankTarget, Census, Split, SplitPart, Check, Deviation)
+
+
+def facility_version() -> str:
+    """The newest history id of each record type the overview shows: one indexed max() per
+    history table (ten small queries), whatever the number of tanks and records."""
+    return ".".join(str(model.history.aggregate(v=Max("history_id"))["v"] or 0) for model in FACILITY_HISTORIES)
+
+
+def window(days: int) -> tuple[datetime, datetime]:
+    """[start, end) of the last `days` days in whole local days, so a plot is the same all day long."""
+    end = timezone.make_aware(datetime.combine(timezone.localdate() + timedelta(days=1), time.min))
+    return end - timedelta(days=days), end
+
+
+def local(dt: datetime) -> datetime:
+    return timezone.localtime(dt)
+
+
+def tank_plot_rows(tank: Tank, start: datetime, end: datetime, now: datetime | None = None) -> list[dict]:
+    """The tidy rows behind a tank's health figure (charts.TANK_COLUMNS); a fixed number of queries."""
+    now = now or timezone.now()
+    rows: list[dict] = []
+    points = load_points([tank.pk])[tank.pk]
+    for p in points:
+        if start <= p.at <= end and p.kind != "before-split":
+            rows.append({"series": "population", "at": local(p.at), "value": p.value, "lower": p.lower,
+                         "upper": p.upper, "unit": "animals", "note": "split" if p.kind == "split" else "census",
+                         "label": p.note})
+    fitted = fit(points, min(now, end))
+    if fitted.fit is not None:
+        first = max(start, fitted.t0)
+        steps = 60
+        span = (min(end, now) - first) / steps
+        for i in range(steps + 1):
+            when = first + span * i
+            rows.append({"series": "fit", "at": local(when), "value": fitted.at(when), "unit": "animals",
+                         "note": fitted.fit.model})
+    if tank.species.max_density_per_l:
+        rows.append({"series": "capacity", "at": local(start), "unit": "animals",
+                     "value": tank.species.max_density_per_l * tank.volume_l,
+                     "note": f"{tank.species.max_density_per_l} animals/L x {tank.volume_l:g} L"})
+    targets = tank.care_targets()
+    keys = [p.key for p in tank.relevant_parameters()]
+    checks = (tank.check_set.current().filter(observed_at__gte=start, observed_at__lt=end).order_by("observed_at")
+              .values("observed_at", "dead_removed", "flags", *keys))
+    dead_by_day: dict = {}
+    for c in checks:
+        day = local(c["observed_at"]).date()
+        dead_by_day[day] = dead_by_day.get(day, 0) + (c["dead_removed"] or 0)
+        for key in keys:
+            if c[key] is None:
+                continue
+            p = parameters.BY_KEY[key]
+            target = targets.get(key)
+            flag = (c["flags"] or {}).get(key) or {}
+            rows.append({"series": "reading", "at": local(c["observed_at"]), "parameter": key, "label": p.label,
+                         "unit": p.unit, "value": c[key],
+                         "target_low": target.low if target else None, "target_high": target.high if target else None,
+                         "flagged": flag.get("side", "")})
+    for day, dead in sorted(dead_by_day.items()):
+        rows.append({"series": "deaths", "at": timezone.make_aware(datetime.combine(day, time(12))), "value": dead,
+                     "unit": "animals/day"})
+    for at, amount, unit, food in (tank.feeding_set.current().filter(observed_at__gte=start, observed_at__lt=end)
+                                   .values_list("observed_at", "amount", "unit", "food")):
+        rows.append({"series": "feeding", "at": local(at), "value": amount, "unit": unit, "note": food})
+    for at, percent, litres in (tank.waterchange_set.current().filter(observed_at__gte=start, observed_at__lt=end)
+                                .values_list("observed_at", "percent", "litres")):
+        rows.append({"series": "water_change", "at": local(at), "value": percent if percent is not None else litres,
+                     "unit": "%" if percent is not None else "L"})
+    for p in points:
+        if p.kind == "split" and start <= p.at <= end:
+            rows.append({"series": "split", "at": local(p.at), "value": p.value, "unit": "animals", "note": p.note})
+    return rows
+
