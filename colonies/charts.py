@@ -148,6 +148,10 @@ def _empty(ax, text: str) -> None:
     ax.text(0.5, 0.5, text, transform=ax.transAxes, ha="center", va="center", fontsize=9, color="#5b6b6e")
 
 
+TANK_MARGINS = {"top": 0.6, "bottom": 0.62, "left": 0.95, "right": 0.2}  # inches
+TANK_GAPS = {"rows": 0.42, "columns": 1.05}  # inches between panels: titles above, labels beside
+
+
 def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: datetime, fmt: str = "svg",
                 subtitle: str = "") -> bytes:
     """Multi-panel health figure of one tank over [start, end].
@@ -166,14 +170,24 @@ def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: dateti
     keys = [k for k in parameters.KEYS if k in set(readings["parameter"])]
     n_param_rows = math.ceil(len(keys) / 2)
     heights = [2.4, 0.75, 1.1] + [1.45] * n_param_rows
-    fig = Figure(figsize=(11, 0.9 + sum(heights)), layout="constrained")
-    grid = fig.add_gridspec(len(heights), 2, height_ratios=heights)
+    # A fixed layout (margins and gaps in inches, sized for the labels these panels carry), not
+    # constrained layout: that measured every text of every panel and was half of the first render.
+    width = 11
+    height = TANK_MARGINS["top"] + TANK_MARGINS["bottom"] + sum(heights) + TANK_GAPS["rows"] * (len(heights) - 1)
+    fig = Figure(figsize=(width, height))
+    panel_width = (width - TANK_MARGINS["left"] - TANK_MARGINS["right"] - TANK_GAPS["columns"]) / 2
+    grid = fig.add_gridspec(
+        len(heights), 2, height_ratios=heights,
+        left=TANK_MARGINS["left"] / width, right=1 - TANK_MARGINS["right"] / width,
+        top=1 - TANK_MARGINS["top"] / height, bottom=TANK_MARGINS["bottom"] / height,
+        hspace=TANK_GAPS["rows"] / (sum(heights) / len(heights)), wspace=TANK_GAPS["columns"] / panel_width)
     ax_pop = fig.add_subplot(grid[0, :])
     ax_events = fig.add_subplot(grid[1, :], sharex=ax_pop)
     ax_dead = fig.add_subplot(grid[2, :], sharex=ax_pop)
-    fig.suptitle(title, x=0.01, ha="left", fontsize=12, fontweight="bold", color=INK)
+    fig.suptitle(title, x=0.01, y=1 - 0.12 / height, ha="left", va="top", fontsize=12, fontweight="bold",
+                 color=INK)
     if subtitle:
-        fig.supxlabel(subtitle, x=0.01, ha="left", fontsize=8, color="#5b6b6e")
+        fig.supxlabel(subtitle, x=0.01, y=0.08 / height, ha="left", va="bottom", fontsize=8, color="#5b6b6e")
 
     _population_panel(ax_pop, frame)
     _events_panel(ax_events, frame)
