@@ -9,6 +9,8 @@ from django.db.models import Count, Q
 from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
+from django.utils.dateformat import format as date_format
+from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
@@ -53,7 +55,8 @@ def home(request):
                 entry["due"].setdefault(item["label"], []).append({"tank": tank, "overdue": item["is_overdue"]})
     for entry in rooms.values():
         entry["percent"] = round(100 * entry["checked_today"] / entry["tanks"]) if entry["tanks"] else 0
-        entry["due"] = sorted(entry["due"].items(), key=lambda kv: DUE_ORDER.index(kv[0]))
+        entry["due"] = [(label, items, _tank_pills(items))
+                        for label, items in sorted(entry["due"].items(), key=lambda kv: DUE_ORDER.index(kv[0]))]
     unresolved = list(Deviation.objects.unresolved().select_related("tank__room").order_by("-severity", "-last_seen_at"))
     by_severity = {s.value: 0 for s in Deviation.Severity}
     for dev in unresolved:
@@ -69,6 +72,13 @@ def home(request):
 
 
 DUE_ORDER = ["Daily check", "Feeding", "Water change", "Census"]
+
+
+def _tank_pills(items) -> str:
+    """One link per tank due: built in one call, since Today lists every tank of a facility (1,000+ links)."""
+    return mark_safe(" ".join(
+        f'<a href="{escape(it["tank"].get_absolute_url())}" class="pill{" due" if it["overdue"] else ""}">'
+        f'{escape(it["tank"].code)}</a>' for it in items))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -179,8 +189,22 @@ def _round_rows(forms):
 @require_GET
 @role_required(*READ_ROLES)
 def tank_list(request):
-    tank_filter = TankFilter(request.GET, queryset=Tank.objects.select_related("room", "species").with_last_events())
-    return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tank_filter.qs})
+    tank_filter = TankFilter(request.GET, queryset=Tank.objects.select_related("room", "species").with_last_check())
+    tanks = tank_filter.qs
+    return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tanks, "rows": _tank_rows(tanks)})
+
+
+TANK_ROW = ('<tr><td><a href="{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td><span class="pill {}">{}</span></td>'
+            '<td class="num">{}</td><td>{}</td><td>{}</td></tr>')
+
+
+def _tank_rows(tanks) -> str:
+    """The list's table body in one call (a template loop costs ~0.1 ms a row; a facility lists 400+)."""
+    def last(t):
+        return date_format(timezone.localtime(t.last_check_at), "d M H:i") if t.last_check_at else "never"
+    return format_html_join("", TANK_ROW, (
+        (t.get_absolute_url(), t.code, t.room, t.position, t.species.common_name or t.species, t.status,
+         t.get_status_display(), t.volume_l, t.get_system_display(), last(t)) for t in tanks))
 
 
 @require_GET

@@ -137,7 +137,7 @@ def test_today_shows_due_tanks_progress_and_deviations(client, technician):
     text = page_text(response)
     assert "Room Kestrel" in text and "1 of 2 tanks checked today" in text
     entry = response.context["rooms"][0]
-    due_codes = {item["tank"].code for label, items in entry["due"] if label == "Daily check" for item in items}
+    due_codes = {item["tank"].code for label, items, _pills in entry["due"] if label == "Daily check" for item in items}
     assert due_codes == {"K-02"}
     assert "above target" in text  # the open deviation on K-01 is listed
     assert response.context["n_unresolved"] == 1
