@@ -91,3 +91,25 @@ def test_str_and_urls(tank, technician):
     assert check.get_absolute_url() == f"/checks/{check.pk}/"
     assert tank.species.get_absolute_url() == f"/species/{tank.species.pk}/"
     assert tank.room.get_absolute_url() == f"/round/{tank.room.code}/"
+
+
+@pytest.mark.parametrize("code", ["FW-01", "A", "LV-0123456789"[:12], "odd code &1"])
+def test_tank_url_is_what_reverse_gives_for_any_code(code):
+    from django.urls import reverse
+
+    from colonies.models import tank_url
+
+    assert tank_url(code) == reverse("colonies:tank-detail", args=[code])
+
+
+def test_tank_url_follows_the_script_prefix():
+    from django.urls import clear_script_prefix, set_script_prefix
+
+    from colonies.models import tank_url
+
+    set_script_prefix("/lab/")
+    try:
+        assert tank_url("FW-01") == "/lab/tanks/FW-01/"
+    finally:
+        clear_script_prefix()
+    assert tank_url("FW-01") == "/tanks/FW-01/"
