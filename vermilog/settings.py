@@ -153,6 +153,15 @@ if DATABASES["default"]["ENGINE"] == "django.db.backends.sqlite3":
     # Tests run on a file, as production does; the in-memory shared-cache database Django uses by
     # default for tests has table locks instead of WAL and hides what concurrent writers do.
     DATABASES["default"]["TEST"] = {"NAME": env_path("SQLITE_TEST_NAME", BASE_DIR / "test-vermilog.sqlite3")}
+elif DATABASES["default"]["ENGINE"] == "django.db.backends.postgresql":
+    # No just-in-time compilation: PostgreSQL compiles a query whose estimated cost passes
+    # jit_above_cost, which a page's correlated subqueries over years of records do, and the
+    # compilation (17.6 ms on Today's query at 400 tanks x 3 years) costs more than the query saves.
+    # PG_JIT=on gives it back (for long reports run by hand).
+    DATABASES["default"]["OPTIONS"] = {
+        "options": f"-c jit={'on' if os.environ.get('PG_JIT') == 'on' else 'off'}",
+        **DATABASES["default"].get("OPTIONS", {}),
+    }
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"
 # History reasons in a text column: a reason of any length the forms allow (REASON_MAX_CHARS in
 # colonies/models.py) plus a prefix such as "Cancelled: " fits on every database.

@@ -15,7 +15,7 @@ from datetime import timedelta
 
 from django.contrib.auth.hashers import make_password
 from django.contrib.auth.models import Group, User
-from django.db import transaction
+from django.db import connection, transaction
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history
 
@@ -295,8 +295,25 @@ def build(*, tanks: int = 400, days: int = 1095, seed: int = 7, today=None, prog
             f.counts.update(followup.trials(rng, f, seed, now))
             f.seconds["trials"] = time.perf_counter() - started
     f.counts.update(tanks=len(tank_rows), rooms=Room.objects.count(), users=User.objects.count())
+    started = time.perf_counter()
+    gather_statistics()
+    f.seconds["statistics"] = time.perf_counter() - started
     return {"counts": f.counts, "checksum": checksum(), "build_seconds": {k: round(v, 2) for k, v in f.seconds.items()},
             "today": today.isoformat()}
+
+
+def gather_statistics():
+    """ANALYZE on PostgreSQL, as autovacuum would soon after a facility's records arrived.
+
+    Without table statistics the planner guesses one row per tank and sorts each tank's feedings and
+    censuses instead of reading the (tank, observed_at) index: Today's query took 137 ms instead of
+    9 ms on a freshly built full-size facility. A lab's own database has statistics; a benchmark
+    without them would time a state no facility is in. SQLite gathers none unless asked (Django never
+    asks), so it is left as a lab's file would be.
+    """
+    if connection.vendor == "postgresql":
+        with connection.cursor() as cursor:
+            cursor.execute("ANALYZE")
 
 
 def counts() -> dict:

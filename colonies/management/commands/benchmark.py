@@ -43,6 +43,7 @@ class Command(BaseCommand):
                       else database.scratch_database(db_path=db, keep=keep))
             with opened as name:
                 if reuse:
+                    synthetic.gather_statistics()  # the new migrations' indexes have none yet
                     build = {"counts": synthetic.counts(), "reused": True}
                     say(f"Reusing {name}: {build['counts']}")
                 else:
