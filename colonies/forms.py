@@ -25,6 +25,21 @@ def _impossible(tank, p: parameters.Parameter, raw) -> str:
     return f"{where}{p.label_with_unit}: {raw} is impossible; allowed range {p.bounds_text()}."
 
 
+def reading_attrs(tank: Tank, p: parameters.Parameter, target) -> dict[str, str]:
+    """The attributes of a reading input that the page script reads: the care target (or the raw equivalent of
+    a derived one) as data-low/data-high/data-target, and the physical bounds as data-min/data-max."""
+    attrs = {"inputmode": "decimal", "step": "any", "data-param": p.key, "class": "reading",
+             "aria-label": f"{tank.code} {p.label_with_unit}", "autocomplete": "off",
+             "data-min": f"{p.minimum:g}", "data-max": f"{p.maximum:g}"}
+    if target is not None:
+        if target.low is not None:
+            attrs["data-low"] = f"{target.low:g}"
+        if target.high is not None:
+            attrs["data-high"] = f"{target.high:g}"
+        attrs["data-target"] = target.text if isinstance(target, derived.RawEquivalent) else limit_text(target, p.unit)
+    return attrs
+
+
 class CheckEntryForm(NamedErrorsMixin, forms.Form):
     """One tank's daily check: used as a row of the round (prefix = tank code) and on the tank page.
 
@@ -53,21 +68,11 @@ class CheckEntryForm(NamedErrorsMixin, forms.Form):
         # the tank's latest readings when the page has them (the round's annotated tanks).
         last = {p.key: getattr(tank, f"last_{p.key}", None) for p in self.params}
         equivalents = derived.raw_equivalents(targets, last, tank.species.habitat)
-        reading_fields = {}
-        for p in self.params:
-            target = targets.get(p.key) or equivalents.get(p.key)
-            attrs = {"inputmode": "decimal", "step": "any", "data-param": p.key, "class": "reading",
-                     "aria-label": f"{tank.code} {p.label_with_unit}", "autocomplete": "off",
-                     "data-min": f"{p.minimum:g}", "data-max": f"{p.maximum:g}"}
-            if target is not None:
-                if target.low is not None:
-                    attrs["data-low"] = f"{target.low:g}"
-                if target.high is not None:
-                    attrs["data-high"] = f"{target.high:g}"
-                attrs["data-target"] = target.text if isinstance(target, derived.RawEquivalent) else limit_text(target, p.unit)
-            reading_fields[p.key] = forms.CharField(
-                required=False, label=p.label_with_unit, widget=forms.TextInput(attrs=attrs)
-            )
+        reading_fields = {
+            p.key: forms.CharField(required=False, label=p.label_with_unit, widget=forms.TextInput(
+                attrs=reading_attrs(tank, p, targets.get(p.key) or equivalents.get(p.key))))
+            for p in self.params
+        }
         # readings first, then observations
         self.fields = {**reading_fields, **self.fields}
         self.targets = targets

@@ -346,10 +346,13 @@ class Tank(models.Model):
 
     def care_targets(self) -> dict[str, Target]:
         """Species targets with this tank's overrides on top. Uses prefetched rows when present."""
-        targets = {t.parameter: t.as_target() for t in self.species.targets.all()}
-        for o in self.target_overrides.all():
-            targets[o.parameter] = o.as_target()
-        return targets
+        return {**self.species_targets(), **self.override_targets()}
+
+    def species_targets(self) -> dict[str, Target]:
+        return {t.parameter: t.as_target() for t in self.species.targets.all()}
+
+    def override_targets(self) -> dict[str, Target]:
+        return {o.parameter: o.as_target() for o in self.target_overrides.all()}
 
     def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
         return self.species.relevant_parameters()

@@ -14,10 +14,10 @@ from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import check_export, derived, health_forms, health_series, parameters, services
+from . import check_export, derived, health_forms, health_series, parameters, round_rows, services
 from . import labels as labels_module
 from .filters import CheckFilter, TankFilter
-from .flags import describe, limit_text, out_of_target
+from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
 from .history import history_index, page_entries
@@ -115,11 +115,13 @@ def round_view(request, room_code=None):
     else:
         data, when, checked = None, ObservedAtForm(prefix="round"), {}
     # Shown again after a refusal: the validated rows keep their errors, the others their posted values.
-    forms = [checked.get(t.code) or CheckEntryForm(data, tank=t, prefix=t.code)
-             for t in Tank.objects.for_round().in_room(room)]
+    tanks = Tank.objects.for_round().in_room(room)
+    bound = checked if data is None else {t.code: checked.get(t.code) or CheckEntryForm(data, tank=t, prefix=t.code)
+                                          for t in tanks if t.code in checked or _row_posted(data, t.code)}
+    rows = round_rows.build_rows(tanks, bound, timezone.now())
     ctx = {
-        "room": room, "rooms": Room.objects.all(), "rows": _round_rows(forms), "when": when,
-        "tank_codes": ",".join(f.tank.code for f in forms), "rows_field": ROWS_FIELD,
+        "room": room, "rooms": Room.objects.all(), "rows": rows, "when": when,
+        "tank_codes": ",".join(row["tank"].code for row in rows), "rows_field": ROWS_FIELD,
     }
     return render(request, "colonies/round.html", ctx, status=400 if data is not None else 200)
 
@@ -161,26 +163,9 @@ def _flash_round(request, saved):
         messages.success(request, msg)
 
 
-def _round_rows(forms):
-    rows = []
-    for form in forms:
-        tank = form.tank
-        live_flags = form.flagged()
-        cells = []
-        for p in form.params:
-            last = getattr(tank, f"last_{p.key}", None)
-            target = form.targets.get(p.key)
-            last_side = out_of_target(last, target)
-            cells.append({"field": form[p.key], "param": p, "last": p.format(last), "last_side": last_side,
-                          "target": limit_text(target, p.unit) if target else "",
-                          "target_full": target.text(p.unit) if target else "", "side": live_flags.get(p.key)})
-        last = {p.key: getattr(tank, f"last_{p.key}", None) for p in form.params}
-        derived_last = []
-        for d, value in zip(derived.for_habitat(tank.species.habitat), derived.derive(last, tank.species.habitat).values()):
-            if value is not None:
-                derived_last.append({"d": d, "value": d.format(value), "side": out_of_target(value, form.targets.get(d.key))})
-        rows.append({"form": form, "tank": tank, "cells": cells, "flagged": bool(live_flags), "derived": derived_last})
-    return rows
+def _row_posted(data, code: str) -> bool:
+    prefix = code + "-"
+    return any(key.startswith(prefix) for key in data)
 
 
 # ---------------------------------------------------------------------------------------------
