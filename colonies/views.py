@@ -57,7 +57,8 @@ def home(request):
         entry["percent"] = round(100 * entry["checked_today"] / entry["tanks"]) if entry["tanks"] else 0
         entry["due"] = [(label, items, _tank_pills(items))
                         for label, items in sorted(entry["due"].items(), key=lambda kv: DUE_ORDER.index(kv[0]))]
-    unresolved = list(Deviation.objects.unresolved().select_related("tank__room").order_by("-severity", "-last_seen_at"))
+    unresolved = list(Deviation.objects.unresolved().select_related("tank__room").defer("evidence")  # not shown here
+                      .order_by("-severity", "-last_seen_at"))
     by_severity = {s.value: 0 for s in Deviation.Severity}
     for dev in unresolved:
         by_severity[dev.severity] += 1

@@ -96,6 +96,10 @@ def build_cases() -> list[Case]:
     tank = Tank.objects.filter(code="LV-01").first() or tanks[0]
     n_checks = Check.objects.count()
     cases = [
+        # What any page costs before its own work: session, login, middleware and the base template around a
+        # three-row table. A page whose SQL takes a few ms cannot be within 3x its SQL below this.
+        Case("Floor: species list (bare page)", TECHNICIAN, _get(tech, reverse("colonies:species-list")), kind="floor",
+             notes="reference for the pages' 3x SQL rule"),
         Case("Today", TECHNICIAN, _get(tech, reverse("colonies:home"))),
         Case(f"Round, all rooms ({len(tanks)} tanks)", TECHNICIAN, _get(tech, reverse("colonies:round"))),
         Case(f"Round, one room ({len(rooms[room_code])} tanks)", TECHNICIAN,
