@@ -175,3 +175,18 @@ def _limits(target) -> str:
     if target.low is not None and target.high is not None:
         return f"{target.low:g}–{target.high:g}"
     return f"{target.low if target.low is not None else target.high:g}"
+
+
+# The readings each derived value is computed from: a deviation on a derived value makes these due
+# again (colonies/schedules.py, "while a deviation on it is open").
+INPUTS: dict[str, tuple[str, ...]] = {
+    "nh3_mg_l": ("tan_mg_l", "ph", "temp_c"),
+    "do_pct_sat": ("do_mg_l", "temp_c"),
+    "cond25_us_cm": ("conductivity_us_cm", "temp_c"),
+    "salinity_from_cond": ("conductivity_us_cm", "temp_c"),
+}
+
+
+def measured_keys(key: str) -> tuple[str, ...]:
+    """The measured parameters behind a target or deviation key (itself when it is measured)."""
+    return INPUTS.get(key, (key,) if key in parameters.BY_KEY else ())

@@ -60,6 +60,7 @@ class CheckEntryForm(NamedErrorsMixin, forms.Form):
     )
 
     def __init__(self, *args, tank: Tank, **kwargs):
+        kwargs["initial"] = {**Check.OBSERVATION_DEFAULTS, **(kwargs.get("initial") or {})}
         super().__init__(*args, **kwargs)
         self.tank = tank
         self.params = tank.relevant_parameters()
@@ -119,10 +120,12 @@ class CheckEntryForm(NamedErrorsMixin, forms.Form):
     def has_entry(self) -> bool:
         """True when the technician entered anything for this tank (empty rows are skipped)."""
         c = self.cleaned_data
+        looks = {name: c.get(name) for name in ("activity", "odour", "clarity")}
         return (
             any(c.get(p.key) is not None for p in self.params)
-            or bool(c.get("activity") or c.get("dead_removed") or c.get("clumping") or c.get("surface_film")
-                    or c.get("odour") or c.get("clarity") or c.get("note") or c.get("corrective_action"))
+            or any(value and value != Check.OBSERVATION_DEFAULTS[name] for name, value in looks.items())
+            or bool(c.get("dead_removed") or c.get("clumping") or c.get("surface_film") or c.get("note")
+                    or c.get("corrective_action"))
         )
 
     def row(self) -> dict:
@@ -164,12 +167,23 @@ class ObservedAtForm(NamedErrorsMixin, forms.Form):
         help_text="Leave empty for now. Set it when entering readings taken earlier.",
     )
 
+    # Set by the round's page script when a round is saved on the device (no network): the moment it was
+    # saved there, in UTC, so a round sent later is not stamped with the time it reached the server.
+    kept_at = forms.DateTimeField(required=False, widget=forms.HiddenInput, label="Saved on the device at")
+
     def clean_observed_at(self):
         return validators.check_moment("Observed at", self.cleaned_data.get("observed_at"))
 
+    def clean_kept_at(self):
+        return validators.check_moment("Saved on the device at", self.cleaned_data.get("kept_at"))
+
+    def moment(self):
+        """The observed time to record: the typed one, else when the round was saved on the device, else now."""
+        return self.cleaned_data.get("observed_at") or self.cleaned_data.get("kept_at")
+
     def check_started(self, tanks) -> bool:
         """False (with an error on the field) when the time is before any of these tanks was started."""
-        value = self.cleaned_data.get("observed_at") if self.is_valid() else None
+        value = self.moment() if self.is_valid() else None
         if value is None or not tanks:
             return self.is_valid()
         latest_start = max(tanks, key=lambda t: t.started_on)

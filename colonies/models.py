@@ -19,7 +19,7 @@ from django.urls import get_script_prefix, get_urlconf, reverse
 from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
-from . import derived, parameters
+from . import derived, parameters, schedules
 from .flags import Target
 from .validators import (MAX_TEXT, CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
                          MAX_DENSITY_PER_L, MAX_INTERVAL_DAYS, MAX_TANK_VOLUME_L, DateRange, Range)
@@ -186,6 +186,12 @@ class Species(models.Model):
     def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
         return parameters.for_habitat(self.habitat)
 
+    def plans(self) -> dict[str, schedules.Plan]:
+        """Each relevant parameter's measurement plan: this species' row, else Vermilog's default.
+        Uses prefetched `measurement_plans` when present."""
+        rows = {row.parameter: row.as_plan("species") for row in self.measurement_plans.all()}
+        return {p.key: rows.get(p.key) or schedules.default_plan(p.key) for p in self.relevant_parameters()}
+
 
 def target_within_bounds_q() -> Q:
     """Database condition: a target's ends lie within its parameter's physical bounds (measured or derived)."""
@@ -289,13 +295,23 @@ class TankQuerySet(models.QuerySet):
             )
         return self.annotate(**annotations)
 
+    def with_last_measured(self):
+        """Annotate last_<key>_at: when each parameter was last measured (one query; the plans need it)."""
+        return self.annotate(**{
+            f"last_{p.key}_at": Subquery(
+                Check.objects.current().filter(tank=OuterRef("pk"), **{f"{p.key}__isnull": False})
+                .order_by("-observed_at").values("observed_at")[:1])
+            for p in parameters.PARAMETERS})
+
     def for_round(self):
         return (
             self.in_use()
             .select_related("room", "species")
-            .prefetch_related("species__targets", "target_overrides")
+            .prefetch_related("species__targets", "target_overrides", "species__measurement_plans",
+                              "measurement_overrides")
             .with_last_events()
             .with_last_readings()
+            .with_last_measured()
             .order_by("room__code", "position", "code")
         )
 
@@ -353,6 +369,13 @@ class Tank(models.Model):
 
     def override_targets(self) -> dict[str, Target]:
         return {o.parameter: o.as_target() for o in self.target_overrides.all()}
+
+    def override_plans(self) -> dict[str, schedules.Plan]:
+        return {o.parameter: o.as_plan("tank") for o in self.measurement_overrides.all()}
+
+    def plans(self) -> dict[str, schedules.Plan]:
+        """The species' plans with this tank's overrides on top (prefetched rows when present)."""
+        return {**self.species.plans(), **{k: v for k, v in self.override_plans().items() if k in parameters.BY_KEY}}
 
     def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
         return self.species.relevant_parameters()
@@ -438,6 +461,92 @@ class TankTarget(models.Model):
 
 
 # ---------------------------------------------------------------------------------------------
+# Measurement plans: how often each parameter is measured (colonies/schedules.py)
+# ---------------------------------------------------------------------------------------------
+class PlanFields(models.Model):
+    class Cadence(models.TextChoices):
+        DAILY = schedules.DAILY, "Daily"
+        EVERY_N_DAYS = schedules.EVERY_N_DAYS, "Every N days"
+        WEEKLY = schedules.WEEKLY, "Weekly, on a weekday"
+        ON_REQUEST = schedules.ON_REQUEST, "No regular day"
+
+    class Weekday(models.IntegerChoices):
+        MONDAY = 0, "Monday"
+        TUESDAY = 1, "Tuesday"
+        WEDNESDAY = 2, "Wednesday"
+        THURSDAY = 3, "Thursday"
+        FRIDAY = 4, "Friday"
+        SATURDAY = 5, "Saturday"
+        SUNDAY = 6, "Sunday"
+
+    parameter = models.CharField(max_length=32, choices=parameters.CHOICES)
+    cadence = models.CharField(max_length=14, choices=Cadence.choices, default=Cadence.DAILY)
+    every_days = models.PositiveSmallIntegerField(
+        null=True, blank=True, validators=[Range("Every N days", schedules.MIN_EVERY_DAYS, schedules.MAX_EVERY_DAYS, "days")],
+        help_text="For 'every N days': measured on day D, due again from day D + N.")
+    weekday = models.PositiveSmallIntegerField(null=True, blank=True, choices=Weekday.choices,
+                                               help_text="For 'weekly': due from this weekday until measured.")
+    after_water_change = models.BooleanField(default=False, help_text="Also due at the first round after each water change.")
+    while_deviation_open = models.BooleanField(
+        default=False, help_text="Also due every day while a deviation on this parameter is unresolved.")
+
+    class Meta:
+        abstract = True
+
+    @staticmethod
+    def plan_constraints(prefix: str) -> list:
+        return [
+            models.CheckConstraint(
+                condition=(Q(cadence=schedules.EVERY_N_DAYS, every_days__gte=schedules.MIN_EVERY_DAYS,
+                             every_days__lte=schedules.MAX_EVERY_DAYS) | ~Q(cadence=schedules.EVERY_N_DAYS))
+                & (Q(cadence=schedules.WEEKLY, weekday__gte=0, weekday__lte=6) | ~Q(cadence=schedules.WEEKLY)),
+                name=f"{prefix}_cadence_complete"),
+        ]
+
+    def as_plan(self, source: str) -> schedules.Plan:
+        return schedules.Plan(self.cadence, self.every_days if self.cadence == schedules.EVERY_N_DAYS else None,
+                              self.weekday if self.cadence == schedules.WEEKLY else None,
+                              self.after_water_change, self.while_deviation_open, source)
+
+
+class MeasurementPlan(PlanFields):
+    """How often a species' tanks measure one parameter (without a row: Vermilog's default plan)."""
+
+    species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="measurement_plans")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["species", "parameter"]
+        constraints = [models.UniqueConstraint(fields=["species", "parameter"], name="measurement_plan_one_per_parameter"),
+                       *PlanFields.plan_constraints("measurement_plan")]
+
+    def __str__(self):
+        return f"{self.species}: {self.parameter} {self.as_plan('species').text()}"
+
+    def get_absolute_url(self):
+        return self.species.get_absolute_url()
+
+
+class TankMeasurementPlan(PlanFields):
+    """A tank's own plan for one parameter, replacing its species' plan."""
+
+    tank = models.ForeignKey(Tank, on_delete=models.PROTECT, related_name="measurement_overrides")
+    reason = models.TextField(help_text="Why this tank is measured differently from its species.")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["tank", "parameter"]
+        constraints = [models.UniqueConstraint(fields=["tank", "parameter"], name="tank_measurement_plan_one_per_parameter"),
+                       *PlanFields.plan_constraints("tank_measurement_plan")]
+
+    def __str__(self):
+        return f"{self.tank}: {self.parameter} {self.as_plan('tank').text()}"
+
+    def get_absolute_url(self):
+        return self.tank.get_absolute_url()
+
+
+# ---------------------------------------------------------------------------------------------
 # Husbandry records
 # ---------------------------------------------------------------------------------------------
 def _reading_fields() -> dict:
@@ -457,6 +566,12 @@ Readings = type(
     (models.Model,),
     {"__module__": __name__, "Meta": type("Meta", (), {"abstract": True}), **_reading_fields()},
 )
+
+
+class CheckQuerySet(VoidableQuerySet):
+    def needing_action(self):
+        """Current checks with a flagged value and no corrective action yet."""
+        return self.current().filter(corrective_action="").exclude(flags={})
 
 
 class Check(Readings, Recorded):
@@ -487,6 +602,10 @@ class Check(Readings, Recorded):
     )
     corrective_action = models.TextField(max_length=MAX_TEXT, blank=True, help_text="What was done about a flagged value.")
     history = HistoricalRecords()
+
+    objects = CheckQuerySet.as_manager()
+    # What the round records when the technician leaves an observation as it is: "looks normal".
+    OBSERVATION_DEFAULTS = {"activity": Activity.NORMAL.value, "clarity": Clarity.CLEAR.value, "odour": Odour.NONE.value}
 
     class Meta(Recorded.Meta):
         constraints = [

@@ -38,15 +38,17 @@ def round_data(post: QueryDict) -> QueryDict:
     return data
 
 
-def filled_codes(data: QueryDict, fields: frozenset[str]) -> set[str]:
+def filled_codes(data: QueryDict, fields: frozenset[str], defaults: dict[str, str] | None = None) -> set[str]:
     """Tank codes (field prefixes) with at least one non-blank round field: the rows to validate and save.
 
     A row whose every field is blank makes no check and cannot fail validation (blank is allowed
-    everywhere), so it needs no form.
+    everywhere), so it needs no form. A field left at its default (`defaults`: the observations the page
+    shows as "looks normal") does not make a row filled on its own.
     """
+    defaults = defaults or {}
     codes = set()
     for key, values in data.lists():
         prefix, _, field = key.rpartition("-")
-        if prefix and field in fields and any(str(v).strip() for v in values):
+        if prefix and field in fields and any(str(v).strip() and v != defaults.get(field) for v in values):
             codes.add(prefix)
     return codes

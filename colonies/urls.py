@@ -7,6 +7,7 @@ app_name = "colonies"
 urlpatterns = [
     path("", views.home, name="home"),
     path("round/", views.round_view, name="round"),
+    path("round/sw.js", views.round_service_worker, name="round-sw"),
     path("round/<slug:room_code>/", views.round_view, name="round-room"),
     path("tanks/", views.tank_list, name="tank-list"),
     path("tanks/labels/", views.tank_labels, name="tank-labels"),

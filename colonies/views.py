@@ -3,6 +3,7 @@ import itertools
 from datetime import timedelta
 
 from django.contrib import messages
+from django.contrib.auth.decorators import login_not_required
 from django.core.exceptions import PermissionDenied
 from django.core.paginator import Paginator
 from django.db.models import Count, Q
@@ -14,7 +15,7 @@ from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import check_export, derived, health_forms, health_series, parameters, round_rows, services
+from . import check_export, derived, due_readings, health_forms, health_series, parameters, round_rows, services
 from . import labels as labels_module
 from .filters import CheckFilter, TankFilter
 from .flags import describe
@@ -44,17 +45,29 @@ def home(request):
     now = timezone.now()
     today = timezone.localdate()
     rooms = {}
-    for tank in Tank.objects.in_use().select_related("room", "species").with_last_events().order_by("room__code", "code"):
-        entry = rooms.setdefault(tank.room_id, {"room": tank.room, "tanks": 0, "checked_today": 0,
-                                                "due": {}, "deviations": []})
+    tanks = list(Tank.objects.in_use().select_related("room", "species").with_last_events().with_last_measured()
+                 .prefetch_related("species__measurement_plans", "measurement_overrides").order_by("room__code", "code"))
+    readings_due = due_readings.due_by_tank(tanks, now)
+    for tank in tanks:
+        entry = rooms.setdefault(tank.room_id, {"room": tank.room, "tanks": 0, "checked_today": 0, "readings": {},
+                                                "due": {}, "deviations": [], "missing_actions": 0})
+        for key in readings_due[tank.pk]:
+            entry["readings"][key] = entry["readings"].get(key, 0) + 1
         entry["tanks"] += 1
         if tank.last_check_at and timezone.localtime(tank.last_check_at).date() == today:
             entry["checked_today"] += 1
         for item in tank.due(now):
             if item["is_due"]:
                 entry["due"].setdefault(item["label"], []).append({"tank": tank, "overdue": item["is_overdue"]})
+    since = now - timedelta(days=round_rows.MISSING_ACTION_DAYS)
+    for room_id, n in (Check.objects.needing_action().filter(observed_at__gte=since, tank__room__in=list(rooms))
+                       .values("tank__room").annotate(n=Count("pk")).values_list("tank__room", "n")):
+        rooms[room_id]["missing_actions"] = n
     for entry in rooms.values():
         entry["percent"] = round(100 * entry["checked_today"] / entry["tanks"]) if entry["tanks"] else 0
+        entry["n_readings"] = sum(entry["readings"].values())
+        entry["readings"] = [(parameters.BY_KEY[k].short, n) for k, n in sorted(
+            entry["readings"].items(), key=lambda kv: parameters.KEYS.index(kv[0]))]
         entry["due"] = [(label, items, _tank_pills(items))
                         for label, items in sorted(entry["due"].items(), key=lambda kv: DUE_ORDER.index(kv[0]))]
     unresolved = list(Deviation.objects.unresolved().select_related("tank__room").defer("evidence")  # not shown here
@@ -65,7 +78,7 @@ def home(request):
         if dev.tank_id and dev.tank.room_id in rooms:
             rooms[dev.tank.room_id]["deviations"].append(dev)
     ctx = {
-        "rooms": list(rooms.values()), "now": now,
+        "rooms": list(rooms.values()), "now": now, "missing_action_days": round_rows.MISSING_ACTION_DAYS,
         "severity_counts": [(label, by_severity[value], value) for value, label in reversed(Deviation.Severity.choices)],
         "deviations": unresolved[:25], "n_unresolved": len(unresolved),
     }
@@ -116,15 +129,32 @@ def round_view(request, room_code=None):
     else:
         data, when, checked = None, ObservedAtForm(prefix="round"), {}
     # Shown again after a refusal: the validated rows keep their errors, the others their posted values.
-    tanks = Tank.objects.for_round().in_room(room)
+    tanks = list(Tank.objects.for_round().in_room(room))
     bound = checked if data is None else {t.code: checked.get(t.code) or CheckEntryForm(data, tank=t, prefix=t.code)
                                           for t in tanks if t.code in checked or _row_posted(data, t.code)}
-    rows = round_rows.build_rows(tanks, bound, timezone.now())
+    now = timezone.now()
+    rows = round_rows.build_rows(tanks, bound, due=due_readings.due_by_tank(tanks, now), now=now,
+                                 actions=round_rows.missing_actions((t.pk for t in tanks), now),
+                                 editable=can_record_husbandry(request.user))
     ctx = {
-        "room": room, "rooms": Room.objects.all(), "rows": rows, "when": when,
+        "room": room, "rooms": Room.objects.all(), "rows": rows, "when": when, "n_due": sum(len(r["due"]) for r in rows),
         "tank_codes": ",".join(row["tank"].code for row in rows), "rows_field": ROWS_FIELD,
     }
     return render(request, "colonies/round.html", ctx, status=400 if data is not None else 200)
+
+
+@require_GET
+@login_not_required  # static code, no data: the browser fetches it to update the worker
+def round_service_worker(request):
+    """The round's service worker (templates/colonies/round-sw.js), served under /round/ so that it may control
+    the round pages: it keeps the last copy of each round page and its files for a reload without network."""
+    response = render(request, "colonies/round-sw.js", {"version": ROUND_SW_VERSION},
+                      content_type="text/javascript; charset=utf-8")
+    response["Cache-Control"] = "no-cache"
+    return response
+
+
+ROUND_SW_VERSION = "1"  # bump when the worker's caching changes: the old caches are dropped on activation
 
 
 def _save_round(request, room, data):
@@ -136,7 +166,7 @@ def _save_round(request, room, data):
     """
     in_scope = set(Tank.objects.in_use().in_room(room).values_list("code", flat=True))
     unknown = sorted(_posted_codes(data) - in_scope)
-    filled = filled_codes(data, ROUND_FIELDS) & in_scope
+    filled = filled_codes(data, ROUND_FIELDS, Check.OBSERVATION_DEFAULTS) & in_scope
     tanks = Tank.objects.for_round().in_room(room).filter(code__in=filled)
     forms = [CheckEntryForm(data, tank=t, prefix=t.code) for t in tanks]
     when = ObservedAtForm(data, prefix="round")
@@ -144,7 +174,7 @@ def _save_round(request, room, data):
     valid = valid and when.check_started([f.tank for f in forms if f.has_entry()])
     if valid and not unknown:
         rows = [(f.tank, f.row()) for f in forms if f.has_entry()]
-        saved = services.record_round(user=request.user, rows=rows, observed_at=when.cleaned_data.get("observed_at"))
+        saved = services.record_round(user=request.user, rows=rows, observed_at=when.moment())
         _flash_round(request, saved)
         return redirect(request.path), None, {}
     for code in unknown:

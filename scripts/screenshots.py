@@ -65,8 +65,11 @@ def main() -> None:
             if label == "phone":
                 page.goto(f"{base}/round/fw-1/")
                 row = page.locator("fieldset.tankrow").first
-                row.locator('input[data-param="temp_c"]').press_sequentially("27.5")
-                expect(row.locator(".live").first).not_to_be_empty()
+                cell = row.locator(".reading-cell:has(input[data-param='temp_c'])")
+                if not cell.is_visible():  # measured today already: it is under "Other readings"
+                    row.locator("details.more summary").click()
+                cell.locator("input").press_sequentially("27.5")
+                expect(cell.locator(".live")).not_to_be_empty()
                 shoot(page, args.out, "round-fw-1-phone-flagged")
                 page.add_style_tag(content=".savebar { position: static; }")  # else it covers the row's foot
                 row.screenshot(path=str(args.out / "round-fw-1-phone-flagged-row.png"))

@@ -165,8 +165,11 @@ def test_researcher_round_page_is_read_only(client, world, researcher):
     client.force_login(researcher)
     response = client.get(URLS["colonies:round"](world))
     assert response.status_code == 200
-    assert "Read only: your role does not record husbandry." in response.content.decode()
-    assert "Save round" not in response.content.decode()
+    html = response.content.decode()
+    assert "Read only." in html and "does not record husbandry; the inputs are switched off." in html
+    assert "Save round" not in html
+    # Every tank block is a disabled fieldset, so none of its inputs can be typed into.
+    assert all(' disabled>' in block.split(">", 1)[0] + ">" for block in html.split('<fieldset class="tankrow')[1:])
 
 
 def test_forbidden_page_says_why(client, researcher):
