@@ -13,8 +13,9 @@ from django.core.exceptions import PermissionDenied
 from simple_history.admin import SimpleHistoryAdmin
 
 from . import services
-from .forms import CareTargetForm, TankTargetForm, reason_field
-from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget, WaterChange
+from .forms import CareTargetForm, MeasurementPlanForm, TankMeasurementPlanForm, TankTargetForm, reason_field
+from .models import (CareTarget, Census, Check, Deviation, Feeding, MeasurementPlan, Room, Species, Split, SplitPart, Tank,
+                     TankMeasurementPlan, TankTarget, WaterChange)
 
 NO_REVERT = ("Past versions cannot be restored or edited: a correction is a new version with its own reason, "
              "made in the app or on the record's change page.")
@@ -77,12 +78,24 @@ class TankTargetInline(NoDeleteMixin, admin.TabularInline):
     extra = 0
 
 
+class MeasurementPlanInline(NoDeleteMixin, admin.TabularInline):
+    model = MeasurementPlan
+    form = MeasurementPlanForm  # the app's form: the days / weekday each cadence needs, errors naming the field
+    extra = 0
+
+
+class TankMeasurementPlanInline(NoDeleteMixin, admin.TabularInline):
+    model = TankMeasurementPlan
+    form = TankMeasurementPlanForm
+    extra = 0
+
+
 @admin.register(Species)
 class SpeciesAdmin(ReasonAdmin):
     list_display = ["scientific_name", "common_name", "habitat", "check_interval_hours", "max_density_per_l"]
     list_filter = ["habitat"]
     search_fields = ["scientific_name", "common_name"]
-    inlines = [CareTargetInline]
+    inlines = [CareTargetInline, MeasurementPlanInline]
 
 
 @admin.register(Room)
@@ -121,7 +134,7 @@ class TankAdmin(ReasonAdmin):
     list_filter = ["status", "room", "species", "system"]
     search_fields = ["code", "position", "notes", "substrate"]
     filter_horizontal = ["founded_from"]
-    inlines = [TankTargetInline]
+    inlines = [TankTargetInline, TankMeasurementPlanInline]
 
 
 class RecordAdmin(HistoryAdmin):

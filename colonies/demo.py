@@ -15,7 +15,7 @@ from simple_history.utils import bulk_create_with_history
 
 from scipy.optimize import brentq
 
-from . import care_defaults, chemistry, deviations
+from . import care_defaults, chemistry, deviations, schedules
 from .flags import flags_for
 from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Tank, TankTarget, WaterChange
 from .roles import MANAGER, RESEARCHER, TECHNICIAN
@@ -49,8 +49,6 @@ PROFILE = {
                               "tan_mg_l": (0.08, 0.04), "no2_mg_l": (0.02, 0.01), "no3_mg_l": (8.0, 2.0),
                               "conductivity_us_cm": (40000, 800), "salinity": (30.0, 0.5)},
 }
-# Which parameters the technicians measure daily; the rest weekly (day % 7 == 0).
-DAILY = {"temp_c", "ph", "do_mg_l", "salinity"}
 FOOD = {"Lumbriculus variegatus": ("sinking fish-food pellets", 0.05, "g"),
         "Schmidtea mediterranea": ("liver paste", 0.3, "mL"),
         "Platynereis dumerilii": ("spinach and algae mix", 0.2, "g")}
@@ -160,6 +158,8 @@ def load(seed: int = 7, today=None) -> dict:
         k = tank.species.max_density_per_l * tank.volume_l * rng.uniform(0.75, 1.05)
         r = rng.uniform(0.035, 0.06) if sp.startswith("Lumb") else rng.uniform(0.02, 0.035)
         drift = {key: 0.0 for key in profile}
+        plans = tank.species.plans()  # the readings are taken when the measurement plan says they are due
+        last_on, last_at, last_change_at = {}, {}, None
         for day in range(DAYS + 1):
             date = start + timedelta(days=day)
             is_today = day == DAYS
@@ -172,7 +172,9 @@ def load(seed: int = 7, today=None) -> dict:
                 when = now - timedelta(minutes=5)
             readings = {}
             for key, (centre, sd) in profile.items():
-                if key not in DAILY and day % 7 != 0:
+                if key in plans and not schedules.due(plans[key], today=date, last_at=last_at.get(key),
+                                                      last_on=last_on.get(key), water_change_at=last_change_at,
+                                                      deviation_open=False):
                     continue
                 drift[key] = 0.8 * drift[key] + rng.gauss(0, sd * 0.5)
                 value = centre + drift[key] + rng.gauss(0, sd * 0.6)
@@ -200,6 +202,8 @@ def load(seed: int = 7, today=None) -> dict:
                           corrective_action=action, **readings)
             check.flags = flags_for(check.values(), targets[tank.pk])
             checks.append(check)
+            for key in readings:
+                last_on[key], last_at[key] = date, when
             if day % tank.species.feeding_interval_days == 0 and not is_today:
                 food, amount, unit = FOOD[sp]
                 scale = max(0.5, population / 1000) if unit == "g" else 1
@@ -208,6 +212,7 @@ def load(seed: int = 7, today=None) -> dict:
             if day % tank.species.water_change_interval_days == 0 and not is_today:
                 changes.append(WaterChange(tank=tank, observed_at=when + timedelta(minutes=20), recorded_by=check.recorded_by,
                                            percent=tank.species.water_change_fraction * 100, source_water=SOURCE_WATER[sp]))
+                last_change_at = changes[-1].observed_at
             if day % tank.species.census_interval_days == 3:
                 census = _census(rng, tank, population, when + timedelta(minutes=30), check.recorded_by)
                 censuses.append(census)

@@ -1,8 +1,9 @@
 from django import forms
 
-from . import derived, parameters, validators
+from . import derived, parameters, schedules, validators
 from .flags import limit_text, out_of_target
-from .models import REASON_MAX_CHARS, Census, CareTarget, Check, Feeding, Species, Tank, TankTarget, WaterChange
+from .models import (REASON_MAX_CHARS, Census, CareTarget, Check, Feeding, MeasurementPlan, Species, Tank,
+                     TankMeasurementPlan, TankTarget, WaterChange)
 
 
 def reason_field(label: str = "Reason", **kwargs) -> forms.CharField:
@@ -361,4 +362,42 @@ class TankTargetForm(CareTargetForm):
 
 CareTargetFormSet = forms.inlineformset_factory(
     Species, CareTarget, form=CareTargetForm, extra=1, can_delete=False
+)
+
+
+class MeasurementPlanForm(NamedErrorsMixin, forms.ModelForm):
+    """How often a parameter is measured. The number of days belongs to "every N days" and the weekday to
+    "weekly": each is required there and cleared elsewhere, so a stored plan never carries a stray value."""
+
+    class Meta:
+        model = MeasurementPlan
+        fields = ["parameter", "cadence", "every_days", "weekday", "after_water_change", "while_deviation_open"]
+
+    def clean(self):
+        cleaned = super().clean()
+        cadence = cleaned.get("cadence")
+        if cadence == MeasurementPlan.Cadence.EVERY_N_DAYS:
+            if cleaned.get("every_days") is None:
+                self.add_error("every_days", f"Every N days: give the number of days "
+                                             f"({schedules.MIN_EVERY_DAYS} to {schedules.MAX_EVERY_DAYS}).")
+        else:
+            cleaned["every_days"] = None
+        if cadence == MeasurementPlan.Cadence.WEEKLY:
+            if cleaned.get("weekday") is None:
+                self.add_error("weekday", "Weekday: choose the day of the week it is measured (Monday to Sunday).")
+        else:
+            cleaned["weekday"] = None
+        return cleaned
+
+
+class TankMeasurementPlanForm(MeasurementPlanForm):
+    reason = reason_field(widget=forms.TextInput(), help_text=TankMeasurementPlan._meta.get_field("reason").help_text)
+
+    class Meta(MeasurementPlanForm.Meta):
+        model = TankMeasurementPlan
+        fields = MeasurementPlanForm.Meta.fields + ["reason"]
+
+
+MeasurementPlanFormSet = forms.inlineformset_factory(
+    Species, MeasurementPlan, form=MeasurementPlanForm, extra=1, can_delete=False
 )

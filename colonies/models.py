@@ -497,9 +497,12 @@ class PlanFields(models.Model):
     def plan_constraints(prefix: str) -> list:
         return [
             models.CheckConstraint(
-                condition=(Q(cadence=schedules.EVERY_N_DAYS, every_days__gte=schedules.MIN_EVERY_DAYS,
-                             every_days__lte=schedules.MAX_EVERY_DAYS) | ~Q(cadence=schedules.EVERY_N_DAYS))
-                & (Q(cadence=schedules.WEEKLY, weekday__gte=0, weekday__lte=6) | ~Q(cadence=schedules.WEEKLY)),
+                # isnull=False: a CHECK passes when its condition is NULL, so a missing value must be refused explicitly.
+                condition=(Q(cadence=schedules.EVERY_N_DAYS, every_days__isnull=False,
+                             every_days__gte=schedules.MIN_EVERY_DAYS, every_days__lte=schedules.MAX_EVERY_DAYS)
+                           | ~Q(cadence=schedules.EVERY_N_DAYS))
+                & (Q(cadence=schedules.WEEKLY, weekday__isnull=False, weekday__gte=0, weekday__lte=6)
+                   | ~Q(cadence=schedules.WEEKLY)),
                 name=f"{prefix}_cadence_complete"),
         ]
 

@@ -9,6 +9,7 @@ from django.core.paginator import Paginator
 from django.db.models import Count, Q
 from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
+from django.urls import reverse
 from django.utils import timezone
 from django.utils.dateformat import format as date_format
 from django.utils.html import escape, format_html_join
@@ -19,10 +20,10 @@ from . import check_export, derived, due_readings, health_forms, health_series, 
 from . import labels as labels_module
 from .filters import CheckFilter, TankFilter
 from .flags import describe
-from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
+from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
 from .history import history_index, page_entries
-from .models import Census, Check, Deviation, Feeding, Room, Species, Tank, WaterChange
+from .models import Census, Check, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, can_record_husbandry, role_required
@@ -138,9 +139,21 @@ def round_view(request, room_code=None):
                                  editable=can_record_husbandry(request.user))
     ctx = {
         "room": room, "rooms": Room.objects.all(), "rows": rows, "when": when, "n_due": sum(len(r["due"]) for r in rows),
+        "saved_keys": _saved_round_keys(request.user, now),
         "tank_codes": ",".join(row["tank"].code for row in rows), "rows_field": ROWS_FIELD,
     }
     return render(request, "colonies/round.html", ctx, status=400 if data is not None else 200)
+
+
+def _saved_round_keys(user, now) -> str:
+    """The keys of this person's rounds the server has saved lately: the page script marks the rounds it kept on
+    the device with these keys as sent (a round is recorded once whatever the page shows: see idempotency.py)."""
+    keys = (Submission.objects.filter(user=user, path__startswith=reverse("colonies:round"), created_at__gte=now - timedelta(days=7))
+            .exclude(result_url="").values_list("key", flat=True)[:SAVED_KEYS_SHOWN])
+    return ",".join(str(k) for k in keys)
+
+
+SAVED_KEYS_SHOWN = 50
 
 
 @require_GET
@@ -441,7 +454,8 @@ def species_detail(request, pk):
     species = get_object_or_404(Species, pk=pk)
     targets = {t.parameter: t for t in species.targets.all()}
     rows = [(p, targets.get(p.key)) for p in species.relevant_parameters()]
-    return render(request, "colonies/species_detail.html", {"species": species, "rows": rows,
+    plans = [(parameters.BY_KEY[key], plan) for key, plan in species.plans().items()]
+    return render(request, "colonies/species_detail.html", {"species": species, "rows": rows, "plans": plans,
                                                              "sources": sorted(species.sources.items())})
 
 
@@ -452,14 +466,16 @@ def species_edit(request, pk):
     species = get_object_or_404(Species, pk=pk)
     form = SpeciesForm(request.POST or None, instance=species)
     targets = CareTargetFormSet(request.POST or None, instance=species, prefix="targets")
+    plans = MeasurementPlanFormSet(request.POST or None, instance=species, prefix="plans")
     reason = ReasonForm(request.POST or None)
-    if request.method == "POST" and form.is_valid() & targets.is_valid() & reason.is_valid():
-        services.save_reference(user=request.user, obj=form.save(commit=False), rows=targets.save(commit=False),
+    if request.method == "POST" and form.is_valid() & targets.is_valid() & plans.is_valid() & reason.is_valid():
+        services.save_reference(user=request.user, obj=form.save(commit=False),
+                                rows=targets.save(commit=False) + plans.save(commit=False),
                                 reason=reason.cleaned_data["reason"])
         messages.success(request, f"Care profile of {species} updated.")
         return redirect(species)
     return render(request, "colonies/species_edit.html", {"species": species, "form": form, "targets": targets,
-                                                           "reason": reason},
+                                                           "plans": plans, "reason": reason},
                   status=400 if request.method == "POST" else 200)
 
 

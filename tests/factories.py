@@ -76,8 +76,10 @@ def round_data(rows: dict[str, dict], *, listed: list[str] | None = None, **extr
     return data
 
 
-def species_edit_data(species: Species, *, reason: str = "Reviewed against the SOP", new_targets=(), **changes) -> dict:
-    """POST data for the species-edit page: the profile as it is, with `changes` and extra target rows."""
+def species_edit_data(species: Species, *, reason: str = "Reviewed against the SOP", new_targets=(), new_plans=(),
+                      **changes) -> dict:
+    """POST data for the species-edit page: the profile as it is, with `changes` and extra target and plan rows
+    (new_plans: dicts of MeasurementPlanForm fields)."""
     data = {name: getattr(species, name) for name in (
         "common_name", "habitat", "check_interval_hours", "feeding_interval_days", "water_change_interval_days",
         "water_change_fraction", "census_interval_days", "reserve_min_animals", "notes")}
@@ -93,6 +95,15 @@ def species_edit_data(species: Species, *, reason: str = "Reviewed against the S
     for j, (key, low, high, source) in enumerate(new_targets, start=len(targets)):
         data.update({f"targets-{j}-id": "", f"targets-{j}-species": species.pk, f"targets-{j}-parameter": key,
                      f"targets-{j}-low": low, f"targets-{j}-high": high, f"targets-{j}-source": source})
+    plans = list(species.measurement_plans.all())
+    data.update({"plans-TOTAL_FORMS": len(plans) + len(new_plans), "plans-INITIAL_FORMS": len(plans),
+                 "plans-MIN_NUM_FORMS": 0, "plans-MAX_NUM_FORMS": 1000})
+    plan_fields = ("parameter", "cadence", "every_days", "weekday", "after_water_change", "while_deviation_open")
+    for i, plan in enumerate([{"id": p.pk, **{f: getattr(p, f) for f in plan_fields}} for p in plans] + list(new_plans)):
+        for name, value in {"id": "", "species": species.pk, **plan}.items():
+            if value is None or value is False:
+                continue  # an empty number, an unticked box: not sent
+            data[f"plans-{i}-{name}"] = "on" if value is True else value
     data["reason"] = reason
     return data
 

@@ -24,6 +24,10 @@ from colonies.flags import flags_for
 from colonies.models import Census, Check, Feeding, Room, Species, Tank, TankTarget, WaterChange
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 
+# Which readings the synthetic technicians take every day (the rest every 7th day). Fixed here, not read from
+# the measurement plans, so a facility built today has the same rows as one built before the plans existed.
+MEASURED_DAILY = {"temp_c", "ph", "do_mg_l", "salinity"}
+
 from . import fastinsert, followup
 
 PASSWORD = "bench-worms-2026"
@@ -185,7 +189,7 @@ def _tank_records(rng, f: Facility, tank: Tank, writer: Writer, days: int, now, 
         user = rng.choice(techs)
         readings = {}
         for key, (centre, sd) in profile.items():
-            if key not in demo.DAILY and day % 7 != 0:
+            if key not in MEASURED_DAILY and day % 7 != 0:
                 continue
             drift[key] = 0.8 * drift[key] + rng.gauss(0, sd * 0.3)
             readings[key] = round(max(0.0, centre + drift[key] + rng.gauss(0, sd * 0.4)), 3)

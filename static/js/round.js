@@ -38,7 +38,7 @@
       var anyOut = row.querySelector("input.is-out") !== null;
       row.classList.toggle("has-flag", anyOut);
       var action = row.querySelector(".action-line");
-      if (action && anyOut) action.hidden = false;
+      if (action) action.hidden = !anyOut && !action.querySelector("input").value.trim();
     }
   }
 
@@ -136,21 +136,27 @@
 
   // Keep what is typed as it is typed (a reload, a locked phone, a dropped network lose nothing).
   var saving = null;
+  function writeDraft() {
+    clearTimeout(saving);
+    saving = null;
+    var draft = collect();
+    if (draft.tanks.length) store(draftKey, { values: draft.values, at: Date.now() });
+    else localStorage.removeItem(draftKey);
+  }
   function keepDraft() {
     clearTimeout(saving);
-    saving = setTimeout(function () {
-      var draft = collect();
-      if (draft.tanks.length) store(draftKey, { values: draft.values, at: Date.now() });
-      else localStorage.removeItem(draftKey);
-    }, 250);
+    saving = setTimeout(writeDraft, 150);
   }
   form.addEventListener("input", keepDraft);
   form.addEventListener("change", keepDraft);
+  // The phone locks or the page goes away: write what is pending now.
+  window.addEventListener("pagehide", function () { if (saving) writeDraft(); });
+  document.addEventListener("visibilitychange", function () { if (document.hidden && saving) writeDraft(); });
   var isRefusal = document.querySelector(".error-jump") !== null;  // the server re-showed a refused round
   var draft = load(draftKey, null);
   if (draft && !isRefusal && collect().tanks.length === 0) {
     fill(draft.values);
-    say("Restored what was typed on this device at " + new Date(draft.at).toLocaleTimeString() + ".");
+    say("Restored what was typed on this device at " + when(draft.at) + ".");
   }
 
   // ---- The outbox: saved rounds until the server has them ------------------------------------------
@@ -167,7 +173,12 @@
     var field = form.querySelector("input[name=csrfmiddlewaretoken]");
     return field ? field.value : "";
   }
-  function when(ms) { return new Date(ms).toLocaleTimeString([], { hour: "2-digit", minute: "2-digit" }); }
+  // Times in the lab's time zone and its 24-hour format, whatever the device's own settings.
+  function when(ms) {
+    var options = { hour: "2-digit", minute: "2-digit", hourCycle: "h23" };
+    try { return new Date(ms).toLocaleTimeString("en-GB", Object.assign({ timeZone: form.dataset.tz || "UTC" }, options)); }
+    catch (e) { return new Date(ms).toLocaleTimeString("en-GB", options); }
+  }
 
   function render() {
     var box = document.getElementById("round-outbox");
@@ -256,26 +267,46 @@
       });
   }
 
+  // Saving. Online, the round is posted as a plain form (the server answers with its page: saved, or refused
+  // with each error beside its field), but first it is put in the outbox under a key made here, so that if the
+  // network fails on the way the round is not lost (the service worker shows the kept page instead of an error)
+  // and is sent again later under the same key: the server records a key once (colonies/idempotency.py).
+  // Offline, it goes straight to the outbox.
   form.addEventListener("submit", function (event) {
-    event.preventDefault();
     var typed = collect();
-    if (!typed.tanks.length) { say("Nothing typed: a round needs at least one tank filled in."); return; }
+    if (!typed.tanks.length) return;  // nothing to keep: the server says so
     var observed = form.querySelector("input[name='round-observed_at']");
-    var entry = { id: newKey(), path: location.pathname, created: Date.now(), state: "kept", values: typed.values,
-                  tanks: typed.tanks, observedAt: observed ? observed.value : "" };
+    var entry = { id: newKey(), path: location.pathname, created: Date.now(), values: typed.values,
+                  tanks: typed.tanks, observedAt: observed ? observed.value : "",
+                  state: navigator.onLine ? "posting" : "kept" };
     var entries = load(outboxKey, []);
     entries.push(entry);
-    if (!store(outboxKey, entries)) { say("This device's storage is full: the round was not kept. Free some space."); return; }
+    if (!store(outboxKey, entries)) {
+      if (!navigator.onLine) { event.preventDefault(); say("This device's storage is full: the round was not kept."); }
+      return;
+    }
     localStorage.removeItem(draftKey);
-    clearRows();
-    if (observed) observed.value = "";
-    render();
-    flush().then(function () {
-      var mine = load(outboxKey, []).filter(function (e) { return e.id === entry.id; })[0];
-      if (mine && mine.state === "sent") location.replace(location.pathname + "?sent=" + entry.id);
-      if (mine && mine.state === "refused") restore(mine);
-    });
+    form.querySelector("input[name=submission_key]").value = entry.id;
+    if (!navigator.onLine) {
+      event.preventDefault();
+      clearRows();
+      if (observed) observed.value = "";
+      render();
+      return;
+    }
+    // One hidden JSON field instead of every input: a round of any size stays under Django's field limit.
+    var field = form.querySelector("input[name='" + form.dataset.rowsField + "']");
+    if (!field) {
+      field = document.createElement("input");
+      field.type = "hidden";
+      field.name = form.dataset.rowsField;
+      form.appendChild(field);
+    }
+    field.value = JSON.stringify(typed.values);
+    rowFields().forEach(function (el) { el.disabled = true; });
   });
+  // Back-forward cache: a page restored after submit must be editable again.
+  window.addEventListener("pageshow", function () { rowFields().forEach(function (el) { el.disabled = false; }); });
 
   function restore(entry) {
     // A refused round goes back into the form (if it is this page's), so it can be corrected and saved again.
@@ -293,9 +324,18 @@
     if (wanted) restore(wanted);
   }
 
-  // A send cut off by closing the page is sent again: if it had reached the server, the server answers
-  // "already saved" for its key and nothing is recorded twice.
-  store(outboxKey, load(outboxKey, []).map(function (e) { return e.state === "sending" ? Object.assign(e, { state: "kept" }) : e; }));
+  // What the server says it has: rounds posted from this page land here (saved: their key is among the saved
+  // ones; refused: this page shows them again with their errors). A post or send cut off on the way is kept
+  // and sent again: if it had reached the server, the server answers "already saved" for its key.
+  var saved = (form.dataset.saved || "").split(",");
+  var refused = form.dataset.refused;
+  store(outboxKey, load(outboxKey, []).filter(function (e) {
+    return !(e.id === refused || (e.state === "posting" && saved.indexOf(e.id) >= 0));
+  }).map(function (e) {
+    if (saved.indexOf(e.id) >= 0 && e.state !== "sent") return Object.assign(e, { state: "sent", sentAt: Date.now() });
+    if (e.state === "posting" || e.state === "sending") return Object.assign(e, { state: "kept" });
+    return e;
+  }));
   render();
   window.addEventListener("online", flush);
   setInterval(flush, 30000);

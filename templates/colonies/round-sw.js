@@ -2,7 +2,8 @@
 // It does one thing: keep the last copy of each round page and of the files it uses, so a round page
 // reloaded without network still opens and shows the rounds kept on the device (static/js/round.js keeps
 // what is typed and sends saved rounds when the network is back). Pages come from the network whenever
-// it answers; the copy is only used when it does not. Writes (POST) are never touched.
+// it answers; the copy is only used when it does not. A write (POST) always goes to the server; only when
+// the network fails does the kept page answer instead.
 "use strict";
 const CACHE = "vermilog-round-{{ version }}";
 const FILES = ["{% static 'css/vermilog.css' %}", "{% static 'css/round.css' %}", "{% static 'js/round.js' %}"];
@@ -21,7 +22,16 @@ self.addEventListener("activate", (event) => {
 
 self.addEventListener("fetch", (event) => {
   const request = event.request;
-  if (request.method !== "GET" || new URL(request.url).origin !== self.location.origin) return;
+  if (new URL(request.url).origin !== self.location.origin) return;
+  if (request.method === "POST") {
+    // A round posted as the network drops: show the kept round page instead of the browser's error page.
+    // The page script already holds the round in its outbox and sends it when the network is back.
+    if (request.mode === "navigate") {
+      event.respondWith(fetch(request).catch(() => caches.match(request.url).then((hit) => hit || Response.error())));
+    }
+    return;
+  }
+  if (request.method !== "GET") return;
   event.respondWith(
     fetch(request).then((response) => {
       // A redirect (e.g. to the sign-in page) or an error page is not a round page to keep.

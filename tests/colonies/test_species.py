@@ -91,3 +91,60 @@ def test_species_edit_of_unknown_species_is_404(client, manager):
     client.force_login(manager)
     assert client.get(reverse("colonies:species-edit", args=[999999])).status_code == 404
     assert Species.objects.filter(pk=999999).count() == 0
+
+
+# ---------------------------------------------------------------------------------------------
+# Measurement plans on the care profile
+# ---------------------------------------------------------------------------------------------
+def test_species_page_says_which_plans_are_defaults_and_which_the_profile_sets(client, researcher, species):
+    from colonies.models import MeasurementPlan
+
+    MeasurementPlan.objects.create(species=species, parameter="ph", cadence="every_n_days", every_days=3)
+    client.force_login(researcher)
+
+    plans = {p.key: plan for p, plan in client.get(reverse("colonies:species-detail", args=[species.pk])).context["plans"]}
+
+    assert (plans["ph"].text(), plans["ph"].source) == ("every 3 days", "species")
+    assert (plans["temp_c"].text(), plans["temp_c"].source) == ("daily", "default")
+    assert "salinity" not in plans  # marine only
+
+
+def test_manager_sets_a_measurement_plan_with_a_reason_kept_in_its_history(client, manager, species):
+    client.force_login(manager)
+    data = species_edit_data(species, reason="Weekly nitrate per SOP 4",
+                             new_plans=[{"parameter": "no3_mg_l", "cadence": "weekly", "weekday": 2,
+                                         "after_water_change": True}])
+
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]), data)
+
+    assert response.status_code == 302, page_text(response)
+    plan = species.measurement_plans.get(parameter="no3_mg_l")
+    assert plan.as_plan("species").text() == "weekly on Wednesday, after each water change"
+    version = plan.history.get()
+    assert (version.history_user, version.history_change_reason) == (manager, "Weekly nitrate per SOP 4")
+
+
+@pytest.mark.parametrize("plan,field,words", [
+    ({"parameter": "ph", "cadence": "weekly"}, "weekday", "Weekday: choose the day of the week"),
+    ({"parameter": "ph", "cadence": "every_n_days"}, "every_days", "Every N days: give the number of days (2 to 90)"),
+    ({"parameter": "ph", "cadence": "every_n_days", "every_days": 200}, "every_days", "Every N days"),
+])
+def test_an_incomplete_plan_is_refused_naming_the_field_and_nothing_is_saved(client, manager, species, plan, field, words):
+    client.force_login(manager)
+
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]),
+                           species_edit_data(species, common_name="Renamed", new_plans=[plan]))
+
+    assert response.status_code == 400
+    assert words in page_text(response)
+    species.refresh_from_db()
+    assert species.common_name == "Test worm" and not species.measurement_plans.exists()
+
+
+def test_a_plan_keeps_no_stray_day_or_weekday(client, manager, species):
+    client.force_login(manager)
+    client.post(reverse("colonies:species-edit", args=[species.pk]),
+                species_edit_data(species, new_plans=[{"parameter": "ph", "cadence": "daily", "every_days": 5,
+                                                       "weekday": 3}]))
+    plan = species.measurement_plans.get()
+    assert (plan.cadence, plan.every_days, plan.weekday) == ("daily", None, None)
