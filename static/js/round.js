@@ -42,32 +42,5 @@
   document.querySelectorAll("input.reading").forEach(function (input) {
     if (input.value) evaluate(input);
   });
-
-  // On the round, send the filled inputs of all rows as ONE hidden JSON field and disable the row
-  // inputs, so a round of any size is one request with a few fields (Django refuses a request with
-  // more than DATA_UPLOAD_MAX_NUMBER_FIELDS fields). Without this script the plain fields are sent.
-  var form = document.getElementById("round-form");
-  if (form && form.dataset.rowsField) {
-    form.addEventListener("submit", function () {
-      var rows = {};
-      form.querySelectorAll(".tankrow input[name], .tankrow select[name], .tankrow textarea[name]").forEach(function (el) {
-        if (el.disabled) return;
-        if (el.type === "checkbox") { if (el.checked) rows[el.name] = true; }
-        else if (el.value.trim() !== "") rows[el.name] = el.value;
-        el.disabled = true;
-      });
-      var field = form.querySelector("input[name='" + form.dataset.rowsField + "']");
-      if (!field) {
-        field = document.createElement("input");
-        field.type = "hidden";
-        field.name = form.dataset.rowsField;
-        form.appendChild(field);
-      }
-      field.value = JSON.stringify(rows);
-    });
-    // Back-forward cache: a page restored after submit must be editable again.
-    window.addEventListener("pageshow", function () {
-      form.querySelectorAll(".tankrow [name]:disabled").forEach(function (el) { el.disabled = false; });
-    });
-  }
+  // The rows are posted as one JSON field by rows_post.js (shared with the many-tanks screen).
 })();
