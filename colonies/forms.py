@@ -274,6 +274,9 @@ class CensusForm(ObservedAtMixin, NamedErrorsMixin, forms.ModelForm):
         fields = ["method", "direct_count", "aliquot_ml", "total_ml", "total_mass_g", "sample_mass_g", "sample_count",
                   "observed_at", "note"]
         widgets = {"method": forms.Select(attrs={"data-census-method": ""})}
+        labels = {"aliquot_ml": "Aliquot volume (mL)", "total_ml": "Total volume (mL)",
+                  "total_mass_g": "Total wet mass (g)", "sample_mass_g": "Subsample mass (g)",
+                  "sample_count": "Animals in subsample"}
 
     # Each method's own inputs, shown in a fieldset of their own (templates/colonies/_census_fields.html);
     # a small script shows only the chosen method's.
@@ -284,9 +287,6 @@ class CensusForm(ObservedAtMixin, NamedErrorsMixin, forms.ModelForm):
     def method_fieldsets(self):
         return [(value, label, [self[name] for name in self.METHOD_FIELDS[value]])
                 for value, label in Census.Method.choices]
-        labels = {"aliquot_ml": "Aliquot volume (mL)", "total_ml": "Total volume (mL)",
-                  "total_mass_g": "Total wet mass (g)", "sample_mass_g": "Subsample mass (g)",
-                  "sample_count": "Animals in subsample"}
 
     def clean_direct_count(self):
         return check_range("Direct count", self.cleaned_data.get("direct_count"), 0, MAX_COUNT, "animals")

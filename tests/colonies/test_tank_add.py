@@ -311,7 +311,8 @@ def test_census_form_groups_each_methods_fields_in_its_own_fieldset(client, tech
     names = {method: set(re.findall(r'name="census-(\w+)"', body)) for method, body in sets.items()}
     assert names == {"direct": {"direct_count"}, "aliquot": {"aliquot_counts_text", "aliquot_ml", "total_ml"},
                      "mass": {"total_mass_g", "sample_mass_g", "sample_count"}}
-    assert 'data-census-method' in text and "js/census_form.js" in text
+    assert "data-census-method" in text and "js/census_form.js" in text
+    assert "Aliquot volume (mL)" in text and "Animals in subsample" in text
 
 
 def test_census_validation_is_unchanged_a_missing_methods_value_is_refused(client, technician, tank):
