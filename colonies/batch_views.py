@@ -86,7 +86,7 @@ def _save(request, kind, data):
         saved = services.record_batch(user=request.user, records=[f.build(user=request.user, observed_at=observed_at)
                                                                   for f in entries])
         messages.success(request, f"Saved {len(saved)} {kind.plural if len(saved) != 1 else kind.noun}: "
-                                  f"{_codes(r.tank.code for r in saved)}.")
+                                  f"{_codes(f.tank.code for f in entries)}.")
         return redirect(request.get_full_path()), None, None
     for code in unknown:
         messages.error(request, f"Tank code '{code}' does not exist or is retired; allowed: the codes of tanks in use. "
