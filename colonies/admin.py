@@ -14,8 +14,8 @@ from simple_history.admin import SimpleHistoryAdmin
 
 from . import services
 from .forms import CareTargetForm, MeasurementPlanForm, TankMeasurementPlanForm, TankTargetForm, reason_field
-from .models import (CareTarget, Census, Check, Deviation, Feeding, MeasurementPlan, Room, Species, Split, SplitPart, Tank,
-                     TankMeasurementPlan, TankTarget, WaterChange)
+from .models import (CareTarget, Census, Check, DeadRemoval, Deviation, Feeding, MeasurementPlan, Room, Species, Split,
+                     SplitPart, Tank, TankMeasurementPlan, TankTarget, WaterChange)
 
 NO_REVERT = ("Past versions cannot be restored or edited: a correction is a new version with its own reason, "
              "made in the app or on the record's change page.")
@@ -92,7 +92,8 @@ class TankMeasurementPlanInline(NoDeleteMixin, admin.TabularInline):
 
 @admin.register(Species)
 class SpeciesAdmin(ReasonAdmin):
-    list_display = ["scientific_name", "common_name", "habitat", "check_interval_hours", "max_density_per_l"]
+    list_display = ["scientific_name", "common_name", "habitat", "check_interval_hours", "max_density_per_l",
+                    "default_food"]
     list_filter = ["habitat"]
     search_fields = ["scientific_name", "common_name"]
     inlines = [CareTargetInline, MeasurementPlanInline]
@@ -169,6 +170,11 @@ class WaterChangeAdmin(RecordAdmin):
 @admin.register(Census)
 class CensusAdmin(RecordAdmin):
     list_display = ["tank", "observed_at", "method", "estimate", "estimate_lower", "estimate_upper", "voided_at"]
+
+
+@admin.register(DeadRemoval)
+class DeadRemovalAdmin(RecordAdmin):
+    list_display = ["tank", "observed_at", "count", "recorded_by", "voided_at"]
 
 
 class SplitPartInline(NoDeleteMixin, admin.TabularInline):

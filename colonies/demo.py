@@ -106,6 +106,11 @@ def load(seed: int = 7, today=None) -> dict:
     care_defaults.install(Species, CareTarget)
     users = _users()
     techs, manager = users[TECHNICIAN], users[MANAGER][0]
+    for species in Species.objects.filter(scientific_name__in=FOOD):  # the lab's husbandry defaults (invented)
+        species.default_food, species.default_feeding_amount, species.default_feeding_unit = FOOD[species.scientific_name]
+        species.default_source_water = SOURCE_WATER[species.scientific_name]
+        species._history_user, species._change_reason = manager, "Lab's feeding and water defaults"
+        species.save()
 
     tanks = []
     for room_code, room_name, species_name, prefix, n, volume, substrate in ROOMS:

@@ -2,7 +2,8 @@
 
 Two kinds of rule:
 - record rules run when checks are saved (`evaluate_checks`): reading or derived value outside the
-  care target, mortality above baseline, drift on a control chart;
+  care target, mortality above baseline, drift on a control chart; the mortality rule also runs when
+  dead animals removed outside the round are saved (`evaluate_removals`);
 - scan rules run from `python manage.py scan_deviations` (`scan`): missed checks and overdue
   feeding, water change and census.
 
@@ -28,7 +29,7 @@ from simple_history.utils import bulk_create_with_history, bulk_update_with_hist
 
 from . import control_charts, derived
 from .flags import Target, out_of_target
-from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank, overdue_grace
+from .models import EVIDENCE_KEEP, Census, Check, DeadRemoval, Deviation, Tank, overdue_grace
 
 Severity = Deviation.Severity
 Rule = Deviation.Rule
@@ -130,7 +131,8 @@ def severity_outside(value: float, target: Target) -> int:
 # ---------------------------------------------------------------------------------------------
 @dataclass
 class Context:
-    """What record rules may read, loaded in a fixed number of queries for a batch of checks."""
+    """What record rules may read, loaded in a fixed number of queries for a batch of checks (or of
+    dead-animal removals, which the mortality rule also judges)."""
 
     tanks: dict[int, Tank]
     series: dict[int, list[Check]]  # per tank: earlier stored checks and the batch, oldest first
@@ -139,12 +141,17 @@ class Context:
     _position: dict[int, int] = field(default_factory=dict)
 
     _since: dict[int, int] = field(default_factory=dict)
+    # per tank: the stored removals' times (oldest first) and running totals of their counts
+    _removal_times: dict[int, list] = field(default_factory=dict)
+    _removal_totals: dict[int, list[int]] = field(default_factory=dict)
 
     @classmethod
-    def load(cls, checks: list[Check]) -> "Context":
-        """Tanks and their stored checks from HISTORY_DAYS before the batch's oldest check to its newest (four
-        queries). Later checks cannot be earlier than any in the batch, so they are not read."""
-        tank_ids = {c.tank_id for c in checks}
+    def load(cls, checks: list[Check], removals: list[DeadRemoval] = ()) -> "Context":
+        """Tanks, their stored checks and dead-animal removals from HISTORY_DAYS before the batch's oldest
+        record to its newest (five queries). Later records cannot be earlier than any in the batch, so they
+        are not read."""
+        records = [*checks, *removals]
+        tank_ids = {c.tank_id for c in records}
         tanks = {
             t.pk: t for t in Tank.objects.filter(pk__in=tank_ids).select_related("species")
             .prefetch_related("species__targets", "target_overrides")
@@ -152,8 +159,8 @@ class Context:
                 Census.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at").values("estimate")[:1]
             ))
         }
-        oldest = min(c.observed_at for c in checks) - timedelta(days=HISTORY_DAYS)
-        newest = max(c.observed_at for c in checks)
+        oldest = min(c.observed_at for c in records) - timedelta(days=HISTORY_DAYS)
+        newest = max(c.observed_at for c in records)
         batch = {c.pk for c in checks}
         series: dict[int, list[Check]] = defaultdict(list)
         stored = Check.objects.current().filter(tank_id__in=tank_ids, observed_at__gte=oldest, observed_at__lte=newest)
@@ -167,7 +174,29 @@ class Context:
             for i, c in enumerate(items):
                 ctx._position[id(c)] = i
                 ctx._since[id(c)] = bisect.bisect_left(times, c.observed_at - timedelta(days=HISTORY_DAYS), 0, i)
+        for tank_id, at, count in (DeadRemoval.objects.current()
+                                   .filter(tank_id__in=tank_ids, observed_at__gte=oldest, observed_at__lte=newest)
+                                   .order_by("tank_id", "observed_at", "pk").values_list("tank_id", "observed_at", "count")):
+            totals = ctx._removal_totals.setdefault(tank_id, [0])
+            ctx._removal_times.setdefault(tank_id, []).append(at)
+            totals.append(totals[-1] + count)
         return ctx
+
+    def removed_between(self, tank_id: int, start, end) -> int:
+        """Animals in the tank's stored dead-animal removals observed in [start, end)."""
+        times = self._removal_times.get(tank_id)
+        if not times:
+            return 0
+        totals = self._removal_totals[tank_id]
+        return totals[bisect.bisect_left(times, end)] - totals[bisect.bisect_left(times, start)]
+
+    def checks_before(self, tank_id: int, at, limit: int) -> list[Check]:
+        """The tank's last `limit` checks observed before `at`, at most HISTORY_DAYS back (oldest first)."""
+        items = self.series.get(tank_id, [])
+        times = [c.observed_at for c in items]
+        end = bisect.bisect_left(times, at)
+        start = max(bisect.bisect_left(times, at - timedelta(days=HISTORY_DAYS), 0, end), end - limit)
+        return items[start:end]
 
     def earlier(self, check: Check, limit: int | None = None) -> list[Check]:
         """The tank's checks before `check` (oldest first), at most HISTORY_DAYS back from it and at most
@@ -211,29 +240,52 @@ def out_of_target_rule(checks, ctx):
 @record_rule
 def mortality_rule(checks, ctx):
     for check in checks:
-        dead = check.dead_removed or 0
-        if dead < MORTALITY_MIN_DEAD:
-            continue
-        earlier = ctx.earlier(check, MORTALITY_BASELINE_CHECKS)
-        baseline = sum(c.dead_removed for c in earlier) / len(earlier) if earlier else 0.0
-        poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
-        estimate = ctx.latest_estimate.get(check.tank_id)
-        fraction = dead / estimate if estimate else None
-        above_baseline = len(earlier) >= MORTALITY_MIN_BASELINE and dead > poisson_limit
-        above_fraction = fraction is not None and fraction > MORTALITY_FRACTION
-        if not (above_baseline or above_fraction):
-            continue
-        severity = Severity.MAJOR if (fraction is not None and fraction > 2.5 * MORTALITY_FRACTION) or dead > 2 * poisson_limit else Severity.MODERATE
-        why = [f"baseline {baseline:.1f}/check over {len(earlier)} checks, limit {poisson_limit:.1f}"]
-        if fraction is not None:
-            why.append(f"{100 * fraction:.1f} % of the latest estimate ({estimate:.0f})")
-        yield Finding(
-            check.tank_id, Rule.MORTALITY, severity, f"{dead} dead removed ({'; '.join(why)})",
-            {"ref": f"check:{check.pk}:dead", "check": check.pk, "at": _local(check.observed_at), "dead": dead,
-             "baseline": round(baseline, 2), "limit": round(poisson_limit, 2),
-             "fraction_of_estimate": None if fraction is None else round(fraction, 4)},
-            check.observed_at,
-        )
+        finding = _mortality_finding(ctx, check.tank_id, check.dead_removed or 0, check.observed_at,
+                                     ctx.earlier(check, MORTALITY_BASELINE_CHECKS),
+                                     {"ref": f"check:{check.pk}:dead", "check": check.pk})
+        if finding:
+            yield finding
+
+
+def removal_findings(removals, ctx):
+    """The mortality rule for dead animals removed outside the round: each removal is judged like a
+    check's count, against the same baseline."""
+    for removal in removals:
+        finding = _mortality_finding(ctx, removal.tank_id, removal.count, removal.observed_at,
+                                     ctx.checks_before(removal.tank_id, removal.observed_at, MORTALITY_BASELINE_CHECKS),
+                                     {"ref": f"removal:{removal.pk}", "removal": removal.pk})
+        if finding:
+            yield finding
+
+
+def _mortality_finding(ctx, tank_id, dead: int, at, earlier: list[Check], ref: dict) -> Finding | None:
+    """A finding when `dead` animals at `at` are above the tank's baseline or its latest estimate.
+
+    The baseline is deaths per check: the dead removed at the earlier checks plus those removed outside
+    the round from the first of those checks up to `at` (not including this record), divided by the
+    number of checks. Each dead animal is thus counted once, by the record that removed it.
+    """
+    if dead < MORTALITY_MIN_DEAD:
+        return None
+    removed = ctx.removed_between(tank_id, earlier[0].observed_at, at) if earlier else 0
+    baseline = (sum(c.dead_removed for c in earlier) + removed) / len(earlier) if earlier else 0.0
+    poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
+    estimate = ctx.latest_estimate.get(tank_id)
+    fraction = dead / estimate if estimate else None
+    above_baseline = len(earlier) >= MORTALITY_MIN_BASELINE and dead > poisson_limit
+    above_fraction = fraction is not None and fraction > MORTALITY_FRACTION
+    if not (above_baseline or above_fraction):
+        return None
+    severity = Severity.MAJOR if (fraction is not None and fraction > 2.5 * MORTALITY_FRACTION) or dead > 2 * poisson_limit else Severity.MODERATE
+    why = [f"baseline {baseline:.1f}/check over {len(earlier)} checks, limit {poisson_limit:.1f}"]
+    if fraction is not None:
+        why.append(f"{100 * fraction:.1f} % of the latest estimate ({estimate:.0f})")
+    return Finding(
+        tank_id, Rule.MORTALITY, severity, f"{dead} dead removed ({'; '.join(why)})",
+        {**ref, "at": _local(at), "dead": dead, "baseline": round(baseline, 2), "limit": round(poisson_limit, 2),
+         "fraction_of_estimate": None if fraction is None else round(fraction, 4)},
+        at,
+    )
 
 
 @record_rule
@@ -294,6 +346,15 @@ def evaluate_checks(checks: list[Check], now: datetime | None = None) -> Outcome
         ctx = Context.load(window)
         findings += [f for rule in RECORD_RULES for f in rule(window, ctx)]
     return apply_findings(findings, now=now)
+
+
+def evaluate_removals(removals: list[DeadRemoval], now: datetime | None = None) -> Outcome:
+    """The mortality rule on freshly saved dead-animal removals (fixed number of queries for the batch)."""
+    removals = [r for r in removals if r.pk and not r.is_voided]
+    if not removals:
+        return Outcome()
+    ctx = Context.load([], removals)
+    return apply_findings(list(removal_findings(removals, ctx)), now=now)
 
 
 def _windows(checks: list[Check]) -> list[list[Check]]:

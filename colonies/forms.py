@@ -1,4 +1,5 @@
 from django import forms
+from django.utils import timezone
 
 from . import derived, parameters, schedules, validators
 from .flags import limit_text, out_of_target
@@ -18,6 +19,8 @@ def reason_field(label: str = "Reason", **kwargs) -> forms.CharField:
     )
 from .validators import MAX_COUNT, MAX_TEXT, NamedErrorsMixin, check_range
 
+# A species' husbandry defaults, pre-filled for a tank with no earlier feeding or water change.
+SPECIES_DEFAULT_FIELDS = ("default_food", "default_feeding_amount", "default_feeding_unit", "default_source_water")
 MAX_ALIQUOTS = 100  # aliquots counted in one census; more is a pasted column, not a census
 
 
@@ -161,13 +164,15 @@ class CheckEntryForm(NamedErrorsMixin, forms.Form):
         return result
 
 
-class ObservedAtForm(NamedErrorsMixin, forms.Form):
-    observed_at = forms.DateTimeField(
-        required=False, label="Observed at",
+def observed_at_field(help_text: str = "Leave empty for now. Set it when entering readings taken earlier.") -> forms.DateTimeField:
+    return forms.DateTimeField(
+        required=False, label="Observed at", help_text=help_text,
         widget=forms.DateTimeInput(attrs={"type": "datetime-local"}, format="%Y-%m-%dT%H:%M"),
-        help_text="Leave empty for now. Set it when entering readings taken earlier.",
     )
 
+
+class ObservedAtForm(NamedErrorsMixin, forms.Form):
+    observed_at = observed_at_field()
     # Set by the round's page script when a round is saved on the device (no network): the moment it was
     # saved there, in UTC, so a round sent later is not stamped with the time it reached the server.
     kept_at = forms.DateTimeField(required=False, widget=forms.HiddenInput, label="Saved on the device at")
@@ -207,10 +212,33 @@ class ReasonForm(NamedErrorsMixin, forms.Form):
         return reason
 
 
-class FeedingForm(NamedErrorsMixin, forms.ModelForm):
+class ObservedAtMixin:
+    """An entry form's observed time (a model form of a tank's record): empty means now; back-dating is allowed
+    back to the tank's start (validators.check_moment); a record entered long after is shown as a late entry."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        if not self.is_bound:
+            self.initial["observed_at"] = None  # empty, not the moment the page was drawn: saved as "now"
+
+    def clean_observed_at(self):
+        value = self.cleaned_data.get("observed_at")
+        tank = self.instance.tank if self.instance.tank_id else None
+        if tank is None:
+            return validators.check_moment("Observed at", value) or timezone.now()
+        return validators.check_moment("Observed at", value, started_on=tank.started_on,
+                                       what=f"when tank {tank.code} was started") or timezone.now()
+
+
+LATER = "Leave empty for now. Set it when entering work done earlier; it is then shown as a late entry."
+
+
+class FeedingForm(ObservedAtMixin, NamedErrorsMixin, forms.ModelForm):
+    observed_at = observed_at_field(LATER)
+
     class Meta:
         model = Feeding
-        fields = ["food", "amount", "unit", "note"]
+        fields = ["food", "amount", "unit", "observed_at", "note"]
 
     def clean(self):
         cleaned = super().clean()
@@ -223,10 +251,12 @@ class FeedingForm(NamedErrorsMixin, forms.ModelForm):
         return cleaned
 
 
-class WaterChangeForm(NamedErrorsMixin, forms.ModelForm):
+class WaterChangeForm(ObservedAtMixin, NamedErrorsMixin, forms.ModelForm):
+    observed_at = observed_at_field(LATER)
+
     class Meta:
         model = WaterChange
-        fields = ["percent", "litres", "source_water", "note"]
+        fields = ["percent", "litres", "source_water", "observed_at", "note"]
         labels = {"percent": "Percent of volume", "litres": "Litres"}
 
     def clean_percent(self):
@@ -246,19 +276,31 @@ class WaterChangeForm(NamedErrorsMixin, forms.ModelForm):
         return cleaned
 
 
-class CensusForm(NamedErrorsMixin, forms.ModelForm):
+class CensusForm(ObservedAtMixin, NamedErrorsMixin, forms.ModelForm):
     aliquot_counts_text = forms.CharField(
         required=False, label="Aliquot counts",
         help_text="Animals in each aliquot, separated by commas or spaces, e.g. 31, 27, 35.",
     )
+    observed_at = observed_at_field(LATER)
 
     class Meta:
         model = Census
         fields = ["method", "direct_count", "aliquot_ml", "total_ml", "total_mass_g", "sample_mass_g", "sample_count",
-                  "note"]
+                  "observed_at", "note"]
+        widgets = {"method": forms.Select(attrs={"data-census-method": ""})}
         labels = {"aliquot_ml": "Aliquot volume (mL)", "total_ml": "Total volume (mL)",
                   "total_mass_g": "Total wet mass (g)", "sample_mass_g": "Subsample mass (g)",
                   "sample_count": "Animals in subsample"}
+
+    # Each method's own inputs, shown in a fieldset of their own (templates/colonies/_census_fields.html);
+    # a small script shows only the chosen method's.
+    METHOD_FIELDS = {Census.Method.DIRECT: ("direct_count",),
+                     Census.Method.ALIQUOT: ("aliquot_counts_text", "aliquot_ml", "total_ml"),
+                     Census.Method.MASS: ("total_mass_g", "sample_mass_g", "sample_count")}
+
+    def method_fieldsets(self):
+        return [(value, label, [self[name] for name in self.METHOD_FIELDS[value]])
+                for value, label in Census.Method.choices]
 
     def clean_direct_count(self):
         return check_range("Direct count", self.cleaned_data.get("direct_count"), 0, MAX_COUNT, "animals")
@@ -328,7 +370,7 @@ class SpeciesForm(NamedErrorsMixin, forms.ModelForm):
         model = Species
         fields = ["common_name", "habitat", "check_interval_hours", "feeding_interval_days",
                   "water_change_interval_days", "water_change_fraction", "census_interval_days",
-                  "max_density_per_l", "reserve_min_animals", "notes"]
+                  "max_density_per_l", "reserve_min_animals", *SPECIES_DEFAULT_FIELDS, "notes"]
         labels = {"max_density_per_l": "Maximum density (animals/L)", "reserve_min_animals": "Reserve (animals)"}
 
 

@@ -12,8 +12,8 @@ from django.utils import timezone
 
 from . import growth, parameters, population, population_hooks
 from .growth import Point
-from .models import (CareTarget, Census, Check, Deviation, Feeding, Room, Species, Split, SplitPart, Tank,
-                     TankTarget, WaterChange)
+from .models import (CareTarget, Census, Check, DeadRemoval, Deviation, Feeding, Room, Species, Split, SplitPart,
+                     Tank, TankTarget, WaterChange)
 
 FIT_CACHE_SECONDS = 7 * 24 * 3600
 METHOD_LABELS = dict(Census.Method.choices)
@@ -61,11 +61,20 @@ def _with_moves_in(points: list[Point], moves: list[tuple]) -> list[Point]:
 
 
 def check_counts(tank_ids, start, end) -> dict[int, dict]:
-    """Per tank: dead removed, checks and checks with a flagged value over [start, end] (one query)."""
-    rows = (Check.objects.current().filter(tank_id__in=list(tank_ids), observed_at__gte=start, observed_at__lte=end)
-            .values("tank_id").annotate(dead=Sum("dead_removed"), checks=Count("id"),
-                                        flagged=Count("id", filter=~Q(flags={}))))
-    return {r["tank_id"]: r for r in rows}
+    """Per tank: dead removed, checks and checks with a flagged value over [start, end] (two queries).
+
+    `dead` is every death recorded in the period, each once: the counts at checks plus the dead-animal
+    removals outside the round (a removal is not a check, so it adds nothing to `checks`).
+    """
+    ids = list(tank_ids)
+    rows = {r["tank_id"]: r for r in (
+        Check.objects.current().filter(tank_id__in=ids, observed_at__gte=start, observed_at__lte=end)
+        .values("tank_id").annotate(dead=Sum("dead_removed"), checks=Count("id"), flagged=Count("id", filter=~Q(flags={}))))}
+    for tank_id, removed in (DeadRemoval.objects.current().filter(tank_id__in=ids, observed_at__gte=start, observed_at__lte=end)
+                             .values("tank_id").annotate(n=Sum("count")).values_list("tank_id", "n")):
+        row = rows.setdefault(tank_id, {"tank_id": tank_id, "dead": 0, "checks": 0, "flagged": 0})
+        row["dead"] = (row["dead"] or 0) + removed
+    return rows
 
 
 def started_at(tank: Tank) -> datetime:
@@ -133,6 +142,7 @@ def records_versions(tank_ids) -> dict[int, str]:
         v_feeding=_newest(Feeding.history, tank_id=pk),
         v_water=_newest(WaterChange.history, tank_id=pk),
         v_census=_newest(Census.history, tank_id=pk),
+        v_removal=_newest(DeadRemoval.history, tank_id=pk),
         v_split_out=_newest(Split.history, source_id=pk),
         v_split_in=_newest(Split.history, id__in=split_ids_in),
         v_part=_newest(SplitPart.history, destination_id=pk),
@@ -140,20 +150,21 @@ def records_versions(tank_ids) -> dict[int, str]:
         v_species=_newest(Species.history, id=OuterRef("species_id")),
         v_targets=_newest(CareTarget.history, species_id=OuterRef("species_id")),
         v_room=_newest(Room.history, id=OuterRef("room_id")),
-    ).values_list("pk", "v_tank", "v_check", "v_feeding", "v_water", "v_census", "v_split_out", "v_split_in",
+    ).values_list("pk", "v_tank", "v_check", "v_feeding", "v_water", "v_census", "v_removal", "v_split_out", "v_split_in",
                   "v_part", "v_override", "v_species", "v_targets", "v_room")
     return {row[0]: ".".join(str(v or 0) for v in row[1:]) for row in rows}
 
 
 # Every record type that the overview shows (its tanks, rooms, species and targets, censuses, splits,
-# checks and deviations). History rows are only ever added, so the newest history id of each is a
+# checks, dead-animal removals and deviations). History rows are only ever added, so the newest history id of each is a
 # version of the whole facility that changes with any save, correction or void.
-FACILITY_HISTORIES = (Tank, Room, Species, CareTarget, TankTarget, Census, Split, SplitPart, Check, Deviation)
+FACILITY_HISTORIES = (Tank, Room, Species, CareTarget, TankTarget, Census, Split, SplitPart, Check, DeadRemoval,
+                      Deviation)
 
 
 def facility_version() -> str:
     """The newest history id of each record type the overview shows: one indexed max() per
-    history table (ten small queries), whatever the number of tanks and records."""
+    history table (eleven small queries), whatever the number of tanks and records."""
     return ".".join(str(model.history.aggregate(v=Max("history_id"))["v"] or 0) for model in FACILITY_HISTORIES)
 
 
@@ -208,6 +219,10 @@ def tank_plot_rows(tank: Tank, start: datetime, end: datetime, now: datetime | N
                          "unit": p.unit, "value": c[key],
                          "target_low": target.low if target else None, "target_high": target.high if target else None,
                          "flagged": flag.get("side", "")})
+    for at, count in (tank.deadremoval_set.current().filter(observed_at__gte=start, observed_at__lt=end)
+                      .values_list("observed_at", "count")):
+        day = local(at).date()
+        dead_by_day[day] = dead_by_day.get(day, 0) + count
     for day, dead in sorted(dead_by_day.items()):
         rows.append({"series": "deaths", "at": timezone.make_aware(datetime.combine(day, time(12))), "value": dead,
                      "unit": "animals/day"})

@@ -1,7 +1,7 @@
 """Reading the change history (django-simple-history tables) for display."""
 from django.db.models import IntegerField, Q, Value
 
-from .models import Census, Check, Feeding, Split, SplitPart, WaterChange
+from .models import Census, Check, DeadRemoval, Feeding, Split, SplitPart, WaterChange
 
 FIELD_SKIP = {"flags", "history_id", "history_date", "history_change_reason", "history_type", "history_user"}
 TYPE_WORD = {"+": "created", "~": "changed", "-": "deleted"}
@@ -43,7 +43,8 @@ def _sources(tank) -> list[tuple[str, object]]:
         ("Tank", tank.history.all()),
         ("Tank target", tank.target_overrides.model.history.filter(tank_id=tank.pk)),
         *((label, model.history.filter(tank_id=tank.pk)) for model, label in (
-            (Check, "Check"), (Feeding, "Feeding"), (WaterChange, "Water change"), (Census, "Census"))),
+            (Check, "Check"), (Feeding, "Feeding"), (WaterChange, "Water change"), (Census, "Census"),
+            (DeadRemoval, "Dead removed"))),
         ("Split", Split.history.filter(Q(source_id=tank.pk) | Q(id__in=split_ids))),
         ("Split part", SplitPart.history.filter(Q(destination_id=tank.pk) | Q(split__source_id=tank.pk))),
     ]

@@ -8,7 +8,7 @@ from datetime import timedelta
 from functools import lru_cache
 
 from django.conf import settings
-from django.core.exceptions import PermissionDenied
+from django.core.exceptions import PermissionDenied, ValidationError
 from django.core.validators import MinValueValidator, MaxValueValidator, RegexValidator
 from django.db import models, transaction
 from django.db.models import Max, OuterRef, Q, Subquery, Value
@@ -22,7 +22,7 @@ from simple_history.models import HistoricalRecords
 from . import derived, parameters, schedules
 from .flags import Target
 from .validators import (MAX_TEXT, CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
-                         MAX_DENSITY_PER_L, MAX_INTERVAL_DAYS, MAX_TANK_VOLUME_L, DateRange, Range)
+                         MAX_DENSITY_PER_L, MAX_INTERVAL_DAYS, MAX_TANK_VOLUME_L, DateRange, Range, check_range)
 
 DEFAULT_CHECK_INTERVAL_HOURS = 24
 DEFAULT_FEEDING_INTERVAL_DAYS = 3
@@ -49,6 +49,23 @@ tank_code_validator = RegexValidator(
 class Habitat(models.TextChoices):
     FRESHWATER = parameters.FRESHWATER, "Freshwater"
     MARINE = parameters.MARINE, "Marine"
+
+
+class FeedingUnit(models.TextChoices):
+    """How a feeding is measured (Feeding.Unit; also the unit of a species' default feeding amount)."""
+
+    G = "g", "g"
+    MG = "mg", "mg"
+    ML = "mL", "mL"
+    PINCH = "pinch", "pinch"
+
+
+def feeding_amount_q(amount: str, unit: str) -> Q:
+    """Database condition: an amount within FEEDING_MAX for its unit (or no amount)."""
+    condition = Q(**{f"{amount}__isnull": True})
+    for name, most in FEEDING_MAX.items():
+        condition |= Q(**{unit: name, f"{amount}__gte": 0, f"{amount}__lte": most})
+    return condition
 
 
 # ---------------------------------------------------------------------------------------------
@@ -154,6 +171,21 @@ class Species(models.Model):
         default=0, validators=[Range("Reserve", 0, MAX_COUNT, "animals")],
         help_text="Animals that must stay in a culture and never be booked out.",
     )
+    # What the feeding and water-change forms offer for a tank that has no earlier entry of that kind
+    # (a tank's own last entry comes first). Lab settings: no published amounts exist for these cultures.
+    default_food = models.CharField(
+        max_length=80, blank=True,
+        help_text="Pre-filled on feeding forms for a tank with no feeding yet, e.g. liver paste.")
+    default_feeding_amount = models.FloatField(
+        null=True, blank=True, validators=[Range("Default feeding amount", 0, max(FEEDING_MAX.values()))],
+        help_text="Per tank and feeding, in the default unit; at most "
+                  + ", ".join(f"{v:g} {u}" for u, v in FEEDING_MAX.items()) + ".")
+    default_feeding_unit = models.CharField(max_length=8, choices=FeedingUnit.choices, default=FeedingUnit.G,
+                                            help_text="Unit of the default feeding amount.")
+    default_source_water = models.CharField(
+        max_length=80, blank=True,
+        help_text="Pre-filled on water-change forms for a tank with no water change yet, e.g. 1x planarian salts. "
+                  "The amount pre-filled is the water change fraction above.")
     notes = models.TextField(max_length=MAX_TEXT, blank=True, help_text="Care notes; say here where no published value exists.")
     sources = models.JSONField(
         default=dict, blank=True,
@@ -175,10 +207,25 @@ class Species(models.Model):
                 & (Q(max_density_per_l__isnull=True) | Q(max_density_per_l__lte=MAX_DENSITY_PER_L)),
                 name="species_schedule_plausible",
             ),
+            models.CheckConstraint(
+                condition=feeding_amount_q("default_feeding_amount", "default_feeding_unit"),
+                name="species_default_feeding_plausible",
+                violation_error_message="Default feeding amount: allowed per unit at most "
+                                        + ", ".join(f"{v:g} {u}" for u, v in FEEDING_MAX.items()) + ".",
+            ),
         ]
 
     def __str__(self):
         return f"{self.scientific_name} ({self.common_name})" if self.common_name else self.scientific_name
+
+    def clean(self):
+        super().clean()
+        amount, unit = self.default_feeding_amount, self.default_feeding_unit
+        if amount is not None and unit in FEEDING_MAX:
+            try:
+                check_range("Default feeding amount", amount, 0, FEEDING_MAX[unit], unit)
+            except ValidationError as error:
+                raise ValidationError({"default_feeding_amount": error.messages}) from None
 
     def get_absolute_url(self):
         return reverse("colonies:species-detail", args=[self.pk])
@@ -379,6 +426,11 @@ class Tank(models.Model):
 
     def relevant_parameters(self) -> tuple[parameters.Parameter, ...]:
         return self.species.relevant_parameters()
+
+    @property
+    def rack(self) -> str:
+        """The rack: the position's text before its first comma ("rack 2" of "rack 2, shelf B"), or ""."""
+        return self.position.split(",", 1)[0].strip()
 
     def due(self, now=None) -> list[dict]:
         """What is due on this tank, from the with_last_events() annotations (no query if annotated)."""
@@ -648,11 +700,7 @@ class Check(Readings, Recorded):
 
 
 class Feeding(Recorded):
-    class Unit(models.TextChoices):
-        G = "g", "g"
-        MG = "mg", "mg"
-        ML = "mL", "mL"
-        PINCH = "pinch", "pinch"
+    Unit = FeedingUnit
 
     food = models.CharField(max_length=80, help_text="e.g. sinking fish-food pellets, liver paste, spirulina.")
     amount = models.FloatField(validators=[Range("Amount", 0, max(FEEDING_MAX.values()))],
@@ -767,6 +815,35 @@ class Census(Recorded):
     def __str__(self):
         value = f"{self.estimate:.0f}" if self.estimate is not None else "?"
         return f"Census of {self.tank}: {value} animals"
+
+    def get_absolute_url(self):
+        return self.tank.get_absolute_url()
+
+
+class DeadRemoval(Recorded):
+    """Dead animals taken out of a tank outside the daily round (the round's own count is Check.dead_removed).
+
+    A record of its own, not a check: a removal is not a check done (round progress, missed checks and
+    the share of flagged checks count checks only). Mortality reads both kinds, each death once: per
+    1,000 animal-days (colonies.health_series.check_counts) and the mortality rule (colonies.deviations).
+    """
+
+    count = models.PositiveIntegerField(validators=[Range("Dead removed", 1, MAX_COUNT, "animals")],
+                                        help_text="Dead animals removed.")
+    history = HistoricalRecords()
+
+    class Meta(Recorded.Meta):
+        verbose_name = "dead-animal removal"
+        indexes = [
+            # The tank page's recent removals, the mortality rule's window and the deaths in a mortality period.
+            models.Index(fields=["tank", "-observed_at"], name="removal_tank_recent"),
+        ]
+        constraints = [
+            models.CheckConstraint(condition=Q(count__gte=1, count__lte=MAX_COUNT), name="removal_count_plausible"),
+        ]
+
+    def __str__(self):
+        return f"{self.count} dead removed from {self.tank}"
 
     def get_absolute_url(self):
         return self.tank.get_absolute_url()

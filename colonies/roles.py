@@ -91,16 +91,19 @@ ROLE_PERMISSIONS: dict[str, list[str]] = {
         *_perms("colonies", "view add change", "room", "tank", "tanktarget", "species", "caretarget"),
         *_perms("experiments", "view add change", "protocol", "allowance"),
         # records: read here, entered and corrected in the app
-        *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "split", "splitpart", "deviation"),
+        *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "deadremoval", "split", "splitpart",
+                "deviation"),
         *_perms("experiments", "view", "booking", "cohort", "study", "trial", "override", "attachment"),
     ],
 }
 
 
-def sync_role_groups(group_model, permission_model) -> None:
+def sync_role_groups(group_model, permission_model, *, skip_missing: bool = False) -> None:
     """Create the role groups if missing and give each exactly its declared permissions.
 
-    Takes the models as arguments so a migration can pass its historical ones.
+    Takes the models as arguments so a migration can pass its historical ones. `skip_missing`: leave out
+    permissions of models that a migration's state does not have yet (a model added later); the sync
+    after every migrate (ColoniesConfig.ready) grants them.
     """
     for role, names in ROLE_PERMISSIONS.items():
         group, _ = group_model.objects.get_or_create(name=role)
@@ -108,6 +111,8 @@ def sync_role_groups(group_model, permission_model) -> None:
         for name in names:
             app_label, codename = name.split(".")
             perm = permission_model.objects.filter(content_type__app_label=app_label, codename=codename).first()
+            if perm is None and skip_missing:
+                continue
             if perm is None:
                 raise LookupError(f"Role {role}: permission {name} does not exist (a model renamed?).")
             wanted.append(perm)

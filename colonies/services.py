@@ -9,7 +9,7 @@ from simple_history.utils import bulk_create_with_history
 
 from . import deviations, parameters, population
 from .flags import flags_for
-from .models import Census, Check, Feeding, Split, SplitPart, Tank, WaterChange
+from .models import Census, Check, DeadRemoval, Feeding, Split, SplitPart, Tank, WaterChange
 from .validators import check_moment
 
 OBSERVATION_FIELDS = ("activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "note",
@@ -117,6 +117,35 @@ def record_feeding(*, user, feeding: Feeding) -> Feeding:
 @transaction.atomic
 def record_water_change(*, user, change: WaterChange) -> WaterChange:
     return _save_simple(change, user=user, reason="Water change logged")
+
+
+# The history's reason for a record saved from the many-tanks screen (colonies/batch_views.py).
+BATCH_REASONS = {Feeding: "Feeding logged for several tanks", WaterChange: "Water change logged for several tanks",
+                 DeadRemoval: "Dead animals removed (outside the round)"}
+
+
+@transaction.atomic
+def record_batch(*, user, records: list) -> list:
+    """Save records of one kind (feedings, water changes or dead-animal removals), one per tank, all or none.
+
+    Two inserts whatever the number of tanks (the records, then their history rows, as the round does),
+    then what a single entry of the kind sets off: for removals the mortality rule (feedings and water
+    changes set off no rule when saved; the hourly scan reads their times). `records` are built from
+    validated forms; who and when they were entered is set here, by the server.
+    """
+    if not records:
+        return []
+    model = type(records[0])
+    if any(type(r) is not model for r in records):
+        raise ValueError("A batch holds one kind of record.")
+    now = timezone.now()
+    for record in records:
+        record.recorded_by, record.recorded_at = user, now
+    saved = bulk_create_with_history(records, model, default_user=user, default_change_reason=BATCH_REASONS[model],
+                                     default_date=now)
+    if model is DeadRemoval:
+        deviations.evaluate_removals(saved)
+    return saved
 
 
 MAX_ESTIMATE = 1e8  # animals; beyond this a census is a unit mistake (mg typed as g), not a culture

@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import deviation_views, health_views, views
+from . import batch_views, deviation_views, health_views, views
 
 app_name = "colonies"
 
@@ -9,6 +9,7 @@ urlpatterns = [
     path("round/", views.round_view, name="round"),
     path("round/sw.js", views.round_service_worker, name="round-sw"),
     path("round/<slug:room_code>/", views.round_view, name="round-room"),
+    path("husbandry/<slug:kind>/", batch_views.batch_entry, name="batch"),
     path("tanks/", views.tank_list, name="tank-list"),
     path("tanks/labels/", views.tank_labels, name="tank-labels"),
     path("tanks/<str:code>/", views.tank_detail, name="tank-detail"),

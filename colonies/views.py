@@ -16,20 +16,21 @@ from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import check_export, derived, due_readings, health_forms, health_series, parameters, round_rows, services
+from . import batch, check_export, derived, due_readings, health_forms, health_series, parameters, prefill, round_rows, services
 from . import labels as labels_module
 from .filters import CheckFilter, TankFilter
 from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
 from .history import history_index, page_entries
-from .models import Census, Check, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange
+from .models import Census, Check, DeadRemoval, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, can_record_husbandry, role_required
 
 READ_ROLES = (TECHNICIAN, RESEARCHER)
-VOIDABLE = {"check": Check, "feeding": Feeding, "water-change": WaterChange, "census": Census}
+VOIDABLE = {"check": Check, "feeding": Feeding, "water-change": WaterChange, "census": Census,
+            "dead-removed": DeadRemoval}
 
 
 def _get_tank(code: str) -> Tank:
@@ -220,7 +221,8 @@ def _row_posted(data, code: str) -> bool:
 def tank_list(request):
     tank_filter = TankFilter(request.GET, queryset=Tank.objects.select_related("room", "species").with_last_check())
     tanks = tank_filter.qs
-    return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tanks, "rows": _tank_rows(tanks)})
+    return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tanks, "rows": _tank_rows(tanks),
+                                                       "batch_links": [(k.slug, k.title) for k in batch.KINDS.values()]})
 
 
 TANK_ROW = ('<tr><td><a href="{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td><span class="pill {}">{}</span></td>'
@@ -252,6 +254,8 @@ def _tank_page_ctx(request, tank, **forms):
     summary = health_series.tank_summary(tank)  # population, growth, forecast, mortality, splits: fixed queries
     split_form, part_forms = health_forms.split_forms(tank, latest=summary.latest.value if summary.latest else None)
     checks = list(tank.check_set.current().select_related("recorded_by")[:30])
+    feedings = list(tank.feeding_set.current().select_related("recorded_by")[:10])
+    water_changes = list(tank.waterchange_set.current().select_related("recorded_by")[:10])
     params = tank.relevant_parameters()
     columns = params + derived.for_habitat(tank.species.habitat)
     targets = tank_with.care_targets()  # prefetched by for_round(): no extra queries
@@ -269,13 +273,17 @@ def _tank_page_ctx(request, tank, **forms):
         "targets": [(p, targets.get(p.key)) for p in columns],
         "deviations": tank.deviations.unresolved().select_related("tank").order_by("-severity", "-last_seen_at"),
         "rows": rows,
-        "feedings": tank.feeding_set.current().select_related("recorded_by")[:10],
-        "water_changes": tank.waterchange_set.current().select_related("recorded_by")[:10],
+        "feedings": feedings,
+        "water_changes": water_changes,
         "censuses": tank.census_set.current().select_related("recorded_by")[:10],
+        "removals": tank.deadremoval_set.current().select_related("recorded_by")[:10],
         "check_form": forms.get("check_form") or CheckEntryForm(tank=tank_with, prefix="check"),
-        "feeding_form": forms.get("feeding_form") or FeedingForm(prefix="feeding"),
-        "water_form": forms.get("water_form") or WaterChangeForm(prefix="water"),
+        "feeding_form": forms.get("feeding_form") or _prefilled(FeedingForm(prefix="feeding"), prefill.feeding(
+            tank.species, feedings[0] if feedings else None), "feeding", "food"),
+        "water_form": forms.get("water_form") or _prefilled(WaterChangeForm(prefix="water"), prefill.water_change(
+            tank.species, water_changes[0] if water_changes else None), "water change", "percent"),
         "census_form": forms.get("census_form") or CensusForm(prefix="census"),
+        "batch_links": [(k.slug, k.title) for k in batch.KINDS.values()],
         "parents": tank.founded_from.all(),
         "offspring": tank.offspring.all(),
         "summary": summary,
@@ -283,6 +291,13 @@ def _tank_page_ctx(request, tank, **forms):
         "part_forms": forms.get("part_forms") or part_forms,
     }
     return ctx
+
+
+def _prefilled(form, offer: prefill.Prefill, what: str, first_field: str):
+    """The form with the offered values, and where they come from as the first field's help."""
+    form.initial.update(offer.values)
+    form.fields[first_field].help_text = f"Pre-filled {offer.text(what)}." if offer.source else ""
+    return form
 
 
 @require_GET

@@ -23,6 +23,9 @@ PAGES = [  # (file stem, path)
     ("round-fw-1", "/round/fw-1/"),
     ("round-all", "/round/"),
     ("tank-LV-03", "/tanks/LV-03/"),
+    ("feeding-fw-1", "/husbandry/feeding/?room=fw-1"),
+    ("water-changes-due", "/husbandry/water-change/?due=1"),
+    ("dead-removed-pl-1", "/husbandry/dead-removed/?room=pl-1"),
 ]
 
 

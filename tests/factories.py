@@ -83,7 +83,9 @@ def species_edit_data(species: Species, *, reason: str = "Reviewed against the S
     data = {name: getattr(species, name) for name in (
         "common_name", "habitat", "check_interval_hours", "feeding_interval_days", "water_change_interval_days",
         "water_change_fraction", "census_interval_days", "reserve_min_animals", "notes")}
-    data["max_density_per_l"] = species.max_density_per_l if species.max_density_per_l is not None else ""
+    data.update({name: getattr(species, name) for name in ("default_food", "default_feeding_unit", "default_source_water")})
+    for name in ("max_density_per_l", "default_feeding_amount"):
+        data[name] = getattr(species, name) if getattr(species, name) is not None else ""
     data.update(changes)
     targets = list(species.targets.all())
     data.update({"targets-TOTAL_FORMS": len(targets) + len(new_targets), "targets-INITIAL_FORMS": len(targets),

@@ -25,8 +25,8 @@ from django.utils import timezone
 from hypothesis import HealthCheck, given, settings as hypothesis_settings, strategies as st
 
 from colonies import validators
-from colonies.models import (Census, CareTarget, Check, Feeding, Room, Species, Split, SplitPart, Tank, TankTarget,
-                             WaterChange)
+from colonies.models import (Census, CareTarget, Check, DeadRemoval, Feeding, Room, Species, Split, SplitPart, Tank,
+                             TankTarget, WaterChange)
 from colonies.services import SPLIT_BOOKS_TOLERANCE
 from experiments.models import Allowance, Booking, Cohort, Protocol, Study, Trial
 from experiments import services as trial_services
@@ -78,11 +78,12 @@ def _minute_floor(dt):
 def assert_everything_stored_is_within_bounds() -> None:
     now = timezone.now()
     latest = now + validators.FUTURE_LEEWAY
-    for model in (Species, CareTarget, Room, Tank, TankTarget, Check, Feeding, WaterChange, Census, Split, SplitPart,
+    for model in (Species, CareTarget, Room, Tank, TankTarget, Check, Feeding, WaterChange, Census, DeadRemoval,
+                  Split, SplitPart,
                   Protocol, Allowance, Booking, Cohort, Study, Trial):
         for obj in model._default_manager.all():
             obj.full_clean(validate_unique=False)  # field validators and check constraints of the model
-    for model in (Check, Feeding, WaterChange, Census):
+    for model in (Check, Feeding, WaterChange, Census, DeadRemoval):
         for record_ in model._default_manager.select_related("tank"):
             assert validators.start_of(record_.tank.started_on) <= record_.observed_at <= latest, record_
     for change in WaterChange.objects.select_related("tank").filter(litres__isnull=False):
@@ -158,14 +159,18 @@ def _tank_add(kind, prefix, valid: dict, kinds: dict):
 case_check = _tank_add("check", "check", {**READINGS, **OBSERVATIONS},
                        {**{k: "number" for k in READINGS}, "dead_removed": "number", "note": "text",
                         "corrective_action": "text"})
-case_feeding = _tank_add("feeding", "feeding", {"food": "pellets", "amount": "0.5", "unit": "g", "note": ""},
-                         {"food": "text", "amount": "number", "note": "text"})
+case_feeding = _tank_add("feeding", "feeding", {"food": "pellets", "amount": "0.5", "unit": "g", "note": "",
+                                                "observed_at": ""},
+                         {"food": "text", "amount": "number", "note": "text", "observed_at": "moment"})
 case_feeding_mg = _tank_add("feeding", "feeding", {"food": "spirulina", "amount": "20", "unit": "mg", "note": ""},
                             {"amount": "number", "unit": "text"})
-case_water = _tank_add("water-change", "water", {"percent": "30", "litres": "", "source_water": "aged", "note": ""},
-                       {"percent": "number", "litres": "number", "source_water": "text", "note": "text"})
-case_census_direct = _tank_add("census", "census", {"method": "direct", "direct_count": "120", "note": ""},
-                               {"direct_count": "number", "note": "text"})
+case_water = _tank_add("water-change", "water", {"percent": "30", "litres": "", "source_water": "aged", "note": "",
+                                                  "observed_at": ""},
+                       {"percent": "number", "litres": "number", "source_water": "text", "note": "text",
+                        "observed_at": "moment"})
+case_census_direct = _tank_add("census", "census", {"method": "direct", "direct_count": "120", "note": "",
+                                                    "observed_at": ""},
+                               {"direct_count": "number", "note": "text", "observed_at": "moment"})
 case_census_aliquot = _tank_add(
     "census", "census", {"method": "aliquot", "aliquot_counts_text": "31, 27, 35", "aliquot_ml": "1",
                          "total_ml": "500"},
@@ -173,6 +178,30 @@ case_census_aliquot = _tank_add(
 case_census_mass = _tank_add(
     "census", "census", {"method": "mass", "total_mass_g": "5", "sample_mass_g": "0.5", "sample_count": "40"},
     {"total_mass_g": "number", "sample_mass_g": "number", "sample_count": "number"})
+
+
+def _batch(kind, valid: dict, kinds: dict):
+    """The many-tanks screen: two tanks of one room, the second row carrying the generated value."""
+    def build(users):
+        room = make_room(code=f"bi-batch-{next(_unique)}")
+        codes = [_old_tank(code=f"BI-{kind[:2].upper()}{i}", room=room).code for i in (1, 2)]
+
+        def baseline():
+            data = {"tanks": ",".join(codes), "batch-observed_at": ""}
+            for code in codes:
+                data.update({f"{code}-{k}": v for k, v in valid.items()})
+            return data
+        fields = {f"{codes[1]}-{k}": v for k, v in kinds.items()} | {"batch-observed_at": "moment"}
+        return Case(reverse("colonies:batch", args=[kind]) + f"?room={room.code}", users["technician"], baseline,
+                    fields)
+    return build
+
+
+case_batch_feeding = _batch("feeding", {"record": "on", "food": "pellets", "amount": "0.5", "unit": "g", "note": ""},
+                            {"food": "text", "amount": "number", "unit": "text", "note": "text"})
+case_batch_water = _batch("water-change", {"record": "on", "percent": "30", "litres": "", "source_water": "aged"},
+                          {"percent": "number", "litres": "number", "source_water": "text"})
+case_batch_dead = _batch("dead-removed", {"count": "3", "note": ""}, {"count": "number", "note": "text"})
 
 
 def case_split(users):
@@ -214,6 +243,8 @@ def case_species_edit(users):
     fields = {"check_interval_hours": "number", "feeding_interval_days": "number",
               "water_change_interval_days": "number", "water_change_fraction": "number",
               "census_interval_days": "number", "max_density_per_l": "number", "reserve_min_animals": "number",
+              "default_feeding_amount": "number", "default_feeding_unit": "text", "default_food": "text",
+              "default_source_water": "text",
               "common_name": "text", "notes": "text", "targets-0-low": "number", "targets-0-high": "number",
               "targets-1-low": "number", "targets-1-high": "number", "targets-0-source": "text"}
     return Case(reverse("colonies:species-edit", args=[species.pk]), users["manager"], baseline, fields)
@@ -240,10 +271,13 @@ def case_admin_species(users):
                 "check_interval_hours": "24", "feeding_interval_days": "3", "water_change_interval_days": "7",
                 "water_change_fraction": "0.5", "census_interval_days": "14", "max_density_per_l": "",
                 "reserve_min_animals": "0", "notes": "", "sources": "{}", "change_reason": "new profile",
+                "default_food": "pellets", "default_feeding_amount": "0.5", "default_feeding_unit": "g",
+                "default_source_water": "",
                 **_inline("targets", [{"parameter": "ph", "low": "6", "high": "8", "source": "lab"},
                                       {"parameter": "do_pct_sat", "low": "30", "high": "", "source": "lab"}])}
     fields = {"check_interval_hours": "number", "feeding_interval_days": "number", "water_change_fraction": "number",
               "census_interval_days": "number", "max_density_per_l": "number", "reserve_min_animals": "number",
+              "default_feeding_amount": "number", "default_feeding_unit": "text",
               "targets-0-low": "number", "targets-0-high": "number", "targets-1-low": "number",
               "targets-1-high": "number", "scientific_name": "text"}
     return Case(reverse("admin:colonies_species_add"), users["superuser"], baseline, fields)

@@ -115,6 +115,7 @@ def build_cases() -> list[Case]:
     run, fields = _round_post(tech, reverse("colonies:round"), tanks, as_json=True)
     cases.append(Case(f"Round save, all rooms ({len(tanks)} tanks)", TECHNICIAN, run, rollback=True, expect=(302,),
                       notes=f"{fields} fields (rows as one JSON field, as the page script sends); rolled back"))
+    cases += _batch_cases(tech, tanks)
     plot_tank = reverse("colonies:tank-plot", args=[tank.code])
     cases += [
         Case("Tank list", TECHNICIAN, _get(tech, reverse("colonies:tank-list"))),
@@ -149,6 +150,25 @@ def build_cases() -> list[Case]:
              notes="generic reference"),
     ]
     return cases
+
+
+def _batch_cases(tech, tanks) -> list[Case]:
+    """The many-tanks screen: the facility's feedings on one page, and saving all of them (rows as one JSON
+    field, as the page script sends them)."""
+    url = reverse("colonies:batch", args=["feeding"])
+    rows = {}
+    for t in tanks:
+        rows.update({f"{t.code}-record": True, f"{t.code}-food": "sinking fish-food pellets",
+                     f"{t.code}-amount": "0.05", f"{t.code}-unit": "g"})
+    data = {"tanks": ",".join(t.code for t in tanks), "batch-observed_at": "", ROWS_FIELD: json.dumps(rows)}
+
+    def save():
+        facts = consume(tech.post(url, data))
+        facts["fields"] = len(data)
+        return facts
+    return [Case(f"Many tanks: feeding, all rooms ({len(tanks)} tanks)", TECHNICIAN, _get(tech, url)),
+            Case(f"Many tanks save: feeding, all rooms ({len(tanks)} tanks)", TECHNICIAN, save, rollback=True,
+                 expect=(302,), notes=f"{len(data)} fields (rows as one JSON field); rolled back")]
 
 
 def _xlsx(client, n_checks):

@@ -15,7 +15,8 @@ def forwards(apps, schema_editor):
         app_config.models_module = True
         create_permissions(app_config, apps=apps, verbosity=0)
         app_config.models_module = None
-    sync_role_groups(apps.get_model("auth", "Group"), apps.get_model("auth", "Permission"))
+    # Models added by later migrations do not exist here yet; their permissions come with the sync after migrate.
+    sync_role_groups(apps.get_model("auth", "Group"), apps.get_model("auth", "Permission"), skip_missing=True)
 
 
 class Migration(migrations.Migration):

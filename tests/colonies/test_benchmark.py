@@ -14,7 +14,7 @@ from colonies.models import Check, Deviation, Tank
 # Every measurement the brief for the benchmark lists, by the start of its name.
 EXPECTED = [
     "Floor: species list", "Today", "Round, all rooms", "Round, one room", "Round save, one room", "Round save, 20 tanks from all rooms",
-    "Round save, all rooms", "Tank list", "Tank page", "Tank history", "Colony-health overview",
+    "Round save, all rooms", "Many tanks: feeding, all rooms", "Many tanks save: feeding, all rooms", "Tank list", "Tank page", "Tank history", "Colony-health overview",
     "Overview figure, first", "Overview figure, cached", "Tank figure (LV-01), first", "Tank figure (LV-01), cached",
     "Labels, all tanks", "Deviation register", "Exposure ledger", "Export: checks CSV", "Export: checks XLSX",
     "Export: deviations CSV", "Export: ledger CSV", "Export: overview health CSV", "Export: tank health CSV",

@@ -17,8 +17,8 @@ from django.urls import reverse
 
 from colonies import services
 from colonies.idempotency import ALREADY_SAVED, SUBMISSION_FIELD
-from colonies.models import (CareTarget, Census, Check, Deviation, Feeding, Species, Split, SplitPart, Submission,
-                             Tank, WaterChange)
+from colonies.models import (CareTarget, Census, Check, DeadRemoval, Deviation, Feeding, Species, Split, SplitPart,
+                             Submission, Tank, WaterChange)
 from tests.factories import make_check, make_room, make_species, make_tank, page_text, round_data, species_edit_data
 
 
@@ -53,6 +53,15 @@ FORMS = {
     "census": ("technician", lambda w: reverse("colonies:tank-add", args=["A-01", "census"]),
                lambda w: {"census-method": "direct", "census-direct_count": "180"}, True),
     "split": ("technician", lambda w: reverse("colonies:tank-split", args=["A-01"]), _split_data, True),
+    "batch-feeding": ("technician", lambda w: reverse("colonies:batch", args=["feeding"]) + "?room=wet-1",
+                      lambda w: {"tanks": "A-01,A-02", "A-01-record": "on", "A-01-food": "pellets", "A-01-amount": "0.05",
+                                 "A-01-unit": "g", "A-02-record": "on", "A-02-food": "pellets", "A-02-amount": "0.04",
+                                 "A-02-unit": "g"}, True),
+    "batch-water-change": ("technician", lambda w: reverse("colonies:batch", args=["water-change"]),
+                           lambda w: {"tanks": "A-01,A-02", "A-01-record": "on", "A-01-percent": "30",
+                                      "A-02-record": "on", "A-02-litres": "1"}, True),
+    "batch-dead-removed": ("technician", lambda w: reverse("colonies:batch", args=["dead-removed"]),
+                           lambda w: {"tanks": "A-01,A-02", "A-01-count": "2", "A-02-count": "1"}, True),
     "check-edit": ("technician", lambda w: reverse("colonies:check-edit", args=[w.plain.pk]),
                    lambda w: {"check-temp_c": "23", "reason": "Misread the thermometer"}, True),
     "void": ("technician", lambda w: reverse("colonies:void", args=["check", w.plain.pk]),
@@ -71,8 +80,8 @@ REPEATABLE = [name for name, (*_, again) in FORMS.items() if again]
 
 def _state():
     """Every saved change leaves a history row; this counts them all."""
-    return tuple(m.history.count() for m in (Check, Feeding, WaterChange, Census, Split, SplitPart, Deviation, Species,
-                                             CareTarget, Tank))
+    return tuple(m.history.count() for m in (Check, Feeding, WaterChange, Census, DeadRemoval, Split, SplitPart,
+                                             Deviation, Species, CareTarget, Tank))
 
 
 def _post(client, w, name, key):
@@ -228,6 +237,7 @@ PAGES = {
     "colonies:round-room": (lambda w: reverse("colonies:round-room", args=["wet-1"]), 1),
     "colonies:tank-detail": (lambda w: w.tank.get_absolute_url(), 5),
     "colonies:check-edit": (lambda w: reverse("colonies:check-edit", args=[w.plain.pk]), 1),
+    "colonies:batch": (lambda w: reverse("colonies:batch", args=["feeding"]) + "?room=wet-1", 1),
     "colonies:void": (lambda w: reverse("colonies:void", args=["check", w.plain.pk]), 1),
     "colonies:split-void": (lambda w: reverse("colonies:split-void", args=[w.split.pk]), 1),
     "colonies:species-edit": (lambda w: reverse("colonies:species-edit", args=[w.species.pk]), 1),

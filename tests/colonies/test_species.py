@@ -148,3 +148,48 @@ def test_a_plan_keeps_no_stray_day_or_weekday(client, manager, species):
                                                        "weekday": 3}]))
     plan = species.measurement_plans.get()
     assert (plan.cadence, plan.every_days, plan.weekday) == ("daily", None, None)
+
+
+# ---------------------------------------------------------------------------------------------
+# Husbandry defaults (pre-filled on the feeding and water-change forms of a tank with no entry yet)
+# ---------------------------------------------------------------------------------------------
+def test_manager_sets_the_feeding_and_water_defaults_and_the_profile_shows_them(client, manager, species):
+    client.force_login(manager)
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]), species_edit_data(
+        species, default_food="liver paste", default_feeding_amount="0.3", default_feeding_unit="mL",
+        default_source_water="1x planarian salts"))
+    assert response.status_code == 302
+    species.refresh_from_db()
+    assert (species.default_food, species.default_feeding_amount, species.default_feeding_unit,
+            species.default_source_water) == ("liver paste", 0.3, "mL", "1x planarian salts")
+    assert species.history.first().history_change_reason == "Reviewed against the SOP"
+    text = page_text(client.get(species.get_absolute_url()))
+    assert "0.3 mL liver paste" in text and "1x planarian salts" in text
+
+
+@pytest.mark.parametrize("amount,unit,message", [
+    ("2000", "g", "Default feeding amount: 2000 g is impossible; allowed range 0 to 1000 g."),
+    ("101", "pinch", "Default feeding amount: 101 pinch is impossible; allowed range 0 to 100 pinch."),
+    ("-1", "mg", "Default feeding amount: -1 is impossible; allowed range 0 to 1000000."),
+])
+def test_an_impossible_default_amount_for_its_unit_is_refused(client, manager, species, amount, unit, message):
+    client.force_login(manager)
+    response = client.post(reverse("colonies:species-edit", args=[species.pk]), species_edit_data(
+        species, default_food="pellets", default_feeding_amount=amount, default_feeding_unit=unit))
+    assert response.status_code == 400
+    assert message in page_text(response)
+    species.refresh_from_db()
+    assert species.default_feeding_amount is None
+
+
+def test_the_database_refuses_a_default_amount_above_its_units_maximum(species):
+    from django.db import IntegrityError, transaction
+    with pytest.raises(IntegrityError), transaction.atomic():
+        Species.objects.filter(pk=species.pk).update(default_feeding_amount=150, default_feeding_unit="pinch")
+
+
+def test_the_back_office_species_form_has_the_defaults(client, superuser, species):
+    client.force_login(superuser)
+    text = page_text(client.get(reverse("admin:colonies_species_change", args=[species.pk])))
+    for name in ("default_food", "default_feeding_amount", "default_feeding_unit", "default_source_water"):
+        assert f'name="{name}"' in text

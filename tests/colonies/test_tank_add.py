@@ -1,7 +1,12 @@
 """Recording on the tank page: a check, a feeding, a water change, a census."""
+import re
+from datetime import timedelta
+
 import pytest
 from django.urls import reverse
+from django.utils import timezone
 
+from colonies import validators
 from colonies.models import Census, Check, Feeding, Tank, WaterChange
 from tests.factories import make_species, make_tank, page_text
 
@@ -211,3 +216,108 @@ def test_absurd_dead_count_is_rejected_not_a_server_error(client, technician, ta
     assert response.status_code == 400
     assert "dead removed: 99999999999999999999 is impossible; allowed range 0 to 1,000,000." in page_text(response)
     assert Check.objects.count() == 0
+
+
+# ---------------------------------------------------------------------------------------------
+# Observed time: now by default, back-dating within the tank's life, shown as a late entry
+# ---------------------------------------------------------------------------------------------
+@pytest.fixture
+def old_tank(db):
+    return make_tank(code="FW-02", volume_l=2.0, started_on=timezone.localdate() - timedelta(days=30))
+
+
+@pytest.mark.parametrize("kind,prefix,data,model", [
+    ("feeding", "feeding", {"food": "pellets", "amount": "0.05", "unit": "g"}, Feeding),
+    ("water-change", "water", {"percent": "50"}, WaterChange),
+    ("census", "census", {"method": "direct", "direct_count": "120"}, Census),
+])
+def test_an_entry_without_a_time_is_observed_now_and_a_back_dated_one_at_its_time(client, technician, old_tank, kind,
+                                                                                    prefix, data, model):
+    client.force_login(technician)
+    posted = {f"{prefix}-{k}": v for k, v in data.items()}
+    assert _add(client, old_tank, kind, {**posted, f"{prefix}-observed_at": ""}).status_code == 302
+    now_record = model.objects.get()
+    assert abs(now_record.observed_at - timezone.now()) < timedelta(minutes=1) and not now_record.is_late_entry
+
+    when = timezone.localtime() - timedelta(days=2)
+    assert _add(client, old_tank, kind, {**posted, f"{prefix}-observed_at": when.strftime("%Y-%m-%dT%H:%M")}
+                ).status_code == 302
+    late = model.objects.exclude(pk=now_record.pk).get()
+    assert late.observed_at == when.replace(second=0, microsecond=0) and late.is_late_entry
+    assert abs(late.recorded_at - timezone.now()) < timedelta(minutes=1)  # entered now, by the server's clock
+    page = page_text(client.get(old_tank.get_absolute_url()))
+    assert page.count('late entry</span>') == 1
+
+
+@pytest.mark.parametrize("shift,expected", [(timedelta(days=-31), "is impossible"), (timedelta(hours=1), "is in the future")])
+def test_an_entry_time_before_the_tank_or_in_the_future_is_refused(client, technician, old_tank, shift, expected):
+    client.force_login(technician)
+    when = timezone.localtime() + shift
+    response = _add(client, old_tank, "feeding", {"feeding-food": "pellets", "feeding-amount": "0.05",
+                                                  "feeding-unit": "g",
+                                                  "feeding-observed_at": when.strftime("%Y-%m-%dT%H:%M")})
+    assert response.status_code == 400
+    start = timezone.localtime(validators.start_of(old_tank.started_on))
+    assert (f"Observed at: {when:%Y-%m-%d %H:%M} {expected}; allowed range {start:%Y-%m-%d %H:%M} (when tank FW-02 "
+            f"was started) to") in page_text(response)
+    assert not Feeding.objects.exists()
+
+
+def test_the_forms_time_inputs_start_empty_not_at_the_moment_the_page_was_drawn(client, technician, tank):
+    client.force_login(technician)
+    text = page_text(client.get(tank.get_absolute_url()))
+    for prefix in ("feeding", "water", "census"):
+        assert f'<input type="datetime-local" name="{prefix}-observed_at"' in text
+        assert not re.search(rf'name="{prefix}-observed_at" value=', text)
+
+
+# ---------------------------------------------------------------------------------------------
+# Pre-filled food, amount and source water
+# ---------------------------------------------------------------------------------------------
+def test_feeding_and_water_forms_start_from_the_species_defaults_then_the_last_entry(client, technician):
+    species = make_species(default_food="liver paste", default_feeding_amount=0.3, default_feeding_unit="mL",
+                           default_source_water="1x salts", water_change_fraction=1.0)
+    tank = make_tank(code="FW-03", species=species)
+    client.force_login(technician)
+    page = client.get(tank.get_absolute_url())
+    feeding, water = page.context["feeding_form"], page.context["water_form"]
+    assert (feeding["food"].value(), feeding["amount"].value(), feeding["unit"].value()) == ("liver paste", "0.3", "mL")
+    assert (water["percent"].value(), water["source_water"].value()) == ("100", "1x salts")
+    assert "Pre-filled from the species' defaults." in page_text(page)
+
+    _add(client, tank, "feeding", {"feeding-food": "bloodworm", "feeding-amount": "0.5", "feeding-unit": "g"})
+    _add(client, tank, "water-change", {"water-litres": "1.5", "water-source_water": "aged tap water"})
+    page = client.get(tank.get_absolute_url())
+    feeding, water = page.context["feeding_form"], page.context["water_form"]
+    assert (feeding["food"].value(), feeding["amount"].value(), feeding["unit"].value()) == ("bloodworm", "0.5", "g")
+    assert (water["percent"].value(), water["litres"].value(), water["source_water"].value()) == (
+        None, "1.5", "aged tap water")
+    assert "Pre-filled from the last feeding" in page_text(page)
+
+
+def test_a_tank_with_no_entry_and_no_species_default_offers_an_empty_feeding(client, technician, tank):
+    client.force_login(technician)
+    feeding = client.get(tank.get_absolute_url()).context["feeding_form"]
+    assert (feeding["food"].value(), feeding["amount"].value()) == (None, None)
+
+
+# ---------------------------------------------------------------------------------------------
+# Census: one fieldset per method
+# ---------------------------------------------------------------------------------------------
+def test_census_form_groups_each_methods_fields_in_its_own_fieldset(client, technician, tank):
+    client.force_login(technician)
+    text = page_text(client.get(tank.get_absolute_url()))
+    sets = dict(re.findall(r'<fieldset class="census-method" data-method="(\w+)">(.*?)</fieldset>', text, re.S))
+    names = {method: set(re.findall(r'name="census-(\w+)"', body)) for method, body in sets.items()}
+    assert names == {"direct": {"direct_count"}, "aliquot": {"aliquot_counts_text", "aliquot_ml", "total_ml"},
+                     "mass": {"total_mass_g", "sample_mass_g", "sample_count"}}
+    assert "data-census-method" in text and "js/census_form.js" in text
+    assert "Aliquot volume (mL)" in text and "Animals in subsample" in text
+
+
+def test_census_validation_is_unchanged_a_missing_methods_value_is_refused(client, technician, tank):
+    client.force_login(technician)
+    response = _add(client, tank, "census", {"census-method": "aliquot", "census-direct_count": "120"})
+    assert response.status_code == 400
+    assert "Aliquot counts: enter the counts, the aliquot volume and the total volume." in page_text(response)
+    assert not Census.objects.exists()

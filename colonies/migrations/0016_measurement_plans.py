@@ -10,7 +10,7 @@ from django.db import migrations, models
 class Migration(migrations.Migration):
 
     dependencies = [
-        ('colonies', '0014_check_export_index'),
+        ('colonies', '0015_husbandry_defaults_and_dead_removals'),
         migrations.swappable_dependency(settings.AUTH_USER_MODEL),
     ]
 
