@@ -1,5 +1,14 @@
-"""Helpers for files people open in spreadsheets (every CSV and XLSX export goes through them)."""
+"""Helpers for files people open in spreadsheets (every CSV and XLSX export goes through them).
+
+Every export streams: rows are built a chunk at a time and sent as they are made (`csv_text`,
+`csv_response`), so memory does not grow with the number of rows.
+"""
+import csv
+import io
+from collections.abc import Iterable, Iterator, Sequence
+
 import pandas as pd
+from django.http import StreamingHttpResponse
 
 FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
@@ -19,6 +28,15 @@ def safe_row(row):
     return [spreadsheet_safe(cell) for cell in row]
 
 
+def safe_column(cells: Iterable) -> list:
+    """A column of cells with every text cell defused (for rows built a column at a time).
+
+    Each distinct value is defused once: a column of tank codes or empty notes holds few."""
+    cells = list(cells)
+    safe = {cell: spreadsheet_safe(cell) for cell in set(cells)}
+    return [safe[cell] for cell in cells]
+
+
 def safe_frame(frame: pd.DataFrame) -> pd.DataFrame:
     """The frame with every text cell defused. Only text columns (object, string, category) are touched,
     and spreadsheet_safe leaves any non-string in them alone, so numbers, negative ones included, stay numbers."""
@@ -33,3 +51,32 @@ def frame_csv(frame: pd.DataFrame, **options) -> str:
     """The frame as CSV text, spreadsheet-safe. Rows end in CRLF (RFC 4180), which also makes the csv
     writer quote a cell holding a bare CR, so a note with line breaks stays one cell."""
     return safe_frame(frame).to_csv(index=False, lineterminator="\r\n", **options)
+
+
+def csv_text(header: Sequence[str], chunks: Iterable[Iterable[Sequence]]) -> Iterator[str]:
+    """CSV text: the header, then one string per chunk of rows (a few large pieces for the response to
+    send, not one per line). Excel dialect with CRLF line ends, as `frame_csv`; None is an empty cell.
+    The rows must already be spreadsheet-safe."""
+    buffer = io.StringIO()
+    writer = csv.writer(buffer)
+    writer.writerow(header)
+    for rows in chunks:
+        writer.writerows(rows)
+        yield buffer.getvalue()
+        buffer.seek(0)
+        buffer.truncate()
+    if buffer.tell():  # no rows at all: the header alone
+        yield buffer.getvalue()
+
+
+def frame_chunks(frame: pd.DataFrame, size: int = 2000, **options) -> Iterator[str]:
+    """`frame_csv` of a frame a slice of rows at a time: the same text, in pieces (header first)."""
+    for start in range(0, max(len(frame), 1), size):
+        yield frame_csv(frame.iloc[start:start + size], header=start == 0, **options)
+
+
+def csv_response(text: Iterable[str], filename: str) -> StreamingHttpResponse:
+    """A streamed CSV download; `text` is produced while the response is sent."""
+    response = StreamingHttpResponse(text, content_type="text/csv; charset=utf-8")
+    response["Content-Disposition"] = f'attachment; filename="{filename}"'
+    return response

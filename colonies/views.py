@@ -1,12 +1,10 @@
-import csv
-import itertools
 from datetime import timedelta
 
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
 from django.core.paginator import Paginator
 from django.db.models import Count, Q
-from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
+from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.utils.dateformat import format as date_format
@@ -16,6 +14,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from . import check_export, derived, health_forms, health_series, parameters, services
 from . import labels as labels_module
+from .exports import csv_response
 from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,
@@ -450,21 +449,11 @@ def species_edit(request, pk):
 # ---------------------------------------------------------------------------------------------
 # Export
 # ---------------------------------------------------------------------------------------------
-class _Echo:
-    def write(self, value):
-        return value
-
-
 @require_GET
 @role_required(*READ_ROLES)
 def checks_csv(request):
     """All checks matching the filter, one row each; columns come from the parameter registry."""
-    writer = csv.writer(_Echo())
-    lines = itertools.chain([writer.writerow(check_export.header())],
-                            map(writer.writerow, check_export.rows(_check_export(request))))
-    response = StreamingHttpResponse(lines, content_type="text/csv; charset=utf-8")
-    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
-    return response
+    return csv_response(check_export.csv_text(_check_export(request)), "vermilog-checks.csv")
 
 
 @require_GET
