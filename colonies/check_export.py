@@ -1,29 +1,23 @@
 """The checks table behind the CSV and XLSX exports: one query streamed in chunks, memory flat.
 
-Rows come from the query Django compiles for `values_list`, in the order of the `check_export_order`
-index, read CHUNK at a time through the chunked cursor that `.iterator()` uses (a server-side cursor on
-PostgreSQL), so neither the database nor Python holds the whole table. Each chunk is built a column at
-a time from the raw database values, without the ORM's per-value converters (their cost was a fifth of
-the export): the few columns that need one get a column-level equivalent below, giving the same text.
-Derived values are computed for the whole chunk by `derived.derive_arrays`, which runs the registry's
-own functions and gives the very floats `Check.derived()` gives.
+Rows are read CHUNK at a time in the order of the `check_export_order` index (`exports.raw_chunks`: the
+`values_list` query without the ORM's per-value converters), so neither the database nor Python holds
+the whole table, and each chunk is built a column at a time; the columns that need a conversion get a
+column-level one giving the text the ORM's values gave. Derived values are computed for the whole chunk
+by `derived.derive_arrays`, which runs the registry's own functions: the very floats `Check.derived()`
+gives. The CSV is byte for byte what a check-by-check recomputation writes (tests/colonies/test_check_export.py).
 """
-import datetime
 import json
 import tempfile
 from collections.abc import Iterable, Iterator
 
 import xlsxwriter
 from django.db import connections
-from django.db.models import TextField
-from django.db.models.functions import Cast
-from django.db.models.sql.constants import MULTI
-from django.utils.dateparse import parse_datetime
 
 from . import derived, exports, parameters
-from .exports import safe_column
+from .exports import safe_column, utc_text
 
-CHUNK = 2000
+CHUNK = exports.CHUNK
 TAIL = ["activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "flags",
         "corrective_action", "note", "voided", "void_reason"]
 FIELDS = (["pk", "tank__code", "tank__room__code", "observed_at", "recorded_at", "recorded_by__username",
@@ -47,18 +41,9 @@ def chunks(queryset) -> Iterator[list[tuple]]:
     A cell is a number, text, or None for an empty cell (a missing reading, a derived value that does
     not apply or cannot be computed). Free text is defused (colonies/exports.py).
     """
-    connection = connections[queryset.db]
-    if connection.vendor == "sqlite":
-        # Read the stored text: Python's sqlite3 module would otherwise parse every timestamp into a
-        # datetime (Django registers that converter) only for it to be formatted back into text.
-        queryset = queryset.annotate(**{f"{name}_text": Cast(name, TextField()) for name in TIMESTAMPS})
-        fields = [f"{name}_text" if name in TIMESTAMPS else name for name in FIELDS]
-    else:
-        fields = FIELDS
-    query = queryset.order_by("observed_at", "pk").values_list(*fields).query
-    compiler = query.get_compiler(using=queryset.db)
-    for raw in compiler.execute_sql(MULTI, chunked_fetch=True, chunk_size=CHUNK):
-        yield _rows(raw, connection.timezone)
+    tz = connections[queryset.db].timezone
+    for raw in exports.raw_chunks(queryset.order_by("observed_at", "pk"), FIELDS, timestamps=TIMESTAMPS, size=CHUNK):
+        yield _rows(raw, tz)
 
 
 def rows(queryset) -> Iterator[tuple]:
@@ -76,7 +61,7 @@ def _rows(raw: list[tuple], tz) -> list[tuple]:
     values = derived.derive_arrays(inputs, habitat)
     derived_columns = [_rounded(values[d.key], d.decimals + 2) for d in derived.DERIVED]
     return list(zip(
-        pk, safe_column(tank), safe_column(room), _iso_utc(observed, tz), _iso_utc(recorded, tz), safe_column(user),
+        pk, safe_column(tank), safe_column(room), utc_text(observed, tz), utc_text(recorded, tz), safe_column(user),
         *params, *derived_columns,
         activity, _ints(clumping), dead, _ints(film), odour, clarity, _flag_lists(flags),
         safe_column(action), safe_column(note), [0 if v is None else 1 for v in voided_at], safe_column(void_reason),
@@ -101,28 +86,6 @@ def _flag_lists(values) -> list[str]:
         else:
             out.append(" ".join(sorted(json.loads(value) if isinstance(value, str) else value)))
     return out
-
-
-def _iso_utc(values, tz) -> list[str]:
-    """ISO 8601 with the offset, as `isoformat()` of the aware datetime the ORM would give.
-
-    PostgreSQL returns aware datetimes. SQLite returns the text Django stored, which is `str()` of the
-    naive UTC time ("YYYY-MM-DD HH:MM:SS" or "...:SS.ffffff"): with the database in UTC that shape is
-    rewritten as text; any other goes through Django's parser and time zone, as the ORM's converter does.
-    """
-    if tz is not datetime.timezone.utc:
-        return [_iso_parsed(v, tz) for v in values]
-    return [v[:10] + "T" + v[11:] + "+00:00"
-            if type(v) is str and (len(v) == 19 or len(v) == 26 and v[19] == ".") and v[10] == " " and v[13] == v[16] == ":"
-            else _iso_parsed(v, tz) for v in values]
-
-
-def _iso_parsed(value, tz) -> str:
-    if isinstance(value, str):
-        value = parse_datetime(value)
-    if value.tzinfo is None:
-        value = value.replace(tzinfo=tz)  # what timezone.make_aware(value, connection.timezone) does
-    return value.isoformat()
 
 
 def csv_text(queryset) -> Iterator[str]:

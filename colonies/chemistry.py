@@ -23,6 +23,7 @@ the powers and exponentials are Python's own `**` and `math.exp` element by elem
 `_exp`), because numpy's vectorised pow and exp differ from the C library's in the last bit for about
 5 % of arguments (AVX-512 kernels), which would let an export disagree with what a page or flag shows.
 """
+import itertools
 import math
 import operator
 
@@ -91,10 +92,14 @@ def _masked(valid: bool | np.ndarray, value: Value) -> Value:
 
 
 def _elementwise(function, *args) -> "_PerElement":
-    arrays = np.broadcast_arrays(*(np.asarray(a) for a in args))
-    flat = [a.ravel().tolist() for a in arrays]  # Python floats (and ints), as a float call gets them
-    out = np.fromiter(map(function, *flat), dtype=float, count=arrays[0].size).reshape(arrays[0].shape)
-    return out.view(_PerElement)
+    """function(*args) element by element, on Python floats (and ints) as a float call gets them."""
+    arrays = [a for a in args if isinstance(a, _Array)]
+    if len({a.shape for a in arrays}) > 1:
+        return _elementwise(function, *np.broadcast_arrays(*(np.asarray(a) for a in args)))
+    shape = arrays[0].shape
+    columns = [a.ravel().tolist() if isinstance(a, _Array) else itertools.repeat(a) for a in args]
+    out = np.fromiter(map(function, *columns), dtype=float, count=arrays[0].size)
+    return out.reshape(shape).view(_PerElement)
 
 
 class _PerElement(np.ndarray):
@@ -170,14 +175,15 @@ def oxygen_solubility_mg_l(temp_c: Value, salinity: Value = 0.0, pressure_kpa: V
 
 def _benson_krause(temp_c: Value, salinity: Value, pressure_kpa: Value) -> Value:
     t = temp_c + KELVIN_OFFSET
-    ln_c = (-139.34411 + 1.575701e5 / t - 6.642308e7 / t**2 + 1.243800e10 / t**3 - 8.621949e11 / t**4)
-    ln_c -= salinity * (1.7674e-2 - 1.0754e1 / t + 2.1407e3 / t**2)
+    t2 = t**2
+    ln_c = (-139.34411 + 1.575701e5 / t - 6.642308e7 / t2 + 1.243800e10 / t**3 - 8.621949e11 / t**4)
+    ln_c -= salinity * (1.7674e-2 - 1.0754e1 / t + 2.1407e3 / t2)
     c_star = _exp(ln_c)
 
     p_atm = pressure_kpa / STANDARD_PRESSURE_KPA
     # Water vapour pressure (atm) and θ: at lower pressure less O2 dissolves, and not exactly in
     # proportion, because the water vapour share of the air is fixed by temperature.
-    p_wv = _exp(11.8571 - 3840.70 / t - 216961.0 / t**2)
+    p_wv = _exp(11.8571 - 3840.70 / t - 216961.0 / t2)
     theta = 0.000975 - 1.426e-5 * temp_c + 6.436e-8 * temp_c**2
     return c_star * p_atm * (1 - p_wv / p_atm) * (1 - theta * p_atm) / ((1 - p_wv) * (1 - theta))
 
@@ -225,8 +231,9 @@ def _pss78_salinity(ratio: Value, t68: Value, pressure_dbar: Value) -> Value:
     a = (0.0080, -0.1692, 25.3851, 14.0941, -7.0261, 2.7081)
     b = (0.0005, -0.0056, -0.0066, -0.0375, 0.0636, -0.0144)
     dt = t - 15.0
-    salinity = sum(ai * x**i for i, ai in enumerate(a))
-    salinity += dt / (1 + 0.0162 * dt) * sum(bi * x**i for i, bi in enumerate(b))
+    powers = [x**i for i in range(6)]
+    salinity = sum(ai * xi for ai, xi in zip(a, powers))
+    salinity += dt / (1 + 0.0162 * dt) * sum(bi * xi for bi, xi in zip(b, powers))
     return salinity
 
 
