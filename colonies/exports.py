@@ -119,13 +119,14 @@ def utc_text(values: Iterable, tz, sep: str = "T") -> list:
     text; anything else goes through Django's parser and the time zone, as the ORM's converter does.
     """
     if tz is not datetime.timezone.utc:
-        return [None if v is None else _aware(v, tz).isoformat(sep) for v in values]
+        return [None if v is None else aware(v, tz).isoformat(sep) for v in values]
     return [v[:10] + sep + v[11:] + "+00:00"
             if type(v) is str and (len(v) == 19 or len(v) == 26 and v[19] == ".") and v[10] == " " and v[13] == v[16] == ":"
-            else None if v is None else _aware(v, tz).isoformat(sep) for v in values]
+            else None if v is None else aware(v, tz).isoformat(sep) for v in values]
 
 
-def _aware(value, tz) -> datetime.datetime:
+def aware(value, tz) -> datetime.datetime:
+    """A raw timestamp of `raw_chunks` (text or datetime) as the aware datetime the ORM would give."""
     if isinstance(value, str):
         value = parse_datetime(value)
     if value.tzinfo is None and tz is not None:
