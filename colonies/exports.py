@@ -78,10 +78,34 @@ def csv_text(header: Sequence[str], chunks: Iterable[Iterable[Sequence]]) -> Ite
         yield buffer.getvalue()
 
 
-def frame_chunks(frame: pd.DataFrame, size: int = 2000, **options) -> Iterator[str]:
-    """`frame_csv` of a frame a slice of rows at a time: the same text, in pieces (header first)."""
-    for start in range(0, max(len(frame), 1), size):
-        yield frame_csv(frame.iloc[start:start + size], header=start == 0, **options)
+def frames_text(frames: Iterable[pd.DataFrame], columns: Sequence[str], **options) -> Iterator[str]:
+    """`frame_csv` of one table given as consecutive frames (chunks of its rows), header from the first."""
+    first = True
+    for frame in frames:
+        yield frame_csv(frame, header=first, **options)
+        first = False
+    if first:
+        yield frame_csv(pd.DataFrame(columns=list(columns)), **options)
+
+
+def frame_chunks(frame: pd.DataFrame, size: int | None = None, **options) -> Iterator[str]:
+    """`frame_csv` of a frame already in memory, a slice of rows at a time (the same text, in pieces)."""
+    size = size or CHUNK
+    return frames_text((frame.iloc[start:start + size] for start in range(0, len(frame), size)), frame.columns,
+                       **options)
+
+
+def batches(items: Iterable, size: int | None = None) -> Iterator[list]:
+    """Consecutive lists of `size` items (the last may be shorter)."""
+    size = size or CHUNK
+    batch = []
+    for item in items:
+        batch.append(item)
+        if len(batch) == size:
+            yield batch
+            batch = []
+    if batch:
+        yield batch
 
 
 def csv_response(text: Iterable[str], filename: str) -> StreamingHttpResponse:
