@@ -123,11 +123,12 @@ def raw_chunks(queryset, fields: Sequence[str], *, timestamps: Sequence[str] = (
 
     The query is the one Django compiles for `values_list`, read through the chunked cursor `.iterator()`
     uses (server-side on PostgreSQL), without the ORM's per-value converters, which cost more than the
-    rest of a large export: the caller converts a column at a time. The `timestamps` fields come as
-    `utc_text` expects them (on SQLite the stored text, which the sqlite3 module would otherwise parse
-    into a datetime only for it to be formatted back into text).
+    rest of a large export: the caller converts a column at a time. The `timestamps` fields are read as
+    the database's text for `utc_text`: parsing each into a datetime (sqlite3's converter; on PostgreSQL
+    Django's time-zone loader, pure Python) only for it to be formatted back into text cost more than
+    anything else in the checks export.
     """
-    if connections[queryset.db].vendor == "sqlite" and timestamps:
+    if timestamps:
         queryset = queryset.annotate(**{f"{name}__text": Cast(name, TextField()) for name in timestamps})
         fields = [f"{name}__text" if name in timestamps else name for name in fields]
     compiler = queryset.values_list(*fields).query.get_compiler(using=queryset.db)
@@ -138,15 +139,30 @@ def utc_text(values: Iterable, tz, sep: str = "T") -> list:
     """A timestamp column of `raw_chunks` as `isoformat(sep)` of the aware datetimes the ORM would give
     (None stays None). `tz` is the connection's time zone (`connections[alias].timezone`).
 
-    PostgreSQL returns aware datetimes. SQLite returns the text Django stored, `str()` of the naive time
-    in the database's zone ("YYYY-MM-DD HH:MM:SS" or "...SS.ffffff"): in UTC that shape is rewritten as
-    text; anything else goes through Django's parser and the time zone, as the ORM's converter does.
+    With the connection in UTC (Django's default) the database's text is rewritten as text (`_utc_iso`);
+    any other shape or zone goes through Django's parser and the time zone, as the ORM's values do.
     """
     if tz is not datetime.timezone.utc:
         return [None if v is None else aware(v, tz).isoformat(sep) for v in values]
-    return [v[:10] + sep + v[11:] + "+00:00"
-            if type(v) is str and (len(v) == 19 or len(v) == 26 and v[19] == ".") and v[10] == " " and v[13] == v[16] == ":"
-            else None if v is None else aware(v, tz).isoformat(sep) for v in values]
+    return [None if v is None else (type(v) is str and _utc_iso(v, sep)) or aware(v, tz).isoformat(sep)
+            for v in values]
+
+
+def _utc_iso(text: str, sep: str) -> str | None:
+    """ISO 8601 with "+00:00" from a UTC time as the database writes it, or None for another shape.
+
+    SQLite holds `str()` of the naive UTC time, "YYYY-MM-DD HH:MM:SS" or "YYYY-MM-DD HH:MM:SS.ffffff";
+    PostgreSQL writes timestamptz in UTC as "YYYY-MM-DD HH:MM:SS+00", a fraction with its trailing zeros
+    dropped ("...:SS.12+00"). isoformat() writes no fraction for whole seconds, else all six digits.
+    """
+    body = text[:-3] if text.endswith("+00") else text
+    if len(body) < 19 or body[10] != " " or body[13] != ":" or body[16] != ":":
+        return None
+    if len(body) == 19:
+        return body[:10] + sep + body[11:] + "+00:00"
+    if body[19] == "." and 21 <= len(body) <= 26 and body[20:].isdigit():
+        return body[:10] + sep + body[11:20] + body[20:].ljust(6, "0") + "+00:00"
+    return None
 
 
 def aware(value, tz) -> datetime.datetime:
