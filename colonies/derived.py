@@ -21,7 +21,7 @@ Readings = dict[str, float | None]
 # What a compute function reads: one check's readings as floats, or arrays of many checks' readings
 # (NaN where a reading is missing; every chemistry function refuses NaN).
 Inputs = Mapping[str, float | np.ndarray]
-INPUTS = ("temp_c", "ph", "do_mg_l", "tan_mg_l", "conductivity_us_cm", "salinity")
+INPUTS = ("temp_c", "ph", "do_mg_l", "tan_mg_l", "conductivity_us_cm", "salinity")  # every reading a compute reads
 NAN = float("nan")
 
 
@@ -117,7 +117,7 @@ def derive_arrays(readings: Mapping[str, Sequence[float | None]], habitats: Sequ
     is None or the value does not apply to the check's habitat.
     """
     inputs = {k: np.array(readings[k], dtype=float) for k in INPUTS}  # None becomes NaN
-    habitats = np.asarray(habitats)
+    habitats = np.asarray(habitats, dtype=str)
     marine = habitats == parameters.MARINE
     out = {}
     for d in DERIVED:

@@ -6,6 +6,7 @@ text is what the register's CSV has always held: times as `str()` of the UTC tim
 text cell defused (colonies/exports.py).
 """
 from collections.abc import Iterator
+from datetime import datetime
 
 from django.db import connections
 
@@ -36,12 +37,12 @@ def chunks(queryset) -> Iterator[list[tuple]]:
 def _rows(raw: list[tuple], tz) -> list[tuple]:
     (pk, tank, room, subject, rule, parameter, severity, status, opened, last_seen, evidence_count, summary,
      acknowledged, acknowledged_by, closed, closed_by, action) = zip(*raw)
+    opened, closed = utc_text(opened, tz, " "), utc_text(closed, tz, " ")
     return list(zip(
         pk, _text(tank), _text(room), safe_column(subject), safe_column(rule), safe_column(parameter),
-        safe_column(SEVERITY.get(s, s) for s in severity), safe_column(status), utc_text(opened, tz, " "),
+        safe_column(SEVERITY.get(s, s) for s in severity), safe_column(status), opened,
         utc_text(last_seen, tz, " "), evidence_count, safe_column(summary), utc_text(acknowledged, tz, " "),
-        _text(acknowledged_by), utc_text(closed, tz, " "), _text(closed_by),
-        _hours_to_close(opened, closed, tz), safe_column(action),
+        _text(acknowledged_by), closed, _text(closed_by), _hours_to_close(opened, closed), safe_column(action),
     ))
 
 
@@ -50,13 +51,14 @@ def _text(values) -> list:
     return safe_column("" if v is None else v for v in values)
 
 
-def _hours_to_close(opened, closed, tz) -> list:
+def _hours_to_close(opened: list[str], closed: list[str | None]) -> list:
+    """From the ISO 8601 texts with their offsets (utc_text), which give back the aware times."""
     out = []
     for start, end in zip(opened, closed):
         if end is None:
             out.append(None)
             continue
-        took = exports.aware(end, tz) - exports.aware(start, tz)
+        took = datetime.fromisoformat(end) - datetime.fromisoformat(start)
         # A deviation closed the instant it opened has no time to close (the register has always said so).
         out.append(round(took.total_seconds() / 3600, 2) if took else None)
     return out
