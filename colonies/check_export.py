@@ -1,6 +1,6 @@
 """The checks table behind the CSV and XLSX exports: one query streamed in chunks, memory flat.
 
-Rows are read CHUNK at a time in the order of the `check_export_order` index (`exports.raw_chunks`: the
+Rows are read CHUNK at a time in the order of the `check_export_order` index (`export_stream.raw_chunks`: the
 `values_list` query without the ORM's per-value converters), so neither the database nor Python holds
 the whole table, and each chunk is built a column at a time; the columns that need a conversion get a
 column-level one giving the text the ORM's values gave. Derived values are computed for the whole chunk
@@ -14,8 +14,9 @@ from collections.abc import Iterable, Iterator
 import xlsxwriter
 from django.db import connections
 
-from . import derived, exports, parameters
-from .exports import safe_column, utc_text
+from . import derived, export_stream, exports, parameters
+from .export_stream import utc_text
+from .exports import safe_column
 
 CHUNK = exports.CHUNK
 TAIL = ["activity", "clumping", "dead_removed", "surface_film", "odour", "clarity", "flags",
@@ -42,7 +43,7 @@ def chunks(queryset) -> Iterator[list[tuple]]:
     not apply or cannot be computed). Free text is defused (colonies/exports.py).
     """
     tz = connections[queryset.db].timezone
-    for raw in exports.raw_chunks(queryset.order_by("observed_at", "pk"), FIELDS, timestamps=TIMESTAMPS, size=CHUNK):
+    for raw in export_stream.raw_chunks(queryset.order_by("observed_at", "pk"), FIELDS, timestamps=TIMESTAMPS, size=CHUNK):
         yield _rows(raw, tz)
 
 

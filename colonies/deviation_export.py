@@ -10,8 +10,9 @@ from datetime import datetime
 
 from django.db import connections
 
-from . import exports
-from .exports import safe_column, utc_text
+from . import export_stream, exports
+from .export_stream import utc_text
+from .exports import safe_column
 from .models import Deviation
 
 COLUMNS = ["id", "tank", "room", "subject", "rule", "parameter", "severity", "status", "opened_at_utc",
@@ -30,7 +31,7 @@ def csv_text(queryset) -> Iterator[str]:
 
 def chunks(queryset) -> Iterator[list[tuple]]:
     tz = connections[queryset.db].timezone
-    for raw in exports.raw_chunks(queryset.order_by("opened_at", "pk"), FIELDS, timestamps=TIMESTAMPS):
+    for raw in export_stream.raw_chunks(queryset.order_by("opened_at", "pk"), FIELDS, timestamps=TIMESTAMPS):
         yield _rows(raw, tz)
 
 

@@ -8,7 +8,7 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
 from . import deviation_export
-from .exports import csv_response
+from .export_stream import csv_response
 from .filters import DeviationFilter
 from .forms import reason_field
 from .models import Deviation

@@ -14,7 +14,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from . import check_export, derived, health_forms, health_series, parameters, services
 from . import labels as labels_module
-from .exports import csv_response
+from .export_stream import csv_response
 from .filters import CheckFilter, TankFilter
 from .flags import describe, limit_text, out_of_target
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, ObservedAtForm, ReasonForm,

@@ -14,7 +14,8 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from colonies.exports import csv_response, frame_chunks
+from colonies.export_stream import csv_response
+from colonies.exports import frame_chunks
 from colonies.models import Room
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
