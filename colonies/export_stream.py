@@ -34,8 +34,8 @@ def raw_chunks(queryset, fields: Sequence[str], *, timestamps: Sequence[str] = (
     anything else in the checks export.
     """
     if timestamps:
-        queryset = queryset.annotate(**{f"{name}__text": Cast(name, TextField()) for name in timestamps})
-        fields = [f"{name}__text" if name in timestamps else name for name in fields]
+        queryset = queryset.annotate(**{f"{name}_as_text": Cast(name, TextField()) for name in timestamps})
+        fields = [f"{name}_as_text" if name in timestamps else name for name in fields]
     compiler = queryset.values_list(*fields).query.get_compiler(using=queryset.db)
     yield from compiler.execute_sql(MULTI, chunked_fetch=True, chunk_size=size or exports.CHUNK)
 
