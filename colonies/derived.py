@@ -6,13 +6,23 @@ or lies outside the method's validity range: no extrapolated number is shown as 
 
 Barometric pressure is not recorded per check; oxygen saturation assumes standard pressure
 (101.325 kPa). At 600 m altitude that overstates % saturation by about 7 % of the value.
+
+One check (`derive`, for pages, flags and rules) or a few thousand at once (`derive_arrays`, for
+exports) run the same compute functions and chemistry formulas, so both give the same bits.
 """
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+
+import numpy as np
 
 from . import chemistry, parameters
 
 Readings = dict[str, float | None]
+# What a compute function reads: one check's readings as floats, or arrays of many checks' readings
+# (NaN where a reading is missing; every chemistry function refuses NaN).
+Inputs = Mapping[str, float | np.ndarray]
+INPUTS = ("temp_c", "ph", "do_mg_l", "tan_mg_l", "conductivity_us_cm", "salinity")  # every reading a compute reads
+NAN = float("nan")
 
 
 @dataclass(frozen=True)
@@ -23,7 +33,7 @@ class DerivedValue:
     unit: str
     decimals: int
     method: str
-    compute: Callable[[Readings, str], float]
+    compute: Callable[[Inputs, bool | np.ndarray], float | np.ndarray]  # (inputs, marine)
     habitats: tuple[str, ...] = parameters.BOTH
     # Physical bounds of the derived value, inclusive: a care target outside them is refused.
     minimum: float = 0.0
@@ -43,34 +53,23 @@ class DerivedValue:
         return habitat in self.habitats
 
 
-def _need(readings: Readings, *keys: str) -> list[float]:
-    values = [readings.get(k) for k in keys]
-    if any(v is None for v in values):
-        raise LookupError
-    return values  # type: ignore[return-value]
+def _nh3(r: Inputs, marine):
+    return chemistry.unionized_ammonia_mg_l(r["tan_mg_l"], r["ph"], r["temp_c"])
 
 
-def _nh3(r: Readings, habitat: str) -> float:
-    tan, ph, temp = _need(r, "tan_mg_l", "ph", "temp_c")
-    return chemistry.unionized_ammonia_mg_l(tan, ph, temp)
+def _do_pct(r: Inputs, marine):
+    # A marine tank's own salinity reading (missing: no value); fresh water holds no salt.
+    salinity = np.where(marine, r["salinity"], 0.0) if isinstance(marine, np.ndarray) else (
+        r["salinity"] if marine else 0.0)
+    return chemistry.oxygen_percent_saturation(r["do_mg_l"], r["temp_c"], salinity)
 
 
-def _do_pct(r: Readings, habitat: str) -> float:
-    do, temp = _need(r, "do_mg_l", "temp_c")
-    salinity = r.get("salinity") if habitat == parameters.MARINE else 0.0
-    if salinity is None:
-        raise LookupError
-    return chemistry.oxygen_percent_saturation(do, temp, salinity)
+def _cond25(r: Inputs, marine):
+    return chemistry.specific_conductance_25(r["conductivity_us_cm"], r["temp_c"])
 
 
-def _cond25(r: Readings, habitat: str) -> float:
-    cond, temp = _need(r, "conductivity_us_cm", "temp_c")
-    return chemistry.specific_conductance_25(cond, temp)
-
-
-def _salinity_from_cond(r: Readings, habitat: str) -> float:
-    cond, temp = _need(r, "conductivity_us_cm", "temp_c")
-    return chemistry.practical_salinity(cond / 1000.0, temp)
+def _salinity_from_cond(r: Inputs, marine):
+    return chemistry.practical_salinity(r["conductivity_us_cm"] / 1000.0, r["temp_c"])
 
 
 DERIVED: tuple[DerivedValue, ...] = (
@@ -97,14 +96,33 @@ KEYS = tuple(BY_KEY)
 
 def derive(readings: Readings, habitat: str) -> dict[str, float | None]:
     """All derived values that apply to the habitat; None where inputs are missing or out of range."""
+    inputs = {k: NAN if readings.get(k) is None else readings[k] for k in INPUTS}
+    marine = habitat == parameters.MARINE
     out: dict[str, float | None] = {}
     for d in DERIVED:
         if not d.applies_to(habitat):
             continue
         try:
-            out[d.key] = d.compute(readings, habitat)
-        except (LookupError, ValueError):
+            out[d.key] = d.compute(inputs, marine)
+        except ValueError:  # an input missing (NaN) or outside the method's range
             out[d.key] = None
+    return out
+
+
+def derive_arrays(readings: Mapping[str, Sequence[float | None]], habitats: Sequence[str]) -> dict[str, np.ndarray]:
+    """`derive` for many checks at once: one array per derived value, element i for check i.
+
+    `readings` holds a sequence per input key (None for a missing reading) and `habitats` the habitat
+    of each check. Element i is the float `derive` gives for check i, bit for bit, or NaN where that
+    is None or the value does not apply to the check's habitat.
+    """
+    inputs = {k: np.array(readings[k], dtype=float) for k in INPUTS}  # None becomes NaN
+    habitats = np.asarray(habitats, dtype=str)
+    marine = habitats == parameters.MARINE
+    out = {}
+    for d in DERIVED:
+        applies = np.isin(habitats, d.habitats)
+        out[d.key] = np.where(applies, d.compute(inputs, marine), np.nan)
     return out
 
 

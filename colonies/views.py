@@ -1,5 +1,3 @@
-import csv
-import itertools
 from datetime import timedelta
 
 from django.contrib import messages
@@ -7,7 +5,7 @@ from django.contrib.auth.decorators import login_not_required
 from django.core.exceptions import PermissionDenied
 from django.core.paginator import Paginator
 from django.db.models import Count, Q
-from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest, StreamingHttpResponse
+from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequest
 from django.shortcuts import get_object_or_404, redirect, render
 from django.urls import reverse
 from django.utils import timezone
@@ -18,6 +16,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from . import batch, check_export, derived, due_readings, health_forms, health_series, parameters, prefill, round_rows, services
 from . import labels as labels_module
+from .export_stream import csv_response
 from .filters import CheckFilter, TankFilter
 from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
@@ -497,21 +496,11 @@ def species_edit(request, pk):
 # ---------------------------------------------------------------------------------------------
 # Export
 # ---------------------------------------------------------------------------------------------
-class _Echo:
-    def write(self, value):
-        return value
-
-
 @require_GET
 @role_required(*READ_ROLES)
 def checks_csv(request):
     """All checks matching the filter, one row each; columns come from the parameter registry."""
-    writer = csv.writer(_Echo())
-    lines = itertools.chain([writer.writerow(check_export.header())],
-                            map(writer.writerow, check_export.rows(_check_export(request))))
-    response = StreamingHttpResponse(lines, content_type="text/csv; charset=utf-8")
-    response["Content-Disposition"] = 'attachment; filename="vermilog-checks.csv"'
-    return response
+    return csv_response(check_export.csv_text(_check_export(request)), "vermilog-checks.csv")
 
 
 @require_GET

@@ -1,15 +1,20 @@
 """Study tables and statistics: trials to tidy rows, rows to summaries, curves and fits.
 
-The views pick the trials (a fixed number of queries); everything here works on the rows.
+The views pick the trials (a fixed number of queries); everything here works on the rows, except the
+streamed CSV tables at the end, which read their trials a chunk at a time.
 """
 from __future__ import annotations
 
+import csv
 import json
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 from django.utils import timezone
+
+from colonies import exports
 
 from . import analysis
 from .charts import KM_TABLE_COLUMNS
@@ -247,3 +252,34 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
         if t.cohort_id in blind_cohorts:
             rows[-1]["cumulative_dose_mj_cm2"] = None
     return rows
+
+
+# ---------------------------------------------------------------------------------------------
+# CSV downloads: streamed, a chunk of trials at a time (colonies/exports.py)
+# ---------------------------------------------------------------------------------------------
+# Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe;
+# numbers, negative ones included, are written as they are, to six significant digits.
+CSV_OPTIONS = {"quoting": csv.QUOTE_MINIMAL, "float_format": "%.6g"}
+
+
+def tidy_csv(trials) -> Iterator[str]:
+    """The tidy table of a queryset of trials (ordered; TRIAL_RELATED loaded), CHUNK trials at a time."""
+    frames = (tidy_frame(chunk) for chunk in exports.batches(trials.iterator(chunk_size=exports.CHUNK)))
+    return exports.frames_text(frames, TIDY_COLUMNS, **CSV_OPTIONS)
+
+
+def every_exposure(cohort_ids) -> list[Trial]:
+    """Every counting trial of the cohorts, as `ledger_rows` needs them for running totals."""
+    return list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).select_related("study")
+                .only("pk", "cohort_id", "run_at", "dose_mj_cm2", "study__blinded", "study__unblinded_at",
+                      "study__owner"))
+
+
+def ledger_csv(shown, user) -> Iterator[str]:
+    """Every exposure of the queryset `shown` (ordered by cohort and time), with running totals over all
+    exposures of its cohort: a chunk of exposures and their cohorts' exposures at a time."""
+    frames = (pd.DataFrame([{k: r[k] for k in LEDGER_COLUMNS}
+                            for r in ledger_rows(chunk, every_exposure({t.cohort_id for t in chunk}), user)],
+                           columns=LEDGER_COLUMNS)
+              for chunk in exports.batches(shown.iterator(chunk_size=exports.CHUNK)))
+    return exports.frames_text(frames, LEDGER_COLUMNS, **CSV_OPTIONS)

@@ -3,11 +3,8 @@
 Roles: researchers and managers book, draw and run trials; managers also record overrides and
 see the ledger; technicians read. Login is enforced by LoginRequiredMiddleware.
 """
-import csv
 import random
 from datetime import date, timedelta
-
-import pandas as pd
 
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied, ValidationError
@@ -17,7 +14,8 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from colonies.exports import frame_csv
+from colonies.export_stream import csv_response
+from colonies.exports import frame_chunks
 from colonies.models import Room
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
@@ -358,19 +356,20 @@ def _analysis_for(request, code):
     return study, frame, reports.analyse(frame, study.conditions)
 
 
-def _csv_response(frame, filename: str) -> HttpResponse:
-    # Text cells (labels, reasons, notes) that a spreadsheet would run as a formula get an apostrophe;
-    # numbers, negative ones included, are written as they are (colonies/exports.py).
-    response = HttpResponse(frame_csv(frame, quoting=csv.QUOTE_MINIMAL, float_format="%.6g"), content_type="text/csv; charset=utf-8")
-    response["Content-Disposition"] = f'attachment; filename="{filename}"'
-    return response
+def _csv_response(frame, filename: str):
+    """A table computed from a whole study (an estimate needs every trial), streamed in chunks."""
+    return csv_response(frame_chunks(frame, **reports.CSV_OPTIONS), filename)
 
 
 @require_GET
 @role_required(*READ)
 def study_csv(request, code):
-    study, frame, _ = _analysis_for(request, code)
-    return _csv_response(frame, f"{study.code}-trials.csv")
+    """One row per trial, read and sent a chunk of trials at a time."""
+    study = _get_study(code)
+    if study.hides_conditions_from(request.user):
+        raise PermissionDenied("The study is blinded: analyses by condition appear after its owner unblinds it.")
+    trials = study.trials.select_related(*TRIAL_RELATED).order_by("slot", "pk")
+    return csv_response(reports.tidy_csv(trials), f"{study.code}-trials.csv")
 
 
 CHARTS = ("km", "dose")
@@ -596,14 +595,18 @@ def attachment(request, pk):
 # ---------------------------------------------------------------------------------------------
 # Exposure ledger (managers)
 # ---------------------------------------------------------------------------------------------
+def _ledger_filter(request):
+    qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "run_at", "pk")
+    return LedgerFilter(request.GET or None, queryset=qs, request=request)
+
+
+LEDGER_PAGE_ROWS = 2000  # exposures the page shows; the CSV has them all
+
+
 def _ledger(request):
-    qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "run_at")
-    ledger_filter = LedgerFilter(request.GET or None, queryset=qs, request=request)
-    shown = list(ledger_filter.qs[:2000])
-    cohort_ids = {t.cohort_id for t in shown}
-    every = list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).select_related("study")
-                 .only("pk", "cohort_id", "run_at", "dose_mj_cm2", "study__blinded", "study__unblinded_at",
-                       "study__owner"))
+    ledger_filter = _ledger_filter(request)
+    shown = list(ledger_filter.qs[:LEDGER_PAGE_ROWS])
+    every = reports.every_exposure({t.cohort_id for t in shown})
     return ledger_filter, reports.ledger_rows(shown, every, request.user)
 
 
@@ -618,7 +621,6 @@ def ledger(request):
 @require_GET
 @role_required(MANAGER)
 def ledger_csv(request):
-    _, rows = _ledger(request)
-    frame = pd.DataFrame([{k: r[k] for k in reports.LEDGER_COLUMNS} for r in rows], columns=reports.LEDGER_COLUMNS)
-    return _csv_response(frame, "exposure-ledger.csv")
+    """Every exposure matching the filter, streamed a chunk at a time."""
+    return csv_response(reports.ledger_csv(_ledger_filter(request).qs, request.user), "exposure-ledger.csv")
 

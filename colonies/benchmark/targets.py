@@ -2,7 +2,8 @@
 
 A case gets its target by the start of its name; a new page or export falls under the general rule for
 its kind. Verdicts: "met", "not met" (with what missed), "floor" (not met, and the SQL alone already
-exceeds the time allowed: the floor is the SQL, named in the detail), or "" where the issue sets none.
+exceeds the time allowed, or the library that writes the file is itself slower than the rate asked for:
+the floor is named in the detail), or "" where the issue sets none.
 """
 from dataclasses import dataclass
 
@@ -90,4 +91,8 @@ def verdict(result, target: Target | None) -> tuple[str, str]:
     sql = result.sql_ms or 0.0
     if target.ms is not None and sql > target.ms:
         return "floor", f"SQL alone {sql:,.0f} ms > {target.ms:,.0f} ms; " + "; ".join(misses)
+    floor = result.floor_rows_per_s
+    if target.rows_per_s is not None and floor is not None and floor < target.rows_per_s and len(misses) == 1 \
+            and "rows/s" in misses[0]:
+        return "floor", f"{result.floor_what} alone {floor:,.0f} rows/s < {target.rows_per_s:,.0f}; " + misses[0]
     return "not met", "; ".join(misses)

@@ -2,7 +2,8 @@
 
 Each case runs `repeats` times; we keep the median and the maximum wall time, the query count and
 SQL time of the median run, and for exports a separate run under tracemalloc for the peak memory
-(tracemalloc slows Python down, so it never overlaps a timed run). Writes (round saves, rule runs)
+(tracemalloc slows Python down, so it never overlaps a timed run). A case may also measure a floor: the
+cost of the library that writes its file, alone on the same rows (no Django), once after the timed runs. Writes (round saves, rule runs)
 happen inside a transaction that is rolled back, so every repeat starts from the same data.
 """
 import logging
@@ -29,6 +30,7 @@ class Case:
     notes: str = ""
     repeats: int | None = None  # None: the command's --repeats
     warm_up: bool | None = None  # an untimed first run (imports, template loading); default: pages and figures
+    floor: Callable[[], dict] | None = None  # the library alone on the same rows: {"rows", "seconds", "cpu_s", "what"}
 
 
 @dataclass
@@ -87,6 +89,9 @@ class Result:
     bytes: int | None = None
     peak_mib: float | None = None
     streaming: bool | None = None  # the response streamed its body (memory independent of rows)
+    floor_rows_per_s: float | None = None  # the library alone (Case.floor), wall time as rows_per_s
+    floor_cpu_rows_per_s: float | None = None
+    floor_what: str = ""
 
     @property
     def median_ms(self):
@@ -178,6 +183,11 @@ def measure(case: Case, repeats: int, memory: bool = True) -> Result:
                 pass
     if memory and case.kind == "export" and result.ok:
         result.peak_mib = _peak_mib(case)
+    if case.floor and result.ok:
+        floor = case.floor()
+        result.floor_what = floor["what"]
+        result.floor_rows_per_s = floor["rows"] / floor["seconds"]
+        result.floor_cpu_rows_per_s = floor["rows"] / floor["cpu_s"]
     return result
 
 

@@ -49,6 +49,8 @@ def test_benchmark_reports_every_page_and_leaves_the_configured_database_alone(t
     today = next(r for r in doc["results"] if r["name"] == "Today")
     assert today["target"] == "<= 150 ms, <= 3x SQL" and today["target_ms"] == 150 and today["verdict"]
     assert checks_csv["streaming"] is True and checks_csv["target_rows_per_s"] == 50_000
+    xlsx = next(r for r in exports if r["name"] == "Export: checks XLSX")
+    assert xlsx["floor_what"] == "XlsxWriter" and xlsx["floor_rows_per_s"] > 0 and xlsx["floor_cpu_rows_per_s"] > 0
     assert sum(1 for r in doc["results"] if r["target"]) >= len(EXPECTED) - 4
     table = printed.getvalue()
     assert "| verdict " in table and "<= 3x SQL" in table

@@ -79,3 +79,20 @@ def test_the_table_and_json_carry_target_and_verdict():
     header, _, row = table([r]).splitlines()
     assert "| target " in header and "| verdict " in header
     assert "<= 150 ms, <= 3x SQL" in row and "not met: 100 ms > 3 x 20 ms SQL" in row
+
+
+def test_an_export_slower_than_its_library_alone_can_go_reports_the_library_floor():
+    xlsx = _result("Export: checks XLSX", "export", ms=20_000, sql=500, rows=200_000, streaming=True,
+                   floor_rows_per_s=12_000.0, floor_cpu_rows_per_s=13_000.0, floor_what="XlsxWriter")
+    outcome, detail = verdict(xlsx, EXPORT)
+    assert (outcome, detail) == ("floor", "XlsxWriter alone 12,000 rows/s < 50,000; 10,000 rows/s < 50,000")
+    assert "floor: XlsxWriter alone 12,000 rows/s (13,000 rows/s of CPU)" in table([xlsx])
+
+
+def test_a_library_fast_enough_for_the_target_is_no_floor():
+    slow = _result("Export: checks XLSX", "export", ms=20_000, sql=500, rows=200_000, streaming=True,
+                   floor_rows_per_s=80_000.0, floor_cpu_rows_per_s=90_000.0, floor_what="XlsxWriter")
+    buffered = _result("Export: checks XLSX", "export", ms=20_000, sql=500, rows=200_000, streaming=False,
+                       floor_rows_per_s=12_000.0, floor_cpu_rows_per_s=13_000.0, floor_what="XlsxWriter")
+    assert verdict(slow, EXPORT) == ("not met", "10,000 rows/s < 50,000")
+    assert verdict(buffered, EXPORT)[0] == "not met"  # the floor excuses the rate, not a response held in memory

@@ -5,6 +5,7 @@ Tags as in /work/shared/REFERENCES.md: [V] printed in the source (or a faithful 
 """
 import math
 
+import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
@@ -310,3 +311,53 @@ def test_total_hardness_from_calcium_and_magnesium():
 def test_total_hardness_rejects_negative_concentrations(calcium, magnesium, match):
     with pytest.raises(ValueError, match=match):
         total_hardness_caco3(calcium, magnesium)
+
+
+# --- Arrays: the same formulas for many readings at once -------------------------------------------
+
+
+ARRAY_CASES = [  # (function, ranges each argument is drawn from: wider than the validity ranges)
+    (unionized_ammonia_fraction, [(-1.0, 15.0), (-5.0, 55.0)]),
+    (unionized_ammonia_mg_l, [(-1.0, 100.0), (-1.0, 15.0), (-5.0, 55.0)]),
+    (nitrogen_to_ammonia_mg_l, [(-1.0, 100.0)]),
+    (oxygen_solubility_mg_l, [(-5.0, 45.0), (-1.0, 45.0), (45.0, 115.0)]),
+    (oxygen_percent_saturation, [(-1.0, 30.0), (-5.0, 45.0), (-1.0, 45.0)]),
+    (specific_conductance_25, [(-10.0, 100000.0), (-5.0, 45.0)]),
+    (practical_salinity, [(-1.0, 70.0), (-5.0, 40.0)]),
+    (total_hardness_caco3, [(-1.0, 400.0), (-1.0, 100.0)]),
+]
+
+
+def _float_call(function, args):
+    try:
+        return function(*args)
+    except ValueError:
+        return math.nan
+
+
+@pytest.mark.parametrize(("function", "ranges"), ARRAY_CASES, ids=[f.__name__ for f, _ in ARRAY_CASES])
+def test_an_array_gives_the_float_calls_results_bit_for_bit(function, ranges):
+    # common practice: the array form must agree with the float form exactly, NaN where the float call refuses
+    rng = np.random.default_rng(20260501)
+    columns = [rng.uniform(low, high, 4000) for low, high in ranges]
+    columns[0][::97] = np.nan  # a missing reading
+    vector = function(*columns)
+    scalar = np.array([_float_call(function, args) for args in zip(*(c.tolist() for c in columns))])
+    assert type(vector) is np.ndarray and vector.dtype == float
+    assert np.isnan(scalar).any() and not np.isnan(scalar).all()  # both kinds of element are exercised
+    assert np.array_equal(np.isnan(vector), np.isnan(scalar))
+    assert vector[~np.isnan(vector)].tobytes() == scalar[~np.isnan(scalar)].tobytes()
+
+
+def test_an_array_mixes_with_float_arguments():
+    temps = np.array([0.0, 20.0, 41.0])
+    # Benson & Krause 1984 / USGS table: 14.621 mg/L at 0 °C, 9.092 at 20 °C, S = 0 [V]; 41 °C is outside the fit
+    solubility = oxygen_solubility_mg_l(temps, 0.0)
+    assert solubility[:2] == pytest.approx([14.621, 9.092], abs=0.001)
+    assert math.isnan(solubility[2])
+    assert solubility[1] == oxygen_solubility_mg_l(20.0, 0.0)
+
+
+def test_an_empty_array_gives_an_empty_array():
+    assert unionized_ammonia_fraction(np.array([]), np.array([])).shape == (0,)
+    assert practical_salinity(np.array([]), np.array([])).shape == (0,)

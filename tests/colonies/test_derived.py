@@ -83,3 +83,41 @@ def test_round_flags_dissolved_oxygen_live_against_a_saturation_target(client, t
     html = client.get(reverse("colonies:round-room", args=[room.code])).content.decode()
     do_input = html[html.index(f'name="{tank.code}-do_mg_l"') - 400:html.index(f'name="{tank.code}-do_mg_l"') + 400]
     assert 'data-low="2.7276' in do_input or 'data-low="2.727' in do_input
+
+
+def test_derive_arrays_equals_derive_check_by_check():
+    # common practice: the export's chunk path (derive_arrays) must give the page's per-check values exactly
+    import math
+
+    import numpy as np
+
+    rng = np.random.default_rng(7)
+    n = 3000
+    readings = {  # wider than the methods' ranges, with missing readings
+        "temp_c": rng.uniform(-5.0, 50.0, n), "ph": rng.uniform(4.0, 10.0, n), "do_mg_l": rng.uniform(0.0, 15.0, n),
+        "tan_mg_l": rng.uniform(0.0, 5.0, n), "conductivity_us_cm": rng.uniform(0.0, 70000.0, n),
+        "salinity": rng.uniform(0.0, 45.0, n),
+    }
+    columns = {k: [None if i % (5 + j) == 0 else v for i, v in enumerate(values.tolist())]
+               for j, (k, values) in enumerate(readings.items())}
+    habitats = ["marine" if i % 3 == 0 else "freshwater" for i in range(n)]
+
+    arrays = derived.derive_arrays(columns, habitats)
+
+    for i in range(n):
+        one = derived.derive({k: columns[k][i] for k in columns}, habitats[i])
+        for d in derived.DERIVED:
+            expected, got = one.get(d.key), arrays[d.key][i]
+            assert (expected is None and math.isnan(got)) or expected == got, (i, d.key, expected, got)
+    assert all(not np.isnan(arrays[d.key]).all() for d in derived.DERIVED)
+
+
+def test_derive_arrays_leaves_salinity_from_conductivity_out_of_fresh_water():
+    import numpy as np
+
+    out = derived.derive_arrays({"temp_c": [15.0 / 1.00024] * 2, "ph": [None] * 2, "do_mg_l": [None] * 2,
+                                 "tan_mg_l": [None] * 2, "conductivity_us_cm": [42914.0] * 2, "salinity": [None] * 2},
+                                ["marine", "freshwater"])
+    # UNESCO 1983 (Tech. Pap. 44): C(35, 15 °C, 0 dbar) = 42.914 mS/cm -> S = 35
+    assert out["salinity_from_cond"][0] == pytest.approx(35.0, abs=1e-3)
+    assert np.isnan(out["salinity_from_cond"][1]) and np.isnan(out["nh3_mg_l"]).all()

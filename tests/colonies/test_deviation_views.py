@@ -106,7 +106,7 @@ def test_register_csv_lists_time_to_close(client, manager):
     dev.close(user=manager, corrective_action="Water changed")
     client.force_login(manager)
     response = client.get(reverse("colonies:deviation-csv"))
-    lines = response.content.decode().strip().splitlines()
+    lines = b"".join(response.streaming_content).decode().strip().splitlines()
     assert lines[0].startswith("id,tank,room,subject,rule,parameter,severity,status")
     row = lines[1].split(",")
     header = lines[0].split(",")

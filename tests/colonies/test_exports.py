@@ -10,3 +10,4 @@ def test_spreadsheet_safe_prefixes_formula_starts_and_leaves_the_rest():
     assert spreadsheet_safe("Heater replaced") == "Heater replaced"
     assert spreadsheet_safe(-3.5) == -3.5  # numbers are data, not text
     assert spreadsheet_safe("") == ""
+

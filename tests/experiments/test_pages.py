@@ -25,6 +25,12 @@ def _post_trial(client, study, cohort, **overrides):
 
 
 # --- bookings ---------------------------------------------------------------------------------------
+def _streamed(response) -> str:
+    """A downloaded CSV: every export streams (colonies/exports.py)."""
+    assert response.streaming and response.status_code == 200
+    return b"".join(response.streaming_content).decode("utf-8")
+
+
 def test_suggest_then_book_from_a_suggested_tank(client, researcher, protocol, tank):
     client.force_login(researcher)
     data = {"protocol": protocol.pk, "species": tank.species_id, "animals": 50, "needed_on": today().isoformat(),
@@ -185,12 +191,12 @@ def test_tidy_csv_has_one_row_per_trial_with_settings_derived_values_and_outcome
     study = _filled_study(researcher, protocol, tank, 2)
     client.force_login(researcher)
     response = client.get(reverse("experiments:study-csv", args=[study.code]))
-    rows = list(csv.DictReader(io.StringIO(response.content.decode())))
+    rows = list(csv.DictReader(io.StringIO(_streamed(response))))
     assert list(rows[0]) == TIDY_COLUMNS
     assert len(rows) == 8
     uv40 = next(r for r in rows if r["condition"] == "UV 40")
     assert (uv40["irradiance_mw_cm2"], uv40["duration_s"], uv40["dose_mj_cm2"]) == ("2", "20", "40")
-    km = client.get(reverse("experiments:study-chart-csv", args=[study.code, "km"])).content.decode()
+    km = _streamed(client.get(reverse("experiments:study-chart-csv", args=[study.code, "km"])))
     assert km.splitlines()[0] == "condition,time,at_risk,events,censored,survival,lower,upper"
 
 
@@ -222,9 +228,25 @@ def test_ledger_shows_running_totals_overrides_and_filters(client, researcher, m
     text = page_text(client.get(reverse("experiments:ledger")))
     assert "3 of 3" in text and "150 of 150" in text and "Dish cracked; rerun" in text and "▲ over: rest" in text
     response = client.get(reverse("experiments:ledger-csv"), {"overridden": "on"})
-    rows = list(csv.DictReader(io.StringIO(response.content.decode())))
+    rows = list(csv.DictReader(io.StringIO(_streamed(response))))
     assert list(rows[0]) == LEDGER_COLUMNS and len(rows) == 1
     assert (rows[0]["exposure_number"], rows[0]["cumulative_dose_mj_cm2"], rows[0]["over_limit"]) == ("3", "150", "rest")
+
+
+def test_ledger_csv_has_every_exposure_where_the_page_shows_the_first(client, researcher, manager, bench, monkeypatch):
+    from experiments import views
+
+    cohort, study = bench
+    for day in (9, 8, 7):
+        record(study, cohort, researcher, at=days_ago(day), irradiance=2, duration=10)
+    monkeypatch.setattr(views, "LEDGER_PAGE_ROWS", 2)
+    client.force_login(manager)
+
+    page = client.get(reverse("experiments:ledger"))
+    rows = list(csv.DictReader(io.StringIO(_streamed(client.get(reverse("experiments:ledger-csv"))))))
+
+    assert len(page.context["rows"]) == 2
+    assert [r["exposure_number"] for r in rows] == ["1", "2", "3"]
 
 
 # --- query counts stay constant ---------------------------------------------------------------------
@@ -249,7 +271,9 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
     }
     for url, limit in pages.items():
         with django_assert_max_num_queries(limit):
-            assert client.get(url).status_code == 200
+            response = client.get(url)
+            assert response.status_code == 200
+            b"".join(response.streaming_content) if response.streaming else response.content  # a CSV reads as it streams
 
 
 def test_booking_form_names_an_impossible_number(client, researcher, protocol, tank):
@@ -290,7 +314,7 @@ def test_cohort_page_ledger_and_trial_page_hide_blinded_settings_doses_and_overr
         assert "Higher irradiance" not in trial_page and "Irradiance 6" not in trial_page
     ledger = page_text(client.get(reverse("experiments:ledger")))
     assert trial.code in ledger and settings not in ledger and "Higher irradiance" not in ledger
-    [row] = csv.DictReader(io.StringIO(client.get(reverse("experiments:ledger-csv")).content.decode()))
+    [row] = csv.DictReader(io.StringIO(_streamed(client.get(reverse("experiments:ledger-csv")))))
     assert (row["stimulus"], row["settings"], row["dose_mj_cm2"], row["cumulative_dose_mj_cm2"]) == \
         ("blinded", f"blinded: code {trial.code}", "", "")
     assert row["exposure_number"] == "1" and row["over_limit"] == ""
@@ -392,12 +416,11 @@ def test_csv_exports_defuse_formula_text_and_keep_negative_numbers(client, resea
     record(study, make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(10)), manager,
            at=days_ago(9), irradiance=6, duration=5, override_reason="+dish cracked")
     client.force_login(researcher)
-    rows = list(csv.DictReader(io.StringIO(client.get(reverse("experiments:study-csv", args=[study.code]))
-                                           .content.decode())))
+    rows = list(csv.DictReader(io.StringIO(_streamed(client.get(reverse("experiments:study-csv", args=[study.code]))))))
     row = next(r for r in rows if r["code"] == trial.code)
     assert (row["condition"], row["exclusion_reason"], row["temp_step_c"]) == \
         ("'-2 °C step", "'=HYPERLINK(\"http://x\")", "-2")
     assert next(r for r in rows if r["code"] != trial.code)["override_reason"] == "'+dish cracked"
     client.force_login(manager)
-    ledger = list(csv.DictReader(io.StringIO(client.get(reverse("experiments:ledger-csv")).content.decode())))
+    ledger = list(csv.DictReader(io.StringIO(_streamed(client.get(reverse("experiments:ledger-csv"))))))
     assert {r["override_reason"] for r in ledger} == {"", "'+dish cracked"}
