@@ -97,15 +97,15 @@ KEYS = tuple(BY_KEY)
 
 def derive(readings: Readings, habitat: str) -> dict[str, float | None]:
     """All derived values that apply to the habitat; None where inputs are missing or out of range."""
-    out: dict[str, float | None] = {}
-    for d in DERIVED:
-        if not d.applies_to(habitat):
-            continue
-        try:
-            out[d.key] = d.compute(readings, habitat)
-        except (LookupError, ValueError):
-            out[d.key] = None
-    return out
+    return {d.key: value_of(d, readings, habitat) for d in DERIVED if d.applies_to(habitat)}
+
+
+def value_of(d: DerivedValue, readings: Readings, habitat: str) -> float | None:
+    """One derived value; None where an input is missing or out of its method's range (the rules' arrays use this)."""
+    try:
+        return d.compute(readings, habitat)
+    except (LookupError, ValueError):
+        return None
 
 
 def for_habitat(habitat: str) -> tuple[DerivedValue, ...]:

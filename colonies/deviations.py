@@ -11,52 +11,26 @@ single unresolved deviation per (tank, rule, parameter, subject), which gains ev
 of evidence has a `ref` so running a rule twice on the same records adds nothing. Nothing closes a
 deviation automatically: a value back in range is new evidence, not a corrective action.
 
-Later rules (stocking density, protocol limits) register with `record_rule` / `scan_rule`, or call
-`apply_findings` directly.
+The record rules themselves live in colonies/record_rules.py and read checks as columns
+(colonies/check_frames.py). Later rules (stocking density, protocol limits) register with
+`record_rule` / `scan_rule`, or call `apply_findings` directly.
 """
-import bisect
-import math
-from collections import defaultdict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
 from django.db import IntegrityError, transaction
-from django.db.models import OuterRef, Q, Subquery
+from django.db.models import Max, Min, OuterRef, Q, Subquery
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history, bulk_update_with_history
 
-from . import control_charts, derived
-from .flags import Target, out_of_target
+from . import check_frames
+from .check_frames import HISTORY_DAYS, WINDOW_DAYS, CheckFrame  # noqa: F401 (HISTORY_DAYS, WINDOW_DAYS: API)
+from .flags import Target
 from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank, overdue_grace
 
 Severity = Deviation.Severity
 Rule = Deviation.Rule
-
-
-# Mortality: a check's dead count opens a deviation when it is at least MORTALITY_MIN_DEAD and
-# above the tank's recent baseline by 3 Poisson standard deviations (mean + 3 sqrt(mean)), or above
-# MORTALITY_FRACTION of the latest population estimate.
-MORTALITY_BASELINE_CHECKS = 14
-MORTALITY_MIN_BASELINE = 5  # fewer earlier checks than this: only the fraction-of-estimate test applies
-MORTALITY_MIN_DEAD = 5  # common practice: a handful of dead worms is normal turnover
-MORTALITY_FRACTION = 0.02  # common practice: 2 % of the culture in one day
-
-# Drift: EWMA chart, lambda = 0.3, L = 3 (NIST/SEMATECH e-Handbook of Statistical Methods,
-# §6.3.2.4), baseline mean and sigma (average moving range / 1.128) from the readings before the
-# last DRIFT_WINDOW ones. Fires only while the newest reading is still inside the target and the
-# EWMA has moved toward a target limit and into the outer DRIFT_ZONE of the target band next to
-# it: it warns before a breach. (Real husbandry series are autocorrelated, so a bare EWMA signal
-# with a moving-range sigma alarms too often; the zone condition keeps warnings to drifts that
-# matter for the culture.)
-DRIFT_LAMBDA = 0.3
-DRIFT_L = 3.0
-DRIFT_WINDOW = 7
-DRIFT_MIN_BASELINE = 10
-DRIFT_ZONE = 0.25  # common practice: warn in the outer quarter of the target band
-DRIFT_METHOD = "EWMA chart, λ = 0.3, L = 3 (NIST/SEMATECH e-Handbook §6.3.2.4)"
-HISTORY_DAYS = 35  # how far back record rules look for baselines
-WINDOW_DAYS = 60  # a rescan loads its context in slices of this much observed time
 
 
 @dataclass(frozen=True)
@@ -84,7 +58,7 @@ class Outcome:
         return f"{len(self.created)} opened, {len(self.updated)} updated"
 
 
-RecordRule = Callable[[list[Check], "Context"], Iterable[Finding]]
+RecordRule = Callable[[CheckFrame], Iterable[Finding]]
 ScanRule = Callable[[list[Tank], datetime], Iterable[Finding]]
 RECORD_RULES: list[RecordRule] = []
 SCAN_RULES: list[ScanRule] = []
@@ -126,188 +100,71 @@ def severity_outside(value: float, target: Target) -> int:
 
 
 # ---------------------------------------------------------------------------------------------
-# Record rules
+# Running the record rules
 # ---------------------------------------------------------------------------------------------
-@dataclass
-class Context:
-    """What record rules may read, loaded in a fixed number of queries for a batch of checks."""
-
-    tanks: dict[int, Tank]
-    series: dict[int, list[Check]]  # per tank: earlier stored checks and the batch, oldest first
-    latest_estimate: dict[int, float | None]
-    _values: dict[int, dict] = field(default_factory=dict)
-    _position: dict[int, int] = field(default_factory=dict)
-
-    _since: dict[int, int] = field(default_factory=dict)
-
-    @classmethod
-    def load(cls, checks: list[Check]) -> "Context":
-        """Tanks and their stored checks from HISTORY_DAYS before the batch's oldest check to its newest (four
-        queries). Later checks cannot be earlier than any in the batch, so they are not read."""
-        tank_ids = {c.tank_id for c in checks}
-        tanks = {
-            t.pk: t for t in Tank.objects.filter(pk__in=tank_ids).select_related("species")
-            .prefetch_related("species__targets", "target_overrides")
-            .annotate(latest_estimate=Subquery(
-                Census.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at").values("estimate")[:1]
-            ))
-        }
-        oldest = min(c.observed_at for c in checks) - timedelta(days=HISTORY_DAYS)
-        newest = max(c.observed_at for c in checks)
-        batch = {c.pk for c in checks}
-        series: dict[int, list[Check]] = defaultdict(list)
-        stored = Check.objects.current().filter(tank_id__in=tank_ids, observed_at__gte=oldest, observed_at__lte=newest)
-        for c in [c for c in stored if c.pk not in batch] + list(checks):  # the batch's own objects, not copies
-            c.tank = tanks[c.tank_id]
-            series[c.tank_id].append(c)
-        ctx = cls(tanks, series, {pk: t.latest_estimate for pk, t in tanks.items()})
-        for items in series.values():
-            items.sort(key=lambda c: (c.observed_at, c.pk))
-            times = [c.observed_at for c in items]
-            for i, c in enumerate(items):
-                ctx._position[id(c)] = i
-                ctx._since[id(c)] = bisect.bisect_left(times, c.observed_at - timedelta(days=HISTORY_DAYS), 0, i)
-        return ctx
-
-    def earlier(self, check: Check, limit: int | None = None) -> list[Check]:
-        """The tank's checks before `check` (oldest first), at most HISTORY_DAYS back from it and at most
-        `limit` of them: what the rules saw when the check was saved, however large the batch."""
-        end = self._position[id(check)]
-        start = self._since[id(check)] if limit is None else max(self._since[id(check)], end - limit)
-        return self.series[check.tank_id][start:end]
-
-    def values(self, check: Check) -> dict:
-        cached = self._values.get(id(check))
-        if cached is None:
-            cached = self._values[id(check)] = check.values()
-        return cached
-
-
-def _local(dt: datetime) -> str:
+def local_text(dt: datetime) -> str:
     return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M")
 
 
-@record_rule
-def out_of_target_rule(checks, ctx):
-    for check in checks:
-        tank = ctx.tanks[check.tank_id]
-        targets = tank.care_targets()
-        for key, value in ctx.values(check).items():
-            target = targets.get(key)
-            side = out_of_target(value, target)
-            if not side:
-                continue
-            entry = derived.label_for(key)
-            yield Finding(
-                tank.pk, Rule.OUT_OF_TARGET, severity_outside(value, target),
-                f"{entry.label} {entry.format(value)} {entry.unit} {'below' if side == 'low' else 'above'} "
-                f"target {target.text(entry.unit)}",
-                {"ref": f"check:{check.pk}:{key}", "check": check.pk, "at": _local(check.observed_at),
-                 "value": value, "low": target.low, "high": target.high, "side": side},
-                check.observed_at, parameter=key,
-            )
-
-
-@record_rule
-def mortality_rule(checks, ctx):
-    for check in checks:
-        dead = check.dead_removed or 0
-        if dead < MORTALITY_MIN_DEAD:
-            continue
-        earlier = ctx.earlier(check, MORTALITY_BASELINE_CHECKS)
-        baseline = sum(c.dead_removed for c in earlier) / len(earlier) if earlier else 0.0
-        poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
-        estimate = ctx.latest_estimate.get(check.tank_id)
-        fraction = dead / estimate if estimate else None
-        above_baseline = len(earlier) >= MORTALITY_MIN_BASELINE and dead > poisson_limit
-        above_fraction = fraction is not None and fraction > MORTALITY_FRACTION
-        if not (above_baseline or above_fraction):
-            continue
-        severity = Severity.MAJOR if (fraction is not None and fraction > 2.5 * MORTALITY_FRACTION) or dead > 2 * poisson_limit else Severity.MODERATE
-        why = [f"baseline {baseline:.1f}/check over {len(earlier)} checks, limit {poisson_limit:.1f}"]
-        if fraction is not None:
-            why.append(f"{100 * fraction:.1f} % of the latest estimate ({estimate:.0f})")
-        yield Finding(
-            check.tank_id, Rule.MORTALITY, severity, f"{dead} dead removed ({'; '.join(why)})",
-            {"ref": f"check:{check.pk}:dead", "check": check.pk, "at": _local(check.observed_at), "dead": dead,
-             "baseline": round(baseline, 2), "limit": round(poisson_limit, 2),
-             "fraction_of_estimate": None if fraction is None else round(fraction, 4)},
-            check.observed_at,
-        )
-
-
-@record_rule
-def drift_rule(checks, ctx):
-    for check in checks:
-        tank = ctx.tanks[check.tank_id]
-        targets = tank.care_targets()
-        series = ctx.earlier(check, DRIFT_WINDOW + 40) + [check]
-        for key, value in ctx.values(check).items():
-            target = targets.get(key)
-            if value is None or target is None or out_of_target(value, target):
-                continue
-            values = [v for v in (ctx.values(c).get(key) for c in series) if v is not None]
-            if len(values) < DRIFT_MIN_BASELINE + DRIFT_WINDOW:
-                continue
-            baseline, recent = values[:-DRIFT_WINDOW], values[-DRIFT_WINDOW:]
-            try:
-                centre, sigma = control_charts.estimate_baseline(baseline)
-                signals = control_charts.ewma_signals(recent, centre, sigma, DRIFT_LAMBDA, DRIFT_L)
-            except ValueError:
-                continue
-            if not signals or signals[-1].index != len(recent) - 1:
-                continue
-            z = control_charts.ewma(recent, DRIFT_LAMBDA, centre)[-1]
-            toward = ("high" if z > centre else "low")
-            limit = target.high if toward == "high" else target.low
-            if limit is None or not _near_limit(z, target, toward):
-                continue
-            entry = derived.label_for(key)
-            yield Finding(
-                tank.pk, Rule.DRIFT, Severity.MINOR,
-                f"{entry.label} drifting {'up' if toward == 'high' else 'down'} toward {limit:g} {entry.unit} "
-                f"(EWMA {z:.{entry.decimals + 1}f}, baseline {centre:.{entry.decimals + 1}f}); {DRIFT_METHOD}",
-                {"ref": f"check:{check.pk}:{key}:drift", "check": check.pk, "at": _local(check.observed_at),
-                 "value": value, "ewma": round(z, 4), "centre": round(centre, 4), "sigma": round(sigma, 4),
-                 "limit": limit, "method": DRIFT_METHOD},
-                check.observed_at, parameter=key,
-            )
-
-
-def _near_limit(z: float, target: Target, toward: str) -> bool:
-    """Is the EWMA in the outer DRIFT_ZONE of the band next to the limit it moves toward?"""
-    limit = target.high if toward == "high" else target.low
-    if target.low is not None and target.high is not None:
-        margin = DRIFT_ZONE * (target.high - target.low)
-    else:
-        margin = DRIFT_ZONE * abs(limit) if limit else 0.0
-    return (limit - z <= margin) if toward == "high" else (z - limit <= margin)
+def findings_in(frame: CheckFrame) -> list[Finding]:
+    return [f for rule in RECORD_RULES for f in rule(frame)]
 
 
 def evaluate_checks(checks: list[Check], now: datetime | None = None) -> Outcome:
-    """Run every record rule on freshly saved checks (fixed number of queries for the batch)."""
+    """Run every record rule on freshly saved checks (fixed number of queries for a round).
+
+    Each check is judged against the current checks of its tank in the HISTORY_DAYS before it, as
+    when it was saved, however large the batch; a large batch is read WINDOW_DAYS at a time.
+    """
     checks = [c for c in checks if c.pk and not c.is_voided]
     if not checks:
         return Outcome()
+    moments = [c.observed_at for c in checks]
     findings = []
-    for window in _windows(checks):
-        ctx = Context.load(window)
-        findings += [f for rule in RECORD_RULES for f in rule(window, ctx)]
+    for frame in check_frames.frames(start=min(moments), stop=max(moments), tank_ids={c.tank_id for c in checks},
+                                     only={c.pk for c in checks}):
+        findings += findings_in(frame)
     return apply_findings(findings, now=now)
 
 
-def _windows(checks: list[Check]) -> list[list[Check]]:
-    """The batch cut into WINDOW_DAYS slices of observed time (a round is one slice), each in its given order.
+@dataclass
+class Rescan:
+    checks: int = 0
+    findings: int = 0
+    opened: set = field(default_factory=set)  # ids of the deviations it opened
+    updated: set = field(default_factory=set)  # ids of deviations it found open and added evidence to
 
-    Bounds what a rescan of years of checks holds in memory; each check still sees HISTORY_DAYS before it.
-    Checks observed at the same moment fall in the same slice, so apply_findings sees same-moment findings
-    in the order a single batch would give them.
+    def __str__(self):
+        return (f"{self.checks} checks judged, {self.findings} findings; "
+                f"{len(self.opened)} opened, {len(self.updated - self.opened)} updated")
+
+
+def rescan(*, since: datetime | None = None, now: datetime | None = None, dry_run: bool = False) -> Rescan:
+    """Run the record rules over every current check observed since `since` (all when None).
+
+    Each check is judged as evaluate_checks judges it when it is saved (the same frames and rules),
+    against the care targets and population estimate in force now. A window of WINDOW_DAYS at a
+    time: memory stays bounded, and each window's findings are applied in their own transaction
+    (unless the caller holds one), so the tanks' locks are held for one window, not the whole run.
+    Idempotent: evidence refs make a second run add nothing.
     """
-    start = min(c.observed_at for c in checks)
-    windows: dict[int, list[Check]] = defaultdict(list)
-    for c in checks:
-        windows[(c.observed_at - start) // timedelta(days=WINDOW_DAYS)].append(c)
-    return [windows[k] for k in sorted(windows)]
+    now = now or timezone.now()
+    checks = Check.objects.current()
+    if since is not None:
+        checks = checks.filter(observed_at__gte=since)
+    span = checks.aggregate(first=Min("observed_at"), last=Max("observed_at"))
+    report = Rescan()
+    if span["first"] is None:
+        return report
+    for frame in check_frames.frames(start=span["first"], stop=span["last"]):
+        findings = findings_in(frame)
+        report.checks += int(frame.judge.sum())
+        report.findings += len(findings)
+        if not dry_run:
+            outcome = apply_findings(findings, now=now)
+            report.opened.update(d.pk for d in outcome.created)
+            report.updated.update(d.pk for d in outcome.updated)
+    return report
 
 
 # ---------------------------------------------------------------------------------------------
@@ -328,9 +185,9 @@ def _overdue(tank, now, label, last, interval, rule):
     late_text = f"{hours:.0f} h" if hours < 48 else f"{hours / 24:.1f} days"
     return Finding(
         tank.pk, rule, severity,
-        f"{label} {late_text} overdue (last {_local(last) if last else 'never'}, due {_local(due_at)})",
-        {"ref": f"due:{due_at.isoformat()}", "last": _local(last) if last else None, "due": _local(due_at),
-         "seen": _local(now)},
+        f"{label} {late_text} overdue (last {local_text(last) if last else 'never'}, due {local_text(due_at)})",
+        {"ref": f"due:{due_at.isoformat()}", "last": local_text(last) if last else None, "due": local_text(due_at),
+         "seen": local_text(now)},
         due_at,
     )
 
@@ -479,7 +336,7 @@ def density_finding(tank: Tank, estimate: float | None, at: datetime, ref: str, 
         tank.pk, Rule.STOCKING_DENSITY, severity,
         f"{density:.0f} animals/L ({what} {estimate:.0f} animals in {tank.volume_l:g} L) is above the maximum "
         f"{limit} animals/L ({100 * ratio:.0f} %)",
-        {"ref": ref, "at": _local(at), "estimate": round(estimate, 1), "volume_l": tank.volume_l,
+        {"ref": ref, "at": local_text(at), "estimate": round(estimate, 1), "volume_l": tank.volume_l,
          "density_per_l": round(density, 2), "max_per_l": limit},
         at,
     )
@@ -545,3 +402,6 @@ def stocking_density_rule(tanks, now):
             finding = density_finding(tank, value, at, ref, what)
             if finding:
                 yield finding
+
+
+from . import record_rules  # noqa: E402,F401  (registers the record rules; they import this module's names)
