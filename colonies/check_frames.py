@@ -51,10 +51,13 @@ class CheckFrame:
     judge: np.ndarray  # bool: the rows the rules judge; the others are only history before them
     tanks: dict[int, TankFacts]
     row: np.ndarray = field(init=False)
+    tank_ids: np.ndarray = field(init=False)  # the frame's tanks, sorted
+    tank_index: np.ndarray = field(init=False)  # per row: its tank's place in tank_ids
     since: np.ndarray = field(init=False)  # per row: the first row of its tank within HISTORY_DAYS before it
 
     def __post_init__(self):
         self.row = np.arange(len(self.pk))
+        self.tank_ids, self.tank_index = np.unique(self.tank, return_inverse=True)
         # One sorted key over all tanks (tank rank, then time), so a single searchsorted finds each
         # row's first check within HISTORY_DAYS in its own tank: a tank's span never reaches the next.
         new_tank = np.r_[True, self.tank[1:] != self.tank[:-1]] if len(self.pk) else np.zeros(0, bool)
@@ -89,8 +92,7 @@ class CheckFrame:
         return self._per_tank(lambda t: t.latest_estimate or np.nan)
 
     def _per_tank(self, value) -> np.ndarray:
-        ids, index = np.unique(self.tank, return_inverse=True)
-        return np.array([value(self.tanks[int(t)]) for t in ids], dtype=float)[index]
+        return np.array([value(self.tanks[int(t)]) for t in self.tank_ids], dtype=float)[self.tank_index]
 
 
 def _end(target: Target | None, end: str) -> float:

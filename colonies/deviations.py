@@ -15,6 +15,7 @@ The record rules themselves live in colonies/record_rules.py and read checks as 
 (colonies/check_frames.py). Later rules (stocking density, protocol limits) register with
 `record_rule` / `scan_rule`, or call `apply_findings` directly.
 """
+from collections import defaultdict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
@@ -27,7 +28,7 @@ from simple_history.utils import bulk_create_with_history, bulk_update_with_hist
 from . import check_frames
 from .check_frames import HISTORY_DAYS, WINDOW_DAYS, CheckFrame  # noqa: F401 (HISTORY_DAYS, WINDOW_DAYS: API)
 from .flags import Target
-from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank, overdue_grace
+from .models import EVIDENCE_KEEP, ArchivedEvidence, Census, Check, Deviation, Tank, overdue_grace
 
 Severity = Deviation.Severity
 Rule = Deviation.Rule
@@ -223,6 +224,7 @@ def scan(now: datetime | None = None, *, dry_run: bool = False) -> tuple[list[Fi
 # Findings to deviations
 # ---------------------------------------------------------------------------------------------
 CONFLICT_RETRIES = 3  # a finding without a tank lost the race to insert its deviation: read again and retry
+ARCHIVE_LOOKUP_CHUNK = 500  # refs per query against the evidence archive (databases cap a statement's parameters)
 
 
 @transaction.atomic
@@ -267,21 +269,30 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
     if subjects:
         for dev in unresolved.filter(tank__isnull=True, subject__in=subjects).select_for_update(no_key=True):
             existing[(None, dev.rule, dev.parameter, dev.subject)] = dev
-    # Evidence already answered: a finding about the same record as a closed deviation (a correction
-    # re-running the rules on an old check, say) must not reopen it. One query.
-    answered = set()
+    # Evidence already counted is not added again: refs a deviation shows or has archived, open or
+    # closed. A finding about the same record as a closed deviation (a correction re-running the rules
+    # on an old check, a rescan) must not reopen it. One query, two when a deviation has archived some.
+    seen = set()
+    truncated = {}  # id -> key of the deviations holding more evidence than they show
     earliest = min(f.at for f in findings)
     closed = Deviation.objects.filter(status=Deviation.Status.CLOSED, rule__in={f.rule for f in findings},
                                       last_seen_at__gte=earliest)
     closed = closed.filter(tank_id__in=tank_ids) if not subjects else closed.filter(
         Q(tank_id__in=tank_ids) | Q(tank__isnull=True, subject__in=subjects))
-    for dev in closed.only("tank_id", "rule", "parameter", "subject", "evidence"):
-        answered.update(((dev.tank_id, dev.rule, dev.parameter, dev.subject), e.get("ref")) for e in dev.evidence)
+    for dev in [*existing.values(), *closed.only("tank_id", "rule", "parameter", "subject", "evidence",
+                                                 "evidence_count")]:
+        key = (dev.tank_id, dev.rule, dev.parameter, dev.subject)
+        seen.update((key, e.get("ref")) for e in dev.evidence)
+        if dev.evidence_count > len(dev.evidence):
+            truncated[dev.pk] = key
+    seen |= _archived(truncated, {f.evidence["ref"] for f in findings if f.key in truncated.values()})
     new: dict[tuple, Deviation] = {}
     changed: dict[int, Deviation] = {}
+    archive: dict[tuple, list[dict]] = defaultdict(list)  # evidence pushed out of the newest EVIDENCE_KEEP
     for f in sorted(findings, key=lambda f: f.at):
-        if (f.key, f.evidence["ref"]) in answered:
+        if (f.key, f.evidence["ref"]) in seen:
             continue
+        seen.add((f.key, f.evidence["ref"]))
         dev = existing.get(f.key) or new.get(f.key)
         if dev is None:
             new[f.key] = Deviation(
@@ -289,9 +300,9 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
                 opened_at=f.at, last_seen_at=f.at, summary=f.summary[:300], evidence=[f.evidence], evidence_count=1,
             )
             continue
-        if any(e.get("ref") == f.evidence["ref"] for e in dev.evidence):
-            continue
-        dev.evidence = (dev.evidence + [f.evidence])[-EVIDENCE_KEEP:]
+        evidence = dev.evidence + [f.evidence]
+        dev.evidence = evidence[-EVIDENCE_KEEP:]
+        archive[f.key] += evidence[:-EVIDENCE_KEEP]
         dev.evidence_count += 1
         dev.last_seen_at = max(dev.last_seen_at, f.at)
         dev.severity = max(dev.severity, f.severity)
@@ -302,6 +313,7 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
         outcome.created = bulk_create_with_history(
             list(new.values()), Deviation, default_user=user, default_change_reason="Opened by rule", default_date=now,
         )
+        new = {(d.tank_id, d.rule, d.parameter, d.subject): d for d in outcome.created}
     if changed:
         bulk_update_with_history(
             list(changed.values()), Deviation,
@@ -309,7 +321,22 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
             default_user=user, default_change_reason="New evidence", default_date=now,
         )
         outcome.updated = list(changed.values())
+    if archive:
+        ArchivedEvidence.objects.bulk_create(
+            ArchivedEvidence(deviation_id=(existing.get(key) or new[key]).pk, ref=item["ref"], item=item)
+            for key, items in archive.items() for item in items)
     return outcome
+
+
+def _archived(deviations: dict[int, tuple], refs: set[str]) -> set[tuple]:
+    """(deviation key, ref) for each of `refs` that one of these deviations has archived."""
+    found: set[tuple] = set()
+    refs = sorted(refs)
+    for chunk in range(0, len(refs), ARCHIVE_LOOKUP_CHUNK):
+        found.update((deviations[pk], ref) for pk, ref in ArchivedEvidence.objects.filter(
+            deviation_id__in=list(deviations), ref__in=refs[chunk:chunk + ARCHIVE_LOOKUP_CHUNK],
+        ).values_list("deviation_id", "ref"))
+    return found
 
 
 # ---------------------------------------------------------------------------------------------

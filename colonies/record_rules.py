@@ -15,7 +15,7 @@ import numpy as np
 from . import control_charts, derived
 from .check_frames import CheckFrame
 from .deviations import Finding, Rule, Severity, local_text, record_rule, severity_outside
-from .flags import Target, sides
+from .flags import sides
 
 # Mortality: a check's dead count opens a deviation when it is at least MORTALITY_MIN_DEAD and
 # above the tank's recent baseline by 3 Poisson standard deviations (mean + 3 sqrt(mean)), or above
@@ -122,37 +122,34 @@ def drift_rule(frame: CheckFrame):
         z = control_charts.ewma_columns(recent, DRIFT_LAMBDA, centre)[-1]
         lcl, ucl = control_charts.ewma_limits(centre, sigma, DRIFT_LAMBDA, DRIFT_L, t=DRIFT_WINDOW)
         signal = ~((lcl <= z) & (z <= ucl))  # the newest point's EWMA outside its exact limits
-        for n in np.flatnonzero(signal).tolist():
-            finding = _drift_finding(frame, int(rows[n]), key, float(values[rows[n]]), float(z[n]),
-                                     float(centre[n]), float(sigma[n]))
-            if finding:
-                yield finding
+        toward_high = z > centre
+        fire = signal & near_limit(z, toward_high, low[rows], high[rows])
+        for n in np.flatnonzero(fire).tolist():
+            yield _drift_finding(frame, int(rows[n]), key, bool(toward_high[n]), float(z[n]), float(centre[n]),
+                                 float(sigma[n]))
 
 
-def _drift_finding(frame: CheckFrame, i: int, key: str, value: float, z: float, centre: float,
-                   sigma: float) -> Finding | None:
+def near_limit(z: np.ndarray, toward_high: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    """Is the EWMA in the outer DRIFT_ZONE of the band next to the limit it moves toward (NaN: open end)?
+
+    The zone is a share of the band, or of the limit itself for a one-sided target.
+    """
+    limit = np.where(toward_high, high, low)
+    margin = np.where(np.isnan(low) | np.isnan(high), DRIFT_ZONE * np.abs(limit), DRIFT_ZONE * (high - low))
+    return np.where(toward_high, limit - z <= margin, z - limit <= margin)  # NaN limit: False
+
+
+def _drift_finding(frame: CheckFrame, i: int, key: str, toward_high: bool, z: float, centre: float,
+                   sigma: float) -> Finding:
     target = frame.target(i, key)
-    toward = "high" if z > centre else "low"
-    limit = target.high if toward == "high" else target.low
-    if limit is None or not _near_limit(z, target, toward):
-        return None
+    limit = target.high if toward_high else target.low
     entry, at = derived.label_for(key), frame.observed_at(i)
     return Finding(
         int(frame.tank[i]), Rule.DRIFT, Severity.MINOR,
-        f"{entry.label} drifting {'up' if toward == 'high' else 'down'} toward {limit:g} {entry.unit} "
+        f"{entry.label} drifting {'up' if toward_high else 'down'} toward {limit:g} {entry.unit} "
         f"(EWMA {z:.{entry.decimals + 1}f}, baseline {centre:.{entry.decimals + 1}f}); {DRIFT_METHOD}",
         {"ref": f"check:{frame.pk[i]}:{key}:drift", "check": int(frame.pk[i]), "at": local_text(at),
-         "value": value, "ewma": round(z, 4), "centre": round(centre, 4), "sigma": round(sigma, 4),
-         "limit": limit, "method": DRIFT_METHOD},
+         "value": float(frame.values[key][i]), "ewma": round(z, 4), "centre": round(centre, 4),
+         "sigma": round(sigma, 4), "limit": limit, "method": DRIFT_METHOD},
         at, parameter=key,
     )
-
-
-def _near_limit(z: float, target: Target, toward: str) -> bool:
-    """Is the EWMA in the outer DRIFT_ZONE of the band next to the limit it moves toward?"""
-    limit = target.high if toward == "high" else target.low
-    if target.low is not None and target.high is not None:
-        margin = DRIFT_ZONE * (target.high - target.low)
-    else:
-        margin = DRIFT_ZONE * abs(limit) if limit else 0.0
-    return (limit - z <= margin) if toward == "high" else (z - limit <= margin)
