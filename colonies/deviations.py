@@ -135,9 +135,15 @@ class Rescan:
     opened: set = field(default_factory=set)  # ids of the deviations it opened
     updated: set = field(default_factory=set)  # ids of deviations it found open and added evidence to
 
+    def judged(self) -> str:
+        return f"{_count(self.checks, 'check')} judged, {_count(self.findings, 'finding')}"
+
     def __str__(self):
-        return (f"{self.checks} checks judged, {self.findings} findings; "
-                f"{len(self.opened)} opened, {len(self.updated - self.opened)} updated")
+        return f"{self.judged()}; {len(self.opened)} opened, {len(self.updated - self.opened)} updated"
+
+
+def _count(n: int, word: str) -> str:
+    return f"{n} {word}{'' if n == 1 else 's'}"
 
 
 def rescan(*, since: datetime | None = None, now: datetime | None = None, dry_run: bool = False) -> Rescan:

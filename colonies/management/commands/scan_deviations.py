@@ -29,8 +29,7 @@ class Command(BaseCommand):
         if records:
             report = deviations.rescan(since=_start(since), dry_run=dry_run)
             if dry_run:
-                self.stdout.write(f"Dry run: {report.checks} checks judged, {report.findings} findings; "
-                                  "nothing written.")
+                self.stdout.write(f"Dry run: {report.judged()}; nothing written.")
             else:
                 self.stdout.write(f"Rescanned records: {report}.")
             return
