@@ -150,10 +150,10 @@ def frames(*, start: datetime, stop: datetime, tank_ids: Iterable[int] | None = 
 
 
 def _read(checks, keys: list[str], tanks: dict[int, TankFacts]) -> dict[str, np.ndarray]:
-    """Columns of the checks, ordered by (observed time, id) as the export index gives them."""
+    """Columns of the checks in the order the database finds them (frames() sorts them; an ORDER BY
+    made PostgreSQL sort every window: 96 of its 125 ms)."""
     fields = ["id", "tank_id", "at", "dead_removed", *parameters.KEYS]
-    sql, params = (checks.annotate(at=_observed_micros()).order_by("observed_at", "id")
-                   .values_list(*fields).query.sql_with_params())
+    sql, params = checks.annotate(at=_observed_micros()).order_by().values_list(*fields).query.sql_with_params()
     with connection.cursor() as cursor:
         cursor.execute(sql, params)
         rows = pd.DataFrame.from_records(cursor.fetchall(), columns=fields, coerce_float=True)
