@@ -85,7 +85,7 @@ def mortality_rule(frame: CheckFrame):
         fraction = dead / float(estimate[i]) if known else None
         severity = (Severity.MAJOR if (fraction is not None and fraction > 2.5 * MORTALITY_FRACTION)
                     or dead > 2 * limit_i else Severity.MODERATE)
-        why = [f"baseline {mean:.1f}/check over {counts[i]} checks, limit {limit_i:.1f}"]
+        why = [f"baseline {mean:.1f}/check over {int(counts[i])} checks, limit {limit_i:.1f}"]
         if fraction is not None:
             why.append(f"{100 * fraction:.1f} % of the latest estimate ({float(estimate[i]):.0f})")
         at = frame.observed_at(i)
