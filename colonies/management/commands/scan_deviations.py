@@ -12,11 +12,11 @@ class Command(BaseCommand):
     help = ("Run the time-based deviation rules (missed checks; feeding, water change and census overdue). "
             "Idempotent: running it twice opens nothing new. Schedule it, e.g. hourly. "
             "With --records, run the record rules (out of target, mortality, drift) over the stored checks "
-            "instead, as when each was saved, against the care targets in force now: after a change of rules "
-            "or targets, a restore or an import.")
+            "instead: each judged against the checks before it, as when it was saved, and against the care "
+            "targets in force now. Run it after a change of rules or targets, a restore or an import.")
 
     def add_arguments(self, parser):
-        parser.add_argument("--dry-run", action="store_true", help="Report what would be opened, write nothing.")
+        parser.add_argument("--dry-run", action="store_true", help="Report what the rules find; write nothing.")
         parser.add_argument("--records", action="store_true",
                             help="Rescan the record rules over the stored checks (idempotent; commits two months "
                                  "of checks at a time, so rounds saved meanwhile wait at most for one).")
