@@ -7,10 +7,17 @@ We use the Western Electric set (8 in a row on one side), not Nelson's (1984) 9 
 technicians: the handbook notes that applying all four rules together raises the false-alarm rate of
 an in-control process from about 1 point in 371 to about 1 in 92, so a single signal is a prompt to
 look, not proof of a fault.
+
+The EWMA and the baseline estimate also work on many series at once (numpy arrays, one column per
+series), which is how the drift rule runs over years of checks; the one-series functions call the same
+code. Sums run in the order of the data, as Python's `sum` does, so one series or many give the same
+bits.
 """
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+
+import numpy as np
 
 # d2 for subgroups of n = 2: converts the average moving range to sigma (NIST §6.3.2, individuals chart).
 D2_MOVING_RANGE = 1.128
@@ -38,14 +45,14 @@ def _check_values(values: Sequence[float]) -> list[float]:
     return [float(v) for v in values]
 
 
-def _check_sigma(sigma: float) -> None:
+def _check_sigma(name: str, sigma: float) -> None:
     if not (sigma > 0 and math.isfinite(sigma)):
-        raise ValueError(f"sigma={sigma!r} is not valid: it must be a finite number greater than 0")
+        raise ValueError(f"{name}={float(sigma)!r} is not valid: it must be a finite number greater than 0")
 
 
 def _check_finite(name: str, value: float) -> None:
     if not math.isfinite(value):
-        raise ValueError(f"{name}={value!r} is not a finite number")
+        raise ValueError(f"{name}={float(value)!r} is not a finite number")
 
 
 def _check_lam(lam: float) -> None:
@@ -70,24 +77,32 @@ def ewma(values: Sequence[float], lam: float = 0.3, target: float | None = None)
     _check_lam(lam)
     if target is not None:
         _check_finite("target", target)
-    current = sum(data) / len(data) if target is None else target
-    result = []
-    for y in data:
-        current = lam * y + (1 - lam) * current
-        result.append(current)
+    start = sum(data) / len(data) if target is None else target
+    return ewma_columns(np.array(data)[:, np.newaxis], lam, np.array([start]))[:, 0].tolist()
+
+
+def ewma_columns(values: np.ndarray, lam: float, start: np.ndarray) -> np.ndarray:
+    """The EWMA of every column of `values` (rows are successive points), each from its own EWMA_0."""
+    current = np.asarray(start, dtype=float)
+    result = np.empty(values.shape)
+    for t, row in enumerate(values):
+        current = lam * row + (1 - lam) * current
+        result[t] = current
     return result
 
 
 def ewma_limits(
-    target: float, sigma: float, lam: float, L: float = 3.0, t: int | None = None  # noqa: N803 (NIST's name)
-) -> tuple[float, float]:
+    target: float | np.ndarray, sigma: float | np.ndarray, lam: float, L: float = 3.0,  # noqa: N803 (NIST's name)
+    t: int | None = None,
+) -> tuple[float, float] | tuple[np.ndarray, np.ndarray]:
     """(LCL, UCL) of the EWMA chart: target ± L sigma sqrt(lam / (2 - lam) [1 - (1 - lam)^(2t)]).
 
     NIST §6.3.2.4. With t=None the asymptotic limits (the bracket -> 1); with t = 1, 2, ... the exact
     limits for the t-th point, which are narrower early on so a start-up shift is caught sooner.
+    `target` and `sigma` may be arrays (one chart each, e.g. the drift rule's tanks and checks).
     """
-    _check_finite("target", target)
-    _check_sigma(sigma)
+    _check_each("target", target, np.isfinite(target), _check_finite)
+    _check_each("sigma", sigma, np.isfinite(sigma) & (np.asarray(sigma) > 0), _check_sigma)
     _check_lam(lam)
     _check_width(L)
     factor = lam / (2 - lam)
@@ -99,12 +114,19 @@ def ewma_limits(
     return target - half_width, target + half_width
 
 
+def _check_each(name: str, value, ok, check) -> None:
+    """Run a one-value check on the first bad item of a scalar or an array (its index in the message)."""
+    if not np.all(ok):
+        index = tuple(np.argwhere(~np.asarray(ok))[0])
+        check(f"{name}[{', '.join(map(str, index))}]" if index else name, np.asarray(value)[index])
+
+
 def ewma_signals(
     values: Sequence[float], target: float, sigma: float, lam: float = 0.3, L: float = 3.0  # noqa: N803
 ) -> list[ChartSignal]:
     """Points whose EWMA lies outside the exact (time-varying) EWMA limits. EWMA_0 = target."""
     _check_finite("target", target)
-    _check_sigma(sigma)
+    _check_sigma("sigma", sigma)
     _check_width(L)
     signals = []
     for i, z in enumerate(ewma(values, lam, target)):
@@ -134,7 +156,7 @@ def western_electric_signals(values: Sequence[float], center: float, sigma: floa
     """
     data = _check_values(values)
     _check_finite("center", center)
-    _check_sigma(sigma)
+    _check_sigma("sigma", sigma)
     # z-scores: distance from the center in units of sigma, with sign.
     z = [(v - center) / sigma for v in data]
 
@@ -181,9 +203,31 @@ def estimate_baseline(values: Sequence[float]) -> tuple[float, float]:
     data = _check_values(values)
     if len(data) < 2:
         raise ValueError(f"values has {len(data)} value: at least 2 are needed to estimate sigma")
-    center = sum(data) / len(data)
-    moving_ranges = [abs(b - a) for a, b in zip(data, data[1:])]
-    sigma = sum(moving_ranges) / len(moving_ranges) / D2_MOVING_RANGE
-    if sigma <= 0:
+    center, sigma = baselines(np.array(data), np.array([0]), np.array([len(data)]))
+    if sigma[0] <= 0:
         raise ValueError("values are all equal: sigma cannot be estimated from them (it would be 0)")
-    return center, sigma
+    return float(center[0]), float(sigma[0])
+
+
+def baselines(values: np.ndarray, starts: np.ndarray, stops: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """estimate_baseline of every slice values[starts[k]:stops[k]] (each at least 2 values), at once.
+
+    Sigma is 0 where a slice is constant; the caller decides what that means. The slices are
+    right-aligned in a block padded with zeros in front, and the block is summed row after row:
+    adding zeros first changes no bit, so each sum equals `sum()` over its slice.
+    """
+    lengths = stops - starts
+    if len(lengths) and lengths.min() < 2:
+        raise ValueError(f"a slice has {lengths.min()} value: at least 2 are needed to estimate sigma")
+    total = np.zeros(len(starts))
+    ranges = np.zeros(len(starts))
+    previous = None
+    for offset in range(int(lengths.max(initial=0)), 0, -1):
+        index = stops - offset
+        inside = index >= starts
+        point = np.where(inside, values[np.where(inside, index, 0)], 0.0)
+        total += point
+        if previous is not None:
+            ranges += np.where(index - 1 >= starts, np.abs(point - previous), 0.0)
+        previous = point
+    return total / lengths, ranges / (lengths - 1) / D2_MOVING_RANGE

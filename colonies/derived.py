@@ -109,6 +109,15 @@ def derive(readings: Readings, habitat: str) -> dict[str, float | None]:
     return out
 
 
+def value_of(d: DerivedValue, readings: Readings, habitat: str) -> float | None:
+    """One derived value; None where an input is missing or out of its method's range."""
+    inputs = {k: NAN if readings.get(k) is None else readings[k] for k in INPUTS}
+    try:
+        return d.compute(inputs, habitat == parameters.MARINE)
+    except ValueError:
+        return None
+
+
 def derive_arrays(readings: Mapping[str, Sequence[float | None]], habitats: Sequence[str]) -> dict[str, np.ndarray]:
     """`derive` for many checks at once: one array per derived value, element i for check i.
 
@@ -197,7 +206,7 @@ def _limits(target) -> str:
 
 # The readings each derived value is computed from: a deviation on a derived value makes these due
 # again (colonies/schedules.py, "while a deviation on it is open").
-INPUTS: dict[str, tuple[str, ...]] = {
+MEASURED_FROM: dict[str, tuple[str, ...]] = {
     "nh3_mg_l": ("tan_mg_l", "ph", "temp_c"),
     "do_pct_sat": ("do_mg_l", "temp_c"),
     "cond25_us_cm": ("conductivity_us_cm", "temp_c"),
@@ -207,4 +216,4 @@ INPUTS: dict[str, tuple[str, ...]] = {
 
 def measured_keys(key: str) -> tuple[str, ...]:
     """The measured parameters behind a target or deviation key (itself when it is measured)."""
-    return INPUTS.get(key, (key,) if key in parameters.BY_KEY else ())
+    return MEASURED_FROM.get(key, (key,) if key in parameters.BY_KEY else ())

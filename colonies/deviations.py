@@ -12,52 +12,27 @@ single unresolved deviation per (tank, rule, parameter, subject), which gains ev
 of evidence has a `ref` so running a rule twice on the same records adds nothing. Nothing closes a
 deviation automatically: a value back in range is new evidence, not a corrective action.
 
-Later rules (stocking density, protocol limits) register with `record_rule` / `scan_rule`, or call
-`apply_findings` directly.
+The record rules themselves live in colonies/record_rules.py and read checks as columns
+(colonies/check_frames.py). Later rules (stocking density, protocol limits) register with
+`record_rule` / `scan_rule`, or call `apply_findings` directly.
 """
-import bisect
-import math
 from collections import defaultdict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
 from django.db import IntegrityError, transaction
-from django.db.models import OuterRef, Q, Subquery
+from django.db.models import Max, Min, OuterRef, Q, Subquery
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history, bulk_update_with_history
 
-from . import control_charts, derived
-from .flags import Target, out_of_target
-from .models import EVIDENCE_KEEP, Census, Check, DeadRemoval, Deviation, Tank, overdue_grace
+from . import check_frames
+from .check_frames import HISTORY_DAYS, WINDOW_DAYS, CheckFrame  # noqa: F401 (HISTORY_DAYS, WINDOW_DAYS: API)
+from .flags import Target
+from .models import EVIDENCE_KEEP, ArchivedEvidence, Census, Check, DeadRemoval, Deviation, Tank, overdue_grace
 
 Severity = Deviation.Severity
 Rule = Deviation.Rule
-
-
-# Mortality: a check's dead count opens a deviation when it is at least MORTALITY_MIN_DEAD and
-# above the tank's recent baseline by 3 Poisson standard deviations (mean + 3 sqrt(mean)), or above
-# MORTALITY_FRACTION of the latest population estimate.
-MORTALITY_BASELINE_CHECKS = 14
-MORTALITY_MIN_BASELINE = 5  # fewer earlier checks than this: only the fraction-of-estimate test applies
-MORTALITY_MIN_DEAD = 5  # common practice: a handful of dead worms is normal turnover
-MORTALITY_FRACTION = 0.02  # common practice: 2 % of the culture in one day
-
-# Drift: EWMA chart, lambda = 0.3, L = 3 (NIST/SEMATECH e-Handbook of Statistical Methods,
-# §6.3.2.4), baseline mean and sigma (average moving range / 1.128) from the readings before the
-# last DRIFT_WINDOW ones. Fires only while the newest reading is still inside the target and the
-# EWMA has moved toward a target limit and into the outer DRIFT_ZONE of the target band next to
-# it: it warns before a breach. (Real husbandry series are autocorrelated, so a bare EWMA signal
-# with a moving-range sigma alarms too often; the zone condition keeps warnings to drifts that
-# matter for the culture.)
-DRIFT_LAMBDA = 0.3
-DRIFT_L = 3.0
-DRIFT_WINDOW = 7
-DRIFT_MIN_BASELINE = 10
-DRIFT_ZONE = 0.25  # common practice: warn in the outer quarter of the target band
-DRIFT_METHOD = "EWMA chart, λ = 0.3, L = 3 (NIST/SEMATECH e-Handbook §6.3.2.4)"
-HISTORY_DAYS = 35  # how far back record rules look for baselines
-WINDOW_DAYS = 60  # a rescan loads its context in slices of this much observed time
 
 
 @dataclass(frozen=True)
@@ -85,7 +60,7 @@ class Outcome:
         return f"{len(self.created)} opened, {len(self.updated)} updated"
 
 
-RecordRule = Callable[[list[Check], "Context"], Iterable[Finding]]
+RecordRule = Callable[[CheckFrame], Iterable[Finding]]
 ScanRule = Callable[[list[Tank], datetime], Iterable[Finding]]
 RECORD_RULES: list[RecordRule] = []
 SCAN_RULES: list[ScanRule] = []
@@ -127,248 +102,91 @@ def severity_outside(value: float, target: Target) -> int:
 
 
 # ---------------------------------------------------------------------------------------------
-# Record rules
+# Running the record rules
 # ---------------------------------------------------------------------------------------------
-@dataclass
-class Context:
-    """What record rules may read, loaded in a fixed number of queries for a batch of checks (or of
-    dead-animal removals, which the mortality rule also judges)."""
-
-    tanks: dict[int, Tank]
-    series: dict[int, list[Check]]  # per tank: earlier stored checks and the batch, oldest first
-    latest_estimate: dict[int, float | None]
-    _values: dict[int, dict] = field(default_factory=dict)
-    _position: dict[int, int] = field(default_factory=dict)
-
-    _since: dict[int, int] = field(default_factory=dict)
-    # per tank: the stored removals' times (oldest first) and running totals of their counts
-    _removal_times: dict[int, list] = field(default_factory=dict)
-    _removal_totals: dict[int, list[int]] = field(default_factory=dict)
-
-    @classmethod
-    def load(cls, checks: list[Check], removals: list[DeadRemoval] = ()) -> "Context":
-        """Tanks, their stored checks and dead-animal removals from HISTORY_DAYS before the batch's oldest
-        record to its newest (five queries). Later records cannot be earlier than any in the batch, so they
-        are not read."""
-        records = [*checks, *removals]
-        tank_ids = {c.tank_id for c in records}
-        tanks = {
-            t.pk: t for t in Tank.objects.filter(pk__in=tank_ids).select_related("species")
-            .prefetch_related("species__targets", "target_overrides")
-            .annotate(latest_estimate=Subquery(
-                Census.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at").values("estimate")[:1]
-            ))
-        }
-        oldest = min(c.observed_at for c in records) - timedelta(days=HISTORY_DAYS)
-        newest = max(c.observed_at for c in records)
-        batch = {c.pk for c in checks}
-        series: dict[int, list[Check]] = defaultdict(list)
-        stored = Check.objects.current().filter(tank_id__in=tank_ids, observed_at__gte=oldest, observed_at__lte=newest)
-        for c in [c for c in stored if c.pk not in batch] + list(checks):  # the batch's own objects, not copies
-            c.tank = tanks[c.tank_id]
-            series[c.tank_id].append(c)
-        ctx = cls(tanks, series, {pk: t.latest_estimate for pk, t in tanks.items()})
-        for items in series.values():
-            items.sort(key=lambda c: (c.observed_at, c.pk))
-            times = [c.observed_at for c in items]
-            for i, c in enumerate(items):
-                ctx._position[id(c)] = i
-                ctx._since[id(c)] = bisect.bisect_left(times, c.observed_at - timedelta(days=HISTORY_DAYS), 0, i)
-        for tank_id, at, count in (DeadRemoval.objects.current()
-                                   .filter(tank_id__in=tank_ids, observed_at__gte=oldest, observed_at__lte=newest)
-                                   .order_by("tank_id", "observed_at", "pk").values_list("tank_id", "observed_at", "count")):
-            totals = ctx._removal_totals.setdefault(tank_id, [0])
-            ctx._removal_times.setdefault(tank_id, []).append(at)
-            totals.append(totals[-1] + count)
-        return ctx
-
-    def removed_between(self, tank_id: int, start, end) -> int:
-        """Animals in the tank's stored dead-animal removals observed in [start, end)."""
-        times = self._removal_times.get(tank_id)
-        if not times:
-            return 0
-        totals = self._removal_totals[tank_id]
-        return totals[bisect.bisect_left(times, end)] - totals[bisect.bisect_left(times, start)]
-
-    def checks_before(self, tank_id: int, at, limit: int) -> list[Check]:
-        """The tank's last `limit` checks observed before `at`, at most HISTORY_DAYS back (oldest first)."""
-        items = self.series.get(tank_id, [])
-        times = [c.observed_at for c in items]
-        end = bisect.bisect_left(times, at)
-        start = max(bisect.bisect_left(times, at - timedelta(days=HISTORY_DAYS), 0, end), end - limit)
-        return items[start:end]
-
-    def earlier(self, check: Check, limit: int | None = None) -> list[Check]:
-        """The tank's checks before `check` (oldest first), at most HISTORY_DAYS back from it and at most
-        `limit` of them: what the rules saw when the check was saved, however large the batch."""
-        end = self._position[id(check)]
-        start = self._since[id(check)] if limit is None else max(self._since[id(check)], end - limit)
-        return self.series[check.tank_id][start:end]
-
-    def values(self, check: Check) -> dict:
-        cached = self._values.get(id(check))
-        if cached is None:
-            cached = self._values[id(check)] = check.values()
-        return cached
-
-
-def _local(dt: datetime) -> str:
+def local_text(dt: datetime) -> str:
     return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M")
 
 
-@record_rule
-def out_of_target_rule(checks, ctx):
-    for check in checks:
-        tank = ctx.tanks[check.tank_id]
-        targets = tank.care_targets()
-        for key, value in ctx.values(check).items():
-            target = targets.get(key)
-            side = out_of_target(value, target)
-            if not side:
-                continue
-            entry = derived.label_for(key)
-            yield Finding(
-                tank.pk, Rule.OUT_OF_TARGET, severity_outside(value, target),
-                f"{entry.label} {entry.format(value)} {entry.unit} {'below' if side == 'low' else 'above'} "
-                f"target {target.text(entry.unit)}",
-                {"ref": f"check:{check.pk}:{key}", "check": check.pk, "at": _local(check.observed_at),
-                 "value": value, "low": target.low, "high": target.high, "side": side},
-                check.observed_at, parameter=key,
-            )
-
-
-@record_rule
-def mortality_rule(checks, ctx):
-    for check in checks:
-        finding = _mortality_finding(ctx, check.tank_id, check.dead_removed or 0, check.observed_at,
-                                     ctx.earlier(check, MORTALITY_BASELINE_CHECKS),
-                                     {"ref": f"check:{check.pk}:dead", "check": check.pk})
-        if finding:
-            yield finding
-
-
-def removal_findings(removals, ctx):
-    """The mortality rule for dead animals removed outside the round: each removal is judged like a
-    check's count, against the same baseline."""
-    for removal in removals:
-        finding = _mortality_finding(ctx, removal.tank_id, removal.count, removal.observed_at,
-                                     ctx.checks_before(removal.tank_id, removal.observed_at, MORTALITY_BASELINE_CHECKS),
-                                     {"ref": f"removal:{removal.pk}", "removal": removal.pk})
-        if finding:
-            yield finding
-
-
-def _mortality_finding(ctx, tank_id, dead: int, at, earlier: list[Check], ref: dict) -> Finding | None:
-    """A finding when `dead` animals at `at` are above the tank's baseline or its latest estimate.
-
-    The baseline is deaths per check: the dead removed at the earlier checks plus those removed outside
-    the round from the first of those checks up to `at` (not including this record), divided by the
-    number of checks. Each dead animal is thus counted once, by the record that removed it.
-    """
-    if dead < MORTALITY_MIN_DEAD:
-        return None
-    removed = ctx.removed_between(tank_id, earlier[0].observed_at, at) if earlier else 0
-    baseline = (sum(c.dead_removed for c in earlier) + removed) / len(earlier) if earlier else 0.0
-    poisson_limit = baseline + 3 * math.sqrt(max(baseline, 1.0))
-    estimate = ctx.latest_estimate.get(tank_id)
-    fraction = dead / estimate if estimate else None
-    above_baseline = len(earlier) >= MORTALITY_MIN_BASELINE and dead > poisson_limit
-    above_fraction = fraction is not None and fraction > MORTALITY_FRACTION
-    if not (above_baseline or above_fraction):
-        return None
-    severity = Severity.MAJOR if (fraction is not None and fraction > 2.5 * MORTALITY_FRACTION) or dead > 2 * poisson_limit else Severity.MODERATE
-    why = [f"baseline {baseline:.1f}/check over {len(earlier)} checks, limit {poisson_limit:.1f}"]
-    if fraction is not None:
-        why.append(f"{100 * fraction:.1f} % of the latest estimate ({estimate:.0f})")
-    return Finding(
-        tank_id, Rule.MORTALITY, severity, f"{dead} dead removed ({'; '.join(why)})",
-        {**ref, "at": _local(at), "dead": dead, "baseline": round(baseline, 2), "limit": round(poisson_limit, 2),
-         "fraction_of_estimate": None if fraction is None else round(fraction, 4)},
-        at,
-    )
-
-
-@record_rule
-def drift_rule(checks, ctx):
-    for check in checks:
-        tank = ctx.tanks[check.tank_id]
-        targets = tank.care_targets()
-        series = ctx.earlier(check, DRIFT_WINDOW + 40) + [check]
-        for key, value in ctx.values(check).items():
-            target = targets.get(key)
-            if value is None or target is None or out_of_target(value, target):
-                continue
-            values = [v for v in (ctx.values(c).get(key) for c in series) if v is not None]
-            if len(values) < DRIFT_MIN_BASELINE + DRIFT_WINDOW:
-                continue
-            baseline, recent = values[:-DRIFT_WINDOW], values[-DRIFT_WINDOW:]
-            try:
-                centre, sigma = control_charts.estimate_baseline(baseline)
-                signals = control_charts.ewma_signals(recent, centre, sigma, DRIFT_LAMBDA, DRIFT_L)
-            except ValueError:
-                continue
-            if not signals or signals[-1].index != len(recent) - 1:
-                continue
-            z = control_charts.ewma(recent, DRIFT_LAMBDA, centre)[-1]
-            toward = ("high" if z > centre else "low")
-            limit = target.high if toward == "high" else target.low
-            if limit is None or not _near_limit(z, target, toward):
-                continue
-            entry = derived.label_for(key)
-            yield Finding(
-                tank.pk, Rule.DRIFT, Severity.MINOR,
-                f"{entry.label} drifting {'up' if toward == 'high' else 'down'} toward {limit:g} {entry.unit} "
-                f"(EWMA {z:.{entry.decimals + 1}f}, baseline {centre:.{entry.decimals + 1}f}); {DRIFT_METHOD}",
-                {"ref": f"check:{check.pk}:{key}:drift", "check": check.pk, "at": _local(check.observed_at),
-                 "value": value, "ewma": round(z, 4), "centre": round(centre, 4), "sigma": round(sigma, 4),
-                 "limit": limit, "method": DRIFT_METHOD},
-                check.observed_at, parameter=key,
-            )
-
-
-def _near_limit(z: float, target: Target, toward: str) -> bool:
-    """Is the EWMA in the outer DRIFT_ZONE of the band next to the limit it moves toward?"""
-    limit = target.high if toward == "high" else target.low
-    if target.low is not None and target.high is not None:
-        margin = DRIFT_ZONE * (target.high - target.low)
-    else:
-        margin = DRIFT_ZONE * abs(limit) if limit else 0.0
-    return (limit - z <= margin) if toward == "high" else (z - limit <= margin)
+def findings_in(frame: CheckFrame) -> list[Finding]:
+    return [f for rule in RECORD_RULES for f in rule(frame)]
 
 
 def evaluate_checks(checks: list[Check], now: datetime | None = None) -> Outcome:
-    """Run every record rule on freshly saved checks (fixed number of queries for the batch)."""
+    """Run every record rule on freshly saved checks (fixed number of queries for a round).
+
+    Each check is judged against the current checks of its tank in the HISTORY_DAYS before it, as
+    when it was saved, however large the batch; a large batch is read WINDOW_DAYS at a time.
+    """
     checks = [c for c in checks if c.pk and not c.is_voided]
     if not checks:
         return Outcome()
+    moments = [c.observed_at for c in checks]
     findings = []
-    for window in _windows(checks):
-        ctx = Context.load(window)
-        findings += [f for rule in RECORD_RULES for f in rule(window, ctx)]
+    for frame in check_frames.frames(start=min(moments), stop=max(moments), tank_ids={c.tank_id for c in checks},
+                                     only={c.pk for c in checks}):
+        findings += findings_in(frame)
     return apply_findings(findings, now=now)
 
 
 def evaluate_removals(removals: list[DeadRemoval], now: datetime | None = None) -> Outcome:
-    """The mortality rule on freshly saved dead-animal removals (fixed number of queries for the batch)."""
+    """The mortality rule on freshly saved dead-animal removals, against the checks before each (a fixed number
+    of queries for the batch; record_rules.removal_findings)."""
+    from .record_rules import removal_findings  # record_rules imports this module
+
     removals = [r for r in removals if r.pk and not r.is_voided]
     if not removals:
         return Outcome()
-    ctx = Context.load([], removals)
-    return apply_findings(list(removal_findings(removals, ctx)), now=now)
+    frame = check_frames.history_frame({r.tank_id for r in removals},
+                                       start=min(r.observed_at for r in removals) - timedelta(days=HISTORY_DAYS),
+                                       stop=max(r.observed_at for r in removals))
+    return apply_findings(removal_findings(frame, removals), now=now)
 
 
-def _windows(checks: list[Check]) -> list[list[Check]]:
-    """The batch cut into WINDOW_DAYS slices of observed time (a round is one slice), each in its given order.
+@dataclass
+class Rescan:
+    checks: int = 0
+    findings: int = 0
+    opened: set = field(default_factory=set)  # ids of the deviations it opened
+    updated: set = field(default_factory=set)  # ids of deviations it found open and added evidence to
 
-    Bounds what a rescan of years of checks holds in memory; each check still sees HISTORY_DAYS before it.
-    Checks observed at the same moment fall in the same slice, so apply_findings sees same-moment findings
-    in the order a single batch would give them.
+    def judged(self) -> str:
+        return f"{_count(self.checks, 'check')} judged, {_count(self.findings, 'finding')}"
+
+    def __str__(self):
+        return f"{self.judged()}; {len(self.opened)} opened, {len(self.updated - self.opened)} updated"
+
+
+def _count(n: int, word: str) -> str:
+    return f"{n} {word}{'' if n == 1 else 's'}"
+
+
+def rescan(*, since: datetime | None = None, now: datetime | None = None, dry_run: bool = False) -> Rescan:
+    """Run the record rules over every current check observed since `since` (all when None).
+
+    Each check is judged as evaluate_checks judges it when it is saved (the same frames and rules),
+    against the care targets and population estimate in force now. A window of WINDOW_DAYS at a
+    time: memory stays bounded, and each window's findings are applied in their own transaction
+    (unless the caller holds one), so the tanks' locks are held for one window, not the whole run.
+    Idempotent: evidence refs make a second run add nothing.
     """
-    start = min(c.observed_at for c in checks)
-    windows: dict[int, list[Check]] = defaultdict(list)
-    for c in checks:
-        windows[(c.observed_at - start) // timedelta(days=WINDOW_DAYS)].append(c)
-    return [windows[k] for k in sorted(windows)]
+    now = now or timezone.now()
+    checks = Check.objects.current()
+    if since is not None:
+        checks = checks.filter(observed_at__gte=since)
+    span = checks.aggregate(first=Min("observed_at"), last=Max("observed_at"))
+    report = Rescan()
+    if span["first"] is None:
+        return report
+    for frame in check_frames.frames(start=span["first"], stop=span["last"]):
+        findings = findings_in(frame)
+        report.checks += int(frame.judge.sum())
+        report.findings += len(findings)
+        if not dry_run:
+            outcome = apply_findings(findings, now=now)
+            report.opened.update(d.pk for d in outcome.created)
+            report.updated.update(d.pk for d in outcome.updated)
+    return report
 
 
 # ---------------------------------------------------------------------------------------------
@@ -389,9 +207,9 @@ def _overdue(tank, now, label, last, interval, rule):
     late_text = f"{hours:.0f} h" if hours < 48 else f"{hours / 24:.1f} days"
     return Finding(
         tank.pk, rule, severity,
-        f"{label} {late_text} overdue (last {_local(last) if last else 'never'}, due {_local(due_at)})",
-        {"ref": f"due:{due_at.isoformat()}", "last": _local(last) if last else None, "due": _local(due_at),
-         "seen": _local(now)},
+        f"{label} {late_text} overdue (last {local_text(last) if last else 'never'}, due {local_text(due_at)})",
+        {"ref": f"due:{due_at.isoformat()}", "last": local_text(last) if last else None, "due": local_text(due_at),
+         "seen": local_text(now)},
         due_at,
     )
 
@@ -427,6 +245,7 @@ def scan(now: datetime | None = None, *, dry_run: bool = False) -> tuple[list[Fi
 # Findings to deviations
 # ---------------------------------------------------------------------------------------------
 CONFLICT_RETRIES = 3  # a finding without a tank lost the race to insert its deviation: read again and retry
+ARCHIVE_LOOKUP_CHUNK = 500  # refs per query against the evidence archive (databases cap a statement's parameters)
 
 
 @transaction.atomic
@@ -471,21 +290,30 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
     if subjects:
         for dev in unresolved.filter(tank__isnull=True, subject__in=subjects).select_for_update(no_key=True):
             existing[(None, dev.rule, dev.parameter, dev.subject)] = dev
-    # Evidence already answered: a finding about the same record as a closed deviation (a correction
-    # re-running the rules on an old check, say) must not reopen it. One query.
-    answered = set()
+    # Evidence already counted is not added again: refs a deviation shows or has archived, open or
+    # closed. A finding about the same record as a closed deviation (a correction re-running the rules
+    # on an old check, a rescan) must not reopen it. One query, two when a deviation has archived some.
+    seen = set()
+    truncated = {}  # id -> key of the deviations holding more evidence than they show
     earliest = min(f.at for f in findings)
     closed = Deviation.objects.filter(status=Deviation.Status.CLOSED, rule__in={f.rule for f in findings},
                                       last_seen_at__gte=earliest)
     closed = closed.filter(tank_id__in=tank_ids) if not subjects else closed.filter(
         Q(tank_id__in=tank_ids) | Q(tank__isnull=True, subject__in=subjects))
-    for dev in closed.only("tank_id", "rule", "parameter", "subject", "evidence"):
-        answered.update(((dev.tank_id, dev.rule, dev.parameter, dev.subject), e.get("ref")) for e in dev.evidence)
+    for dev in [*existing.values(), *closed.only("tank_id", "rule", "parameter", "subject", "evidence",
+                                                 "evidence_count")]:
+        key = (dev.tank_id, dev.rule, dev.parameter, dev.subject)
+        seen.update((key, e.get("ref")) for e in dev.evidence)
+        if dev.evidence_count > len(dev.evidence):
+            truncated[dev.pk] = key
+    seen |= _archived(truncated, {f.evidence["ref"] for f in findings if f.key in truncated.values()})
     new: dict[tuple, Deviation] = {}
     changed: dict[int, Deviation] = {}
+    archive: dict[tuple, list[dict]] = defaultdict(list)  # evidence pushed out of the newest EVIDENCE_KEEP
     for f in sorted(findings, key=lambda f: f.at):
-        if (f.key, f.evidence["ref"]) in answered:
+        if (f.key, f.evidence["ref"]) in seen:
             continue
+        seen.add((f.key, f.evidence["ref"]))
         dev = existing.get(f.key) or new.get(f.key)
         if dev is None:
             new[f.key] = Deviation(
@@ -493,9 +321,9 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
                 opened_at=f.at, last_seen_at=f.at, summary=f.summary[:300], evidence=[f.evidence], evidence_count=1,
             )
             continue
-        if any(e.get("ref") == f.evidence["ref"] for e in dev.evidence):
-            continue
-        dev.evidence = (dev.evidence + [f.evidence])[-EVIDENCE_KEEP:]
+        evidence = dev.evidence + [f.evidence]
+        dev.evidence = evidence[-EVIDENCE_KEEP:]
+        archive[f.key] += evidence[:-EVIDENCE_KEEP]
         dev.evidence_count += 1
         dev.last_seen_at = max(dev.last_seen_at, f.at)
         dev.severity = max(dev.severity, f.severity)
@@ -506,6 +334,7 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
         outcome.created = bulk_create_with_history(
             list(new.values()), Deviation, default_user=user, default_change_reason="Opened by rule", default_date=now,
         )
+        new = {(d.tank_id, d.rule, d.parameter, d.subject): d for d in outcome.created}
     if changed:
         bulk_update_with_history(
             list(changed.values()), Deviation,
@@ -513,7 +342,22 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
             default_user=user, default_change_reason="New evidence", default_date=now,
         )
         outcome.updated = list(changed.values())
+    if archive:
+        ArchivedEvidence.objects.bulk_create(
+            ArchivedEvidence(deviation_id=(existing.get(key) or new[key]).pk, ref=item["ref"], item=item)
+            for key, items in archive.items() for item in items)
     return outcome
+
+
+def _archived(deviations: dict[int, tuple], refs: set[str]) -> set[tuple]:
+    """(deviation key, ref) for each of `refs` that one of these deviations has archived."""
+    found: set[tuple] = set()
+    refs = sorted(refs)
+    for chunk in range(0, len(refs), ARCHIVE_LOOKUP_CHUNK):
+        found.update((deviations[pk], ref) for pk, ref in ArchivedEvidence.objects.filter(
+            deviation_id__in=list(deviations), ref__in=refs[chunk:chunk + ARCHIVE_LOOKUP_CHUNK],
+        ).values_list("deviation_id", "ref"))
+    return found
 
 
 # ---------------------------------------------------------------------------------------------
@@ -540,7 +384,7 @@ def density_finding(tank: Tank, estimate: float | None, at: datetime, ref: str, 
         tank.pk, Rule.STOCKING_DENSITY, severity,
         f"{density:.0f} animals/L ({what} {estimate:.0f} animals in {tank.volume_l:g} L) is above the maximum "
         f"{limit} animals/L ({100 * ratio:.0f} %)",
-        {"ref": ref, "at": _local(at), "estimate": round(estimate, 1), "volume_l": tank.volume_l,
+        {"ref": ref, "at": local_text(at), "estimate": round(estimate, 1), "volume_l": tank.volume_l,
          "density_per_l": round(density, 2), "max_per_l": limit},
         at,
     )
@@ -606,3 +450,6 @@ def stocking_density_rule(tanks, now):
             finding = density_finding(tank, value, at, ref, what)
             if finding:
                 yield finding
+
+
+from . import record_rules  # noqa: E402,F401  (registers the record rules; they import this module's names)

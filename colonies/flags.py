@@ -2,6 +2,8 @@
 deviation rules all call these, so a value is flagged the same way everywhere."""
 from dataclasses import dataclass
 
+import numpy as np
+
 from . import derived
 
 
@@ -40,6 +42,14 @@ def out_of_target(value: float | None, target: Target | None) -> str | None:
     if target.high is not None and value > target.high:
         return "high"
     return None
+
+
+def sides(values: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    """out_of_target over arrays: -1 below the low end, 1 above the high end, 0 inside.
+
+    NaN stands for a missing value or an open end and compares false, as None does above.
+    """
+    return np.where(values < low, -1, np.where(values > high, 1, 0))
 
 
 def flags_for(readings: dict[str, float | None], targets: dict[str, Target]) -> dict[str, dict]:

@@ -1004,6 +1004,29 @@ class Deviation(models.Model):
             self.save()
 
 
+class ArchivedEvidence(models.Model):
+    """Evidence beyond a deviation's newest EVIDENCE_KEEP items, moved here instead of being dropped.
+
+    Written only by the deviation engine (colonies.deviations.apply_findings), never edited. It lets a
+    rerun of the rules (`scan_deviations --records`) recognise evidence the deviation no longer shows,
+    so a long-running deviation gains no duplicates and a closed one is not opened again.
+    """
+
+    deviation = models.ForeignKey(Deviation, on_delete=models.PROTECT, related_name="archived_evidence")
+    ref = models.TextField(help_text="The evidence's ref: the record or event it is about.")
+    item = models.JSONField(help_text="The evidence as the deviation showed it.")
+
+    class Meta:
+        ordering = ["deviation", "pk"]
+        constraints = [models.UniqueConstraint(fields=["deviation", "ref"], name="archived_evidence_once")]
+
+    def __str__(self):
+        return f"{self.deviation}: {self.ref}"
+
+    def get_absolute_url(self):
+        return self.deviation.get_absolute_url()
+
+
 # ---------------------------------------------------------------------------------------------
 # Splits: part of a culture moved to other tanks (lineage and the animal books)
 # ---------------------------------------------------------------------------------------------

@@ -80,9 +80,8 @@ def _round_post(client, url, tanks, *, filled_only=False, as_json=False):
 
 
 def _rescan():
-    checks = list(Check.objects.current().select_related("tank__species").order_by("tank_id", "observed_at"))
-    outcome = deviations.evaluate_checks(checks, now=timezone.now())
-    return {"rows": len(checks), "opened": len(outcome.created), "updated": len(outcome.updated)}
+    report = deviations.rescan(now=timezone.now())  # what `scan_deviations --records` runs
+    return {"rows": report.checks, "opened": len(report.opened), "updated": len(report.updated - report.opened)}
 
 
 def _scan():
@@ -149,7 +148,7 @@ def build_cases() -> list[Case]:
         Case("Job: scan_deviations", MANAGER, _scan, kind="job", rollback=True, repeats=1,
              notes="rows = tanks scanned; rolled back"),
         Case(f"Job: record rules over all checks ({n_checks})", MANAGER, _rescan, kind="job", rollback=True,
-             repeats=1, notes="deviations.evaluate_checks; rows = checks; rolled back"),
+             repeats=1, notes="deviations.rescan (scan_deviations --records); rows = checks judged; rolled back"),
         Case("Back office: checks list", "superuser", _get(admin, "/admin/colonies/check/"),
              notes="generic reference"),
     ]

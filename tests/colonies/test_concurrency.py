@@ -14,7 +14,7 @@ from django.test import Client
 from django.urls import reverse
 from django.utils import timezone
 
-from colonies import services
+from colonies import deviations, services
 from colonies.deviations import Finding, apply_findings
 from colonies.models import Census, Check, Deviation, Feeding, Tank
 from colonies.roles import TECHNICIAN
@@ -169,3 +169,31 @@ def test_findings_about_no_tank_at_once_share_one_deviation():
     assert sorted(results) == [0] * (THREADS - 1) + [1], results
     deviation = Deviation.objects.unresolved().get(tank__isnull=True, subject="cohort:shared")
     assert {e["ref"] for e in deviation.evidence} == {f"trial:{i}" for i in range(THREADS)}
+
+
+@pytest.mark.django_db(transaction=True)
+def test_a_rescan_while_technicians_save_rounds_neither_deadlocks_nor_loses_or_doubles_evidence():
+    species = make_species(targets={"ph": (6.5, 8.0)})
+    room = make_room()
+    tanks = [make_tank(code=f"RSC-{i}", room=room, species=species) for i in range(4)]
+    importer, *savers = [make_user(f"rescan{i}", role=TECHNICIAN) for i in range(THREADS)]
+    # 150 days of out-of-range pH stored without the rules (as an import leaves them): the rescan commits
+    # three windows, each locking all four tanks, while rounds over the same tanks lock them too.
+    start = timezone.now() - timedelta(days=150)
+    Check.objects.bulk_create([Check(tank=t, recorded_by=importer, observed_at=start + timedelta(days=d), ph=9.0)
+                               for t in tanks for d in range(150)])
+    loaded = list(Tank.objects.for_round().filter(pk__in=[t.pk for t in tanks]))
+
+    def round_by(user, i):
+        order = loaded if i % 2 else loaded[::-1]
+        return lambda: len(services.record_round(user=user, rows=[(t, {"ph": 9.1 + i / 10}) for t in order]))
+
+    results = run_together([lambda: deviations.rescan().checks] + [round_by(u, i) for i, u in enumerate(savers)])
+
+    assert results[0] >= 600 and results[1:] == [4] * len(savers), results
+    for tank in tanks:
+        checks = set(Check.objects.filter(tank=tank).values_list("pk", flat=True))
+        deviation = Deviation.objects.unresolved().get(tank=tank, rule=Deviation.Rule.OUT_OF_TARGET, parameter="ph")
+        refs = [e["ref"] for e in deviation.evidence] + list(deviation.archived_evidence.values_list("ref", flat=True))
+        assert sorted(refs) == sorted(f"check:{pk}:ph" for pk in checks)  # every check once: none lost, none twice
+        assert deviation.evidence_count == len(checks) == 150 + len(savers)

@@ -1,6 +1,7 @@
 """colonies.control_charts: the NIST/SEMATECH e-Handbook EWMA example and the Western Electric rules."""
 import math
 
+import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
@@ -12,8 +13,10 @@ from colonies.control_charts import (
     FOUR_OF_5_BEYOND_1_SIGMA,
     TWO_OF_3_BEYOND_2_SIGMA,
     ChartSignal,
+    baselines,
     estimate_baseline,
     ewma,
+    ewma_columns,
     ewma_limits,
     ewma_signals,
     western_electric_signals,
@@ -234,3 +237,50 @@ def test_estimate_baseline_uses_mean_and_average_moving_range():
 def test_estimate_baseline_rejects_too_little_or_constant_data(values, match):
     with pytest.raises(ValueError, match=match):
         estimate_baseline(values)
+
+
+# --- Many series at once (the drift rule over years of checks) -------------------------------------
+# The reference is each formula written out with Python's sum, in the order of the data: the array
+# functions must give the same bits, or a rescan and the check-by-check path could disagree.
+
+finite = st.floats(min_value=-1e4, max_value=1e4, allow_nan=False)
+
+
+@given(st.lists(st.lists(finite, min_size=2, max_size=45), min_size=1, max_size=6))
+def test_baselines_of_many_slices_equal_the_formula_on_each_bit_for_bit(slices):
+    values = np.array([v for s in slices for v in s])
+    stops = np.cumsum([len(s) for s in slices])
+    center, sigma = baselines(values, stops - [len(s) for s in slices], stops)
+    for k, s in enumerate(slices):
+        ranges = [abs(b - a) for a, b in zip(s, s[1:])]
+        assert center[k] == sum(s) / len(s)  # NIST §6.3.2: mean, and mean moving range / d2 (1.128)
+        assert sigma[k] == sum(ranges) / len(ranges) / 1.128
+
+
+def test_baselines_refuse_a_slice_of_one_value():
+    with pytest.raises(ValueError, match="at least 2"):
+        baselines(np.array([1.0, 2.0, 3.0]), np.array([0, 2]), np.array([2, 3]))
+
+
+@given(st.integers(min_value=1, max_value=9).flatmap(lambda n: st.tuples(
+    st.lists(st.lists(finite, min_size=n, max_size=n), min_size=1, max_size=5),
+    st.floats(min_value=0.01, max_value=1.0), st.lists(finite, min_size=5, max_size=5))))
+def test_ewma_of_many_columns_follows_the_recursion_bit_for_bit(case):
+    columns, lam, starts = case
+    result = ewma_columns(np.array(columns).T, lam, np.array(starts[:len(columns)]))
+    for k, column in enumerate(columns):
+        current = starts[k]
+        for t, y in enumerate(column):
+            current = lam * y + (1 - lam) * current  # NIST §6.3.2.4
+            assert result[t, k] == current
+
+
+def test_ewma_limits_of_many_charts_equal_each_chart_and_name_a_bad_one():
+    targets, sigmas = np.array([50.0, 10.0, -3.0]), np.array([2.0539, 0.5, 1.0])
+    lcl, ucl = ewma_limits(targets, sigmas, 0.3, 3.0, t=7)
+    for k in range(3):
+        assert (lcl[k], ucl[k]) == ewma_limits(float(targets[k]), float(sigmas[k]), 0.3, 3.0, t=7)
+    with pytest.raises(ValueError, match=r"sigma\[1\]=0\.0"):
+        ewma_limits(targets, np.array([1.0, 0.0, 1.0]), 0.3)
+    with pytest.raises(ValueError, match=r"target\[2\]=nan"):
+        ewma_limits(np.array([1.0, 2.0, math.nan]), sigmas, 0.3)

@@ -111,7 +111,7 @@ def test_a_removal_above_the_baseline_opens_a_mortality_deviation_once(world, te
     removal = remove(world.tank, technician, 9, now - timedelta(hours=1))
     deviation = Deviation.objects.get(tank=world.tank, rule=Deviation.Rule.MORTALITY)
     assert deviation.evidence == [{
-        "ref": f"removal:{removal.pk}", "removal": removal.pk, "at": deviations._local(removal.observed_at), "dead": 9,
+        "ref": f"removal:{removal.pk}", "removal": removal.pk, "at": deviations.local_text(removal.observed_at), "dead": 9,
         "baseline": 1.0, "limit": 4.0, "fraction_of_estimate": None}]
     assert deviations.evaluate_removals([removal]).created == [] and deviations.evaluate_removals([removal]).updated == []
     assert Deviation.objects.get(pk=deviation.pk).evidence_count == 1
@@ -154,9 +154,14 @@ def test_the_rescan_of_checks_reads_removals_in_the_baseline_as_when_saved(world
         make_check(world.tank, user=technician, temp_c=22.0, dead_removed=1, observed_at=start + timedelta(days=day))
     remove(world.tank, technician, 14, start + timedelta(days=7, hours=4))
     check = make_check(world.tank, user=technician, temp_c=22.0, dead_removed=5, observed_at=start + timedelta(days=15))
-    ctx = deviations.Context.load([check])
-    assert [f.evidence["ref"] for f in deviations.mortality_rule([check], ctx)] == []
-    assert ctx.removed_between(world.tank.pk, start, start + timedelta(days=15)) == 14
+    from colonies import check_frames, record_rules
+
+    frame = next(check_frames.frames(start=check.observed_at, stop=check.observed_at, tank_ids={world.tank.pk},
+                                     only={check.pk}))
+    assert [f.evidence["ref"] for f in record_rules.mortality_rule(frame)] == []
+    micros = [(t - check_frames.EPOCH) // check_frames.MICROSECOND for t in (start, start + timedelta(days=15))]
+    assert frame.removed_between(world.tank.pk, *micros) == 14
+    assert deviations.rescan().findings == 0  # the rescan judges the check the same way
 
 
 def test_the_tank_history_lists_removals(client, world, manager, technician):
