@@ -148,5 +148,6 @@ def test_rescan_reads_in_a_number_of_queries_set_by_the_time_span_not_the_tanks(
                                          temp_c=22.0) for d in range(150)])
     with CaptureQueriesContext(connection) as queries:
         deviations.rescan(dry_run=True)
-    # span, tanks + their targets and overrides, then one read per WINDOW_DAYS of the 150 days (3 windows)
-    assert len(queries) == 1 + 3 + 3
+    # span, tanks + their targets and overrides, then per WINDOW_DAYS of the 150 days (3 windows) one read of
+    # checks and one of dead-animal removals (the mortality rule's baseline)
+    assert len(queries) == 1 + 3 + 3 * 2
