@@ -77,7 +77,8 @@ def detail(request, pk):
     dev = get_object_or_404(_register_qs(), pk=pk)
     history = dev.history.select_related("history_user").order_by("-history_date")[:50]
     return render(request, "colonies/deviation_detail.html",
-                  {"dev": dev, "form": CloseForm(), "history": history,
+                  # Actions typed with the flagged values are the starting point: nobody types them twice.
+                  {"dev": dev, "form": CloseForm(initial={"corrective_action": dev.corrective_action}), "history": history,
                    "evidence": _evidence_rows(dev), "close_refusal": dev.close_refusal(request.user)})
 
 

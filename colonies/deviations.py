@@ -126,7 +126,48 @@ def evaluate_checks(checks: list[Check], now: datetime | None = None) -> Outcome
     for frame in check_frames.frames(start=min(moments), stop=max(moments), tank_ids={c.tank_id for c in checks},
                                      only={c.pk for c in checks}):
         findings += findings_in(frame)
-    return apply_findings(findings, now=now)
+    return apply_findings(with_actions(findings), now=now)
+
+
+def with_actions(findings: list[Finding]) -> list[Finding]:
+    """The corrective action typed with a flagged value goes with the evidence it gives (one query): the
+    deviation it opens or adds to records it, so nobody types it twice."""
+    pks = {f.evidence["check"] for f in findings if "check" in f.evidence}
+    if not pks:
+        return findings
+    actions = {pk: (action, user) for pk, action, user in Check.objects.filter(pk__in=pks).exclude(corrective_action="")
+               .values_list("pk", "corrective_action", "recorded_by__username")}
+    for f in findings:
+        action = actions.get(f.evidence.get("check"))
+        if action:
+            f.evidence["action"], f.evidence["action_by"] = action
+    return findings
+
+
+def action_line(item: dict) -> str:
+    return f"{item.get('at', '')} {item.get('action_by', '')}: {item['action']}".strip()
+
+
+@transaction.atomic
+def record_action(check: Check, *, user) -> list[Deviation]:
+    """A corrective action added to a check after it was saved reaches the unresolved deviations that hold
+    the check's evidence (the tank's row is locked first, as apply_findings does)."""
+    action = check.corrective_action.strip()
+    if not action:
+        return []
+    list(Tank.objects.select_for_update(no_key=True).filter(pk=check.tank_id).values_list("pk"))
+    changed = []
+    for dev in Deviation.objects.unresolved().filter(tank_id=check.tank_id):
+        items = [e for e in dev.evidence if e.get("check") == check.pk]
+        if not items:
+            continue
+        line = action_line({**items[-1], "action": action, "action_by": user.get_username()})
+        if line not in dev.corrective_action:
+            dev.corrective_action = "\n".join(x for x in (dev.corrective_action, line) if x)
+            dev._history_user, dev._change_reason = user, "Corrective action added to the check"
+            dev.save(update_fields=["corrective_action"])
+            changed.append(dev)
+    return changed
 
 
 def evaluate_removals(removals: list[DeadRemoval], now: datetime | None = None) -> Outcome:
@@ -179,7 +220,7 @@ def rescan(*, since: datetime | None = None, now: datetime | None = None, dry_ru
     if span["first"] is None:
         return report
     for frame in check_frames.frames(start=span["first"], stop=span["last"]):
-        findings = findings_in(frame)
+        findings = with_actions(findings_in(frame))
         report.checks += int(frame.judge.sum())
         report.findings += len(findings)
         if not dry_run:
@@ -319,8 +360,11 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
             new[f.key] = Deviation(
                 tank_id=f.tank_id, rule=f.rule, parameter=f.parameter, subject=f.subject, severity=f.severity,
                 opened_at=f.at, last_seen_at=f.at, summary=f.summary[:300], evidence=[f.evidence], evidence_count=1,
+                corrective_action=action_line(f.evidence) if "action" in f.evidence else "",
             )
             continue
+        if "action" in f.evidence and action_line(f.evidence) not in dev.corrective_action:
+            dev.corrective_action = "\n".join(x for x in (dev.corrective_action, action_line(f.evidence)) if x)
         evidence = dev.evidence + [f.evidence]
         dev.evidence = evidence[-EVIDENCE_KEEP:]
         archive[f.key] += evidence[:-EVIDENCE_KEEP]
@@ -338,7 +382,7 @@ def _apply_findings(findings: list[Finding], now: datetime, user) -> Outcome:
     if changed:
         bulk_update_with_history(
             list(changed.values()), Deviation,
-            ["evidence", "evidence_count", "last_seen_at", "severity", "summary"],
+            ["evidence", "evidence_count", "last_seen_at", "severity", "summary", "corrective_action"],
             default_user=user, default_change_reason="New evidence", default_date=now,
         )
         outcome.updated = list(changed.values())

@@ -62,6 +62,7 @@ def update_check(*, user, check: Check, row: dict, reason: str) -> Check:
     if not reason:
         raise ValueError("A reason is required to change a record.")
     before = check.values()
+    action_before = check.corrective_action
     for key in parameters.KEYS:
         if key in row:
             setattr(check, key, row[key])
@@ -79,6 +80,8 @@ def update_check(*, user, check: Check, row: dict, reason: str) -> Check:
     check._change_reason = reason
     check.save()
     deviations.evaluate_checks([check])
+    if check.corrective_action.strip() and check.corrective_action != action_before:
+        deviations.record_action(check, user=user)  # the action reaches the deviation the value opened
     return check
 
 

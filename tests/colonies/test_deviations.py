@@ -261,3 +261,43 @@ def test_a_correction_keeps_the_flags_of_unchanged_readings(technician):
     services.update_check(user=technician, check=check, row={"ph": 7.1}, reason="pH re-read")
     check.refresh_from_db()
     assert check.flags["temp_c"]["high"] == 24.0  # still the flag shown when 26.0 was logged
+
+
+# ---------------------------------------------------------------------------------------------
+# Corrective actions typed with a flagged value reach the deviation (issue 10)
+# ---------------------------------------------------------------------------------------------
+def test_the_action_typed_on_the_round_is_recorded_on_the_deviation_it_opens(client, technician):
+    from django.urls import reverse
+
+    from tests.factories import make_room, make_species, make_tank, round_data
+
+    room = make_room(code="ca-1")
+    tank = make_tank(code="CA-01", room=room, species=make_species(targets={"temp_c": (21.0, 25.0)}))
+    client.force_login(technician)
+
+    client.post(reverse("colonies:round-room", args=[room.code]),
+                round_data({"CA-01": {"temp_c": "27.5", "corrective_action": "Heater thermostat reset to 23 °C"}}))
+
+    dev = Deviation.objects.get(tank=tank, rule=Deviation.Rule.OUT_OF_TARGET)
+    assert dev.status == Deviation.Status.OPEN  # recorded, not closed: closing is a person's decision
+    assert dev.corrective_action.endswith(f"{technician.username}: Heater thermostat reset to 23 °C")
+    assert dev.evidence[-1]["action"] == "Heater thermostat reset to 23 °C"
+    page = client.get(dev.get_absolute_url())
+    assert page.context["form"].initial["corrective_action"] == dev.corrective_action  # closing starts from it
+
+
+def test_an_action_added_to_the_check_later_reaches_its_open_deviation_once(technician):
+    from colonies import services
+    from tests.factories import make_check, make_species, make_tank
+
+    tank = make_tank(species=make_species(targets={"ph": (6.0, 8.0)}))
+    check = make_check(tank, user=technician, ph=9.2)
+    dev = Deviation.objects.get(tank=tank, parameter="ph")
+    assert dev.corrective_action == ""
+
+    for _ in range(2):
+        services.update_check(user=technician, check=check, row={"corrective_action": "Partial water change, 30 %"},
+                              reason="Action added after the round")
+    dev.refresh_from_db()
+    assert dev.corrective_action.count("Partial water change, 30 %") == 1
+    assert dev.history.first().history_change_reason == "Corrective action added to the check"
