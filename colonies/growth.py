@@ -1,14 +1,14 @@
 """Population growth, mortality and summaries of one tank: plain functions over loaded points.
 
 Pure: no Django import. The rows come from colonies/health_series.py; the statistics from
-colonies/population.py. Times are aware datetimes.
+colonies/population.py and colonies/growth_curves.py. Times are aware datetimes.
 """
 import math
 from dataclasses import dataclass, field
 from functools import lru_cache
 from datetime import datetime, timedelta
 
-from . import population
+from . import growth_curves, population
 
 DEFAULT_MORTALITY_DAYS = 30
 FIT_WINDOW_DAYS = 120  # growth is fitted on the censuses of the last 120 days
@@ -30,7 +30,7 @@ class Point:
 
 @dataclass(frozen=True)
 class Growth:
-    fit: population.GrowthFit | None
+    fit: growth_curves.GrowthFit | None
     t0: datetime | None
     n_points: int
     note: str  # why this model, or why no fit
@@ -103,13 +103,13 @@ def fit_usable(usable: tuple[Point, ...], window_days: int = FIT_WINDOW_DAYS) ->
     days = [(p.at - t0).total_seconds() / 86400 for p in usable]
     counts = [p.value for p in usable]
     try:
-        exponential = population.fit_growth(days, counts, "exponential")
+        exponential = growth_curves.fit_growth(days, counts, "exponential")
     except ValueError as error:
         exponential, why = None, str(error)
     logistic = None
     if len(usable) >= LOGISTIC_MIN_POINTS:
         try:
-            logistic = population.fit_growth(days, counts, "logistic")
+            logistic = growth_curves.fit_growth(days, counts, "logistic")
         except ValueError:
             logistic = None
     if exponential is None and logistic is None:
