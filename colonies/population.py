@@ -8,13 +8,14 @@ Growth curves are fitted in colonies/growth_curves.py.
 
 from __future__ import annotations
 
+import bisect
 import math
 import numbers
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import integrate, stats
+from scipy import stats
 
 __all__ = [
     "Estimate",
@@ -264,20 +265,39 @@ def animal_days(estimates: Sequence[tuple[float, float]], start_day: float, end_
     for i, pair in enumerate(estimates):
         if len(pair) != 2:
             raise ValueError(f"estimates[{i}] must be a (day, N) pair, got {pair!r}")
-        day = _check_finite(f"estimates[{i}] day", pair[0])
-        size = _check_finite(f"estimates[{i}] N", pair[1])
+        day, size = pair
+        if not (_is_finite(day) and _is_finite(size)):  # the messages only when needed (the overview sums 400)
+            day = _check_finite(f"estimates[{i}] day", day)
+            size = _check_finite(f"estimates[{i}] N", size)
+        day, size = float(day), float(size)
         if size < 0:
             raise ValueError(f"estimates[{i}] N must be >= 0 animals, got {pair[1]}")
         if day in points:
             raise ValueError(f"estimates has two population values for day {pair[0]}; keep one")
         points[day] = size
     known = sorted(points)
-    xp = np.array(known)
-    fp = np.array([points[d] for d in known])
-    # Integrate exactly: the curve is piecewise linear, so knots at every estimate inside the
-    # span plus the ends make the trapezoid rule exact. np.interp holds the end values constant.
-    grid = np.unique(np.concatenate(([start, end], xp[(xp > start) & (xp < end)])))
-    return float(integrate.trapezoid(np.interp(grid, xp, fp), grid))
+    # Integrate exactly: the curve is piecewise linear, so knots at every estimate inside the span
+    # plus the ends make the trapezoid rule exact; before the first and after the last estimate the
+    # value is held (as np.interp does). Plain floats: a tank has a handful of estimates per period.
+    grid = [start] + [d for d in known if start < d < end] + ([end] if end > start else [])
+    values = [_interpolate(known, points, d) for d in grid]
+    return math.fsum((b - a) * (u + v) / 2 for a, b, u, v in zip(grid, grid[1:], values, values[1:]))
+
+
+def _is_finite(value: object) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def _interpolate(known: list[float], points: dict[float, float], day: float) -> float:
+    """The population on `day`: linear between the estimates around it, held outside them."""
+    if day <= known[0]:
+        return points[known[0]]
+    if day >= known[-1]:
+        return points[known[-1]]
+    after = bisect.bisect_right(known, day)
+    x0, x1 = known[after - 1], known[after]
+    y0, y1 = points[x0], points[x1]
+    return y0 + (y1 - y0) * (day - x0) / (x1 - x0)
 
 
 @dataclass(frozen=True)
