@@ -135,13 +135,27 @@ def _style(ax, ylabel: str = "") -> None:
         ax.set_ylabel(ylabel, fontsize=8.5, color=INK)
 
 
-def _date_axis(ax, start: datetime, end: datetime, labels: bool = True) -> None:
-    ax.set_xlim(start, end)
+def _date_axis(panels: list[tuple], start: datetime, end: datetime) -> None:
+    """The time axis of panels that share it, as (axes, show the dates under it) pairs, once all are drawn.
+
+    Shared axes share one locator, which every panel would call again at each draw: the dates are
+    found once (AutoDateLocator, as before) and then fixed, the same dates for every panel."""
+    first = panels[0][0]
+    first.set_xlim(start, end)
     locator = mdates.AutoDateLocator(minticks=4, maxticks=9)
-    ax.xaxis.set_major_locator(locator)
+    first.xaxis.set_major_locator(locator)
     # No offset ("2026-Dec") under every panel: the period is written in the figure's footer.
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
-    ax.tick_params(axis="x", labelbottom=labels)
+    first.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
+    first.xaxis.set_major_locator(matplotlib.ticker.FixedLocator(first.xaxis.get_majorticklocs()))
+    for ax, labels in panels:
+        ax.tick_params(axis="x", labelbottom=labels)
+
+
+def _note(ax, text: str) -> None:
+    """A small note above a panel's right end. Its height is given (y=1.0) so matplotlib does not
+    measure every tick label of the panel at each draw to see whether the note must move up (it
+    never must: no panel has ticks on top); that search was a quarter of the tank figure's render."""
+    ax.set_title(text, fontsize=7.5, loc="right", color="#5b6b6e", pad=2, y=1.0)
 
 
 def _empty(ax, text: str) -> None:
@@ -198,11 +212,8 @@ def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: dateti
         _parameter_panel(ax, readings[readings["parameter"] == key], parameters.BY_KEY[key])
         param_axes.append(ax)
     last_row = {len(keys) - 1, len(keys) - 2}  # the bottom panel of each column
-    _date_axis(ax_pop, start, end)
-    _date_axis(ax_events, start, end, labels=False)
-    _date_axis(ax_dead, start, end, labels=not keys)
-    for i, ax in enumerate(param_axes):
-        _date_axis(ax, start, end, labels=i in last_row)
+    _date_axis([(ax_pop, True), (ax_events, False), (ax_dead, not keys)]
+               + [(ax, i in last_row) for i, ax in enumerate(param_axes)], start, end)
     return _render(fig, fmt)
 
 
@@ -276,7 +287,7 @@ def _deaths_panel(ax, frame: pd.DataFrame) -> None:
         _empty(ax, "No checks in this period")
         return
     total = int(dead["value"].sum())
-    ax.set_title(f"{total} dead removed in the period", fontsize=7.5, loc="right", color="#5b6b6e", pad=2)
+    _note(ax, f"{total} dead removed in the period")
     dead = dead[dead["value"] > 0]
     ax.bar(dead["at"], dead["value"], width=0.8, color=OKABE_ITO["black"], edgecolor=OKABE_ITO["black"])
     top = float(dead["value"].max() or 0)
@@ -315,7 +326,7 @@ def _parameter_panel(ax, rows: pd.DataFrame, p: parameters.Parameter) -> None:
     note = f"target {target}" if target else "no target set"
     if n_out:
         note += f" · {n_out} outside (▲ above, ▼ below)"
-    ax.set_title(note, fontsize=7.5, loc="right", color="#5b6b6e", pad=2)
+    _note(ax, note)
 
 
 def _wrap(text: str, width: int = 18) -> str:
@@ -375,10 +386,9 @@ def overview_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: da
     axes = fig.subplots(n_rows, columns, squeeze=False, sharex=True, gridspec_kw=layout)
     for ax in axes.flat[len(tanks):]:
         ax.set_axis_off()
-    for i, (ax, tank) in enumerate(zip(axes.flat, tanks)):
-        rows = frame[frame["tank"] == tank["tank"]]
-        _overview_cell(ax, rows, tank)
-        _date_axis(ax, start, end, labels=i + columns >= len(tanks))
+    for ax, tank in zip(axes.flat, tanks):
+        _overview_cell(ax, frame[frame["tank"] == tank["tank"]], tank)
+    _date_axis([(ax, i + columns >= len(tanks)) for i, ax in enumerate(axes.flat[:len(tanks)])], start, end)
     for ax in axes[:, 0]:
         ax.set_ylabel("animals", fontsize=8)
     handles = [
@@ -429,5 +439,6 @@ def _overview_cell(ax, rows: pd.DataFrame, tank: Mapping) -> None:
                         f"mortality {mort:.2f}/1000 a-d" if mort is not None else "mortality unknown"])
     line3 = " · ".join([f"{flagged:.0f} % of checks flagged" if flagged is not None else "no checks",
                         f"{devs:.0f} open deviation{'s' if devs != 1 else ''}" if devs else "no open deviation"])
-    ax.set_title(f"{tank['tank']} · {label}\n{line2}\n{line3}", fontsize=7.2, loc="left", color=INK, pad=3,
+    # y given: see _note.
+    ax.set_title(f"{tank['tank']} · {label}\n{line2}\n{line3}", fontsize=7.2, loc="left", color=INK, pad=3, y=1.0,
                  linespacing=1.3)

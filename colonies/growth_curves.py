@@ -233,15 +233,16 @@ def _fit_logistic(t: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
     with the analytic Jacobian, from three starting points; the best fit of the three is kept.
 
     K and N0 are fitted as their logarithms, which keeps them positive without bounds. Why this and
-    not curve_fit with bounds: on the censuses of a culture that is not levelling off (most
-    cultures most of the time) the least-squares problem has no finite minimum (K runs off to
-    infinity, or the curve sharpens towards a step at one end), and the bounded trust-region
-    solver, with a numerical Jacobian and an SVD per step in Python, crawled along that valley for
-    40-90 steps per start: ~60 ms a fit, 25 s for 400 tanks. MINPACK takes the same kind of steps
-    in compiled code: ~4 ms a fit. Where a minimum exists both find the same one
-    (tests/colonies/test_growth_curves.py checks it against a reference fit); along a valley each stops where its tolerances say, and this one
-    reaches the lower sum of squares in most such series (measured on 1,000; DEVELOPERS.md).
+    not curve_fit with bounds, as before: on the censuses of a culture that is not levelling off
+    (most cultures most of the time) the least-squares problem has no finite minimum (K runs off to
+    infinity, or the curve sharpens towards a step at one end), and the bounded trust-region solver,
+    with a numerical Jacobian and an SVD per step in Python, crawled along that valley for 40-90
+    steps per start: ~67 ms a fit, 27 s for the 400 tanks of the benchmark. MINPACK takes the same
+    kind of steps in compiled code: ~2.6 ms a fit. Where a minimum exists both find the same one
+    (tests/colonies/test_growth_curves.py checks it against the trust-region fit); along a valley
+    each stops where its tolerances say (DEVELOPERS.md, "Growth fits").
     """
+"""
     top = float(y.max())
     positive = y > 0
 
