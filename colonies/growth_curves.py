@@ -242,7 +242,6 @@ def _fit_logistic(t: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
     (tests/colonies/test_growth_curves.py checks it against the trust-region fit); along a valley
     each stops where its tolerances say (DEVELOPERS.md, "Growth fits").
     """
-"""
     top = float(y.max())
     positive = y > 0
 
