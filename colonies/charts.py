@@ -90,9 +90,12 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
 NUMERIC_COLUMNS = {"value", "lower", "upper", "target_low", "target_high"}
 
 
+CSV_DATE_FORMAT = "%Y-%m-%dT%H:%M:%S%z"
+
+
 def to_csv(frame: pd.DataFrame, header: bool = True) -> bytes:
     """The chart's rows as CSV, every text cell defused for spreadsheets (colonies/exports.py)."""
-    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z", header=header).encode("utf-8")
+    return frame_csv(frame, date_format=CSV_DATE_FORMAT, header=header).encode("utf-8")
 
 
 def _naive(times: pd.Series) -> pd.Series:

@@ -9,7 +9,7 @@ from django.db.models import Count, OuterRef, Subquery
 from django.utils import timezone
 
 from . import charts, growth, population
-from .health_series import check_counts, fits, load_points, local, summarize
+from .health_series import check_counts, fits, load_points, summarize
 from .models import Deviation, Tank
 
 MORTALITY_WATCH_FACTOR = 2.0  # overview: "watch" a tank dying at twice its species' median rate (lab setting)
@@ -108,13 +108,15 @@ def overview_rows(data: dict, trend_start: datetime, rows: list[dict] | None = N
     (a selection of data["rows"]; all of them by default)."""
     out = []
     end = data["end"]
+    zone = timezone.get_current_timezone()  # once: the CSV of a facility has thousands of times
+    end_local = end.astimezone(zone)
     for r in data["rows"] if rows is None else rows:
         tank, s = r["tank"], r["summary"]
         base = {"tank": tank.code, "room": tank.room.code, "species": tank.species.scientific_name, "rank": r["rank"]}
         for p in r["points"]:
             if p.kind != "before-split" and trend_start <= p.at <= end:
-                out.append({**base, "series": "population", "at": local(p.at), "value": p.value, "lower": p.lower,
-                            "upper": p.upper, "unit": "animals", "note": p.kind})
+                out.append({**base, "series": "population", "at": p.at.astimezone(zone), "value": p.value,
+                            "lower": p.lower, "upper": p.upper, "unit": "animals", "note": p.kind})
         metrics = {
             "status": (None, "; ".join(r["reasons"]) or "ok"),
             "estimate": (s.latest.value if s.latest else None, ""),
@@ -130,7 +132,7 @@ def overview_rows(data: dict, trend_start: datetime, rows: list[dict] | None = N
         for name, (value, note) in metrics.items():
             if name == "status":
                 note = r["status"]
-            out.append({**base, "series": name, "at": local(end), "value": value,
+            out.append({**base, "series": name, "at": end_local, "value": value,
                         "unit": charts.OVERVIEW_METRICS.get(name, "animals"), "note": note})
     return out
 
