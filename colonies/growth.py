@@ -15,7 +15,7 @@ DEFAULT_MORTALITY_DAYS = 30
 FIT_WINDOW_DAYS = 120  # growth is fitted on the censuses of the last 120 days
 LOGISTIC_MIN_POINTS = 6  # fewer points cannot tell a logistic curve from an exponential one
 FORECAST_HORIZON_DAYS = 365
-FIT_MEMO_SIZE = 8192  # fits remembered per process (a few hundred bytes each)
+FIT_MEMO_SIZE = 8192  # fits remembered per process (~2 KB each with the estimates that key them)
 
 
 @dataclass(frozen=True)
