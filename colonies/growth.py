@@ -5,7 +5,6 @@ colonies/population.py and colonies/growth_curves.py. Times are aware datetimes.
 """
 import math
 import threading
-from collections import OrderedDict
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
@@ -91,25 +90,22 @@ def usable_points(points: list[Point], now: datetime, window_days: int = FIT_WIN
     return tuple(usable)
 
 
-_memo: OrderedDict = OrderedDict()  # (usable, window_days) -> Growth, least recently used first
+# (usable, window_days) -> Growth, oldest first: the oldest go first when it is full (a lookup does
+# not reorder it: comparing a key's estimates twice per tank cost more than the order was worth).
+_memo: dict = {}
 _memo_lock = threading.Lock()  # one worker process may serve requests in threads
 
 
 def remembered(usable: tuple[Point, ...], window_days: int = FIT_WINDOW_DAYS) -> Growth | None:
     """The fit of exactly these estimates if this process has made (or been given) it."""
-    with _memo_lock:
-        found = _memo.get((usable, window_days))
-        if found is not None:
-            _memo.move_to_end((usable, window_days))
-        return found
+    return _memo.get((usable, window_days))
 
 
 def remember(usable: tuple[Point, ...], fitted: Growth, window_days: int = FIT_WINDOW_DAYS) -> None:
     with _memo_lock:
         _memo[(usable, window_days)] = fitted
-        _memo.move_to_end((usable, window_days))
         while len(_memo) > FIT_MEMO_SIZE:
-            _memo.popitem(last=False)
+            del _memo[next(iter(_memo))]
 
 
 def forget() -> None:
