@@ -11,7 +11,7 @@ from datetime import datetime, timedelta
 from django.core.cache import cache
 from django.utils import timezone
 
-from . import charts, growth, health_overview, health_series
+from . import charts, growth, health_overview, health_series, overview_chart
 from .exports import rows_csv
 from .health_series import local, window
 from .models import Tank
@@ -90,7 +90,7 @@ def render_overview_plot(days: int, fmt: str, room: str = "", page: int = 1) -> 
         frame = charts.overview_frame(health_overview.overview_rows(data, trend_start, shown["rows"]))
         title = (f"Colony health · {today:%d %b %Y} · {shown['label']} · worst first · health over the last "
                  f"{days} days, population over {max(days, growth.FIT_WINDOW_DAYS)} days")
-        return charts.overview_figure(frame, title=title, start=local(trend_start), end=local(data["end"]), fmt=fmt)
+        return overview_chart.overview_figure(frame, title=title, start=local(trend_start), end=local(data["end"]), fmt=fmt)
 
     return cached(overview_plot_key(days, fmt, room, page), build)
 
