@@ -1,6 +1,7 @@
 """Colony-health plots: tidy rows in, SVG or PNG bytes out.
 
 Pure: no Django import, so the figures can be made from a notebook with the CSV a page offers.
+The overview's small multiples are drawn by colonies/overview_chart.py with the helpers here.
 The views build the rows (tank_frame / overview_frame) and send the same frame as CSV.
 
 Conventions: Okabe & Ito's colour-blind-safe palette ("Color Universal Design", 2008); every
@@ -9,6 +10,8 @@ labels carry units from the parameter registry; times are the lab's local time.
 """
 from __future__ import annotations
 
+import functools
+import gc
 import io
 import math
 from collections.abc import Iterable, Mapping
@@ -27,7 +30,7 @@ from matplotlib.lines import Line2D  # noqa: E402
 from . import parameters  # noqa: E402  (pure registry)
 from .exports import frame_csv  # noqa: E402  (pure)
 
-__all__ = ["OVERVIEW_COLUMNS", "TANK_COLUMNS", "OKABE_ITO", "overview_figure", "overview_frame", "tank_figure",
+__all__ = ["OVERVIEW_COLUMNS", "TANK_COLUMNS", "OKABE_ITO", "overview_frame", "tank_figure",
            "tank_frame", "to_csv"]
 
 OKABE_ITO = {
@@ -90,9 +93,12 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
 NUMERIC_COLUMNS = {"value", "lower", "upper", "target_low", "target_high"}
 
 
+CSV_DATE_FORMAT = "%Y-%m-%dT%H:%M:%S%z"
+
+
 def to_csv(frame: pd.DataFrame, header: bool = True) -> bytes:
     """The chart's rows as CSV, every text cell defused for spreadsheets (colonies/exports.py)."""
-    return frame_csv(frame, date_format="%Y-%m-%dT%H:%M:%S%z", header=header).encode("utf-8")
+    return frame_csv(frame, date_format=CSV_DATE_FORMAT, header=header).encode("utf-8")
 
 
 def _naive(times: pd.Series) -> pd.Series:
@@ -113,6 +119,27 @@ def _naive_dt(value: datetime | None) -> datetime | None:
 # ---------------------------------------------------------------------------------------------
 # Rendering
 # ---------------------------------------------------------------------------------------------
+def _without_collections(draw):
+    """Draw a figure with Python's cyclic garbage collector paused.
+
+    A figure allocates a few hundred thousand objects that live until it is rendered: long enough to
+    be promoted to the oldest generation, so every other first render set off a collection of the
+    whole process (a Django worker's heap: +150 ms CPU on a tank figure, measured). Paused, they stay
+    young, and the first young collection after the figure frees them. The collector is process-wide:
+    another thread drawing at the same time only finds it paused already and leaves it to this one.
+    """
+    @functools.wraps(draw)
+    def drawing(*args, **kwargs):
+        paused = gc.isenabled()
+        gc.disable()
+        try:
+            return draw(*args, **kwargs)
+        finally:
+            if paused:
+                gc.enable()
+    return drawing
+
+
 def _render(fig: Figure, fmt: str) -> bytes:
     if fmt not in FORMATS:
         raise ValueError(f"format must be one of {', '.join(FORMATS)}, got {fmt!r}")
@@ -135,13 +162,27 @@ def _style(ax, ylabel: str = "") -> None:
         ax.set_ylabel(ylabel, fontsize=8.5, color=INK)
 
 
-def _date_axis(ax, start: datetime, end: datetime, labels: bool = True) -> None:
-    ax.set_xlim(start, end)
+def _date_axis(panels: list[tuple], start: datetime, end: datetime) -> None:
+    """The time axis of panels that share it, as (axes, show the dates under it) pairs, once all are drawn.
+
+    Shared axes share one locator, which every panel would call again at each draw: the dates are
+    found once (AutoDateLocator, as before) and then fixed, the same dates for every panel."""
+    first = panels[0][0]
+    first.set_xlim(start, end)
     locator = mdates.AutoDateLocator(minticks=4, maxticks=9)
-    ax.xaxis.set_major_locator(locator)
+    first.xaxis.set_major_locator(locator)
     # No offset ("2026-Dec") under every panel: the period is written in the figure's footer.
-    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
-    ax.tick_params(axis="x", labelbottom=labels)
+    first.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
+    first.xaxis.set_major_locator(matplotlib.ticker.FixedLocator(first.xaxis.get_majorticklocs()))
+    for ax, labels in panels:
+        ax.tick_params(axis="x", labelbottom=labels)
+
+
+def _note(ax, text: str) -> None:
+    """A small note above a panel's right end. Its height is given (y=1.0) so matplotlib does not
+    measure every tick label of the panel at each draw to see whether the note must move up (it
+    never must: no panel has ticks on top); that search was a quarter of the tank figure's render."""
+    ax.set_title(text, fontsize=7.5, loc="right", color="#5b6b6e", pad=2, y=1.0)
 
 
 def _empty(ax, text: str) -> None:
@@ -152,6 +193,7 @@ TANK_MARGINS = {"top": 0.6, "bottom": 0.62, "left": 0.95, "right": 0.2}  # inche
 TANK_GAPS = {"rows": 0.42, "columns": 1.05}  # inches between panels: titles above, labels beside
 
 
+@_without_collections
 def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: datetime, fmt: str = "svg",
                 subtitle: str = "") -> bytes:
     """Multi-panel health figure of one tank over [start, end].
@@ -198,11 +240,8 @@ def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: dateti
         _parameter_panel(ax, readings[readings["parameter"] == key], parameters.BY_KEY[key])
         param_axes.append(ax)
     last_row = {len(keys) - 1, len(keys) - 2}  # the bottom panel of each column
-    _date_axis(ax_pop, start, end)
-    _date_axis(ax_events, start, end, labels=False)
-    _date_axis(ax_dead, start, end, labels=not keys)
-    for i, ax in enumerate(param_axes):
-        _date_axis(ax, start, end, labels=i in last_row)
+    _date_axis([(ax_pop, True), (ax_events, False), (ax_dead, not keys)]
+               + [(ax, i in last_row) for i, ax in enumerate(param_axes)], start, end)
     return _render(fig, fmt)
 
 
@@ -276,7 +315,7 @@ def _deaths_panel(ax, frame: pd.DataFrame) -> None:
         _empty(ax, "No checks in this period")
         return
     total = int(dead["value"].sum())
-    ax.set_title(f"{total} dead removed in the period", fontsize=7.5, loc="right", color="#5b6b6e", pad=2)
+    _note(ax, f"{total} dead removed in the period")
     dead = dead[dead["value"] > 0]
     ax.bar(dead["at"], dead["value"], width=0.8, color=OKABE_ITO["black"], edgecolor=OKABE_ITO["black"])
     top = float(dead["value"].max() or 0)
@@ -315,7 +354,7 @@ def _parameter_panel(ax, rows: pd.DataFrame, p: parameters.Parameter) -> None:
     note = f"target {target}" if target else "no target set"
     if n_out:
         note += f" · {n_out} outside (▲ above, ▼ below)"
-    ax.set_title(note, fontsize=7.5, loc="right", color="#5b6b6e", pad=2)
+    _note(ax, note)
 
 
 def _wrap(text: str, width: int = 18) -> str:
@@ -334,100 +373,3 @@ def _target_text(low: float | None, high: float | None, unit: str) -> str:
     if high is not None:
         return f"≤ {high:g}{suffix}"
     return ""
-
-
-# ---------------------------------------------------------------------------------------------
-# Facility overview
-# ---------------------------------------------------------------------------------------------
-STATUS_STYLE = {
-    # status: (label, edge colour, line style of the panel frame)
-    "attention": ("needs attention", OKABE_ITO["vermillion"], "solid"),
-    "watch": ("watch", OKABE_ITO["orange"], "dashed"),
-    "ok": ("ok", "#9aa5a3", "solid"),
-}
-
-
-def overview_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: datetime, fmt: str = "svg",
-                    columns: int = 4) -> bytes:
-    """Small multiples, one per tank in `rank` order (worst first): population trend with the
-    maximum stocking line, and a two-line health summary under the tank code."""
-    start, end = _naive_dt(start), _naive_dt(end)
-    if end <= start:
-        raise ValueError(f"end must be after start = {start:%Y-%m-%d %H:%M}, got {end:%Y-%m-%d %H:%M}")
-    frame = frame.copy()
-    frame["at"] = _naive(frame["at"])
-    tanks = (frame.dropna(subset=["tank"]).sort_values(["rank", "tank"])
-             .drop_duplicates("tank")[["tank", "room", "species"]].to_dict("records"))
-    columns = max(1, min(columns, len(tanks) or 1))
-    n_rows = max(1, math.ceil(len(tanks) / columns))
-    # A fixed layout (margins in inches), not constrained layout: its cost grows steeply with the
-    # number of panels, and these panels are all alike. The caller shows a page of tanks at a time.
-    width, height = 2.9 * columns, 0.8 + 2.15 * n_rows + 0.45
-    fig = Figure(figsize=(width, height))
-    fig.suptitle(title, x=0.01, y=1 - 0.12 / height, ha="left", va="top", fontsize=12, fontweight="bold", color=INK)
-    if not tanks:
-        ax = fig.add_subplot(1, 1, 1)
-        ax.set_axis_off()
-        _empty(ax, "No tanks in use")
-        return _render(fig, fmt)
-    layout = {"left": 0.62 / width, "right": 1 - 0.12 / width, "top": 1 - 1.0 / height, "bottom": 0.75 / height,
-              "wspace": 0.3, "hspace": 0.72 / 1.43}
-    axes = fig.subplots(n_rows, columns, squeeze=False, sharex=True, gridspec_kw=layout)
-    for ax in axes.flat[len(tanks):]:
-        ax.set_axis_off()
-    for i, (ax, tank) in enumerate(zip(axes.flat, tanks)):
-        rows = frame[frame["tank"] == tank["tank"]]
-        _overview_cell(ax, rows, tank)
-        _date_axis(ax, start, end, labels=i + columns >= len(tanks))
-    for ax in axes[:, 0]:
-        ax.set_ylabel("animals", fontsize=8)
-    handles = [
-        Line2D([], [], color=OKABE_ITO["blue"], marker="o", linestyle="-", markersize=3, label="Estimate"),
-        Line2D([], [], color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)), label="Maximum stocking"),
-    ] + [Line2D([], [], color=edge, linestyle=style, linewidth=2, label=f"Frame: {label}")
-         for label, edge, style in STATUS_STYLE.values()]
-    fig.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, 0.05 / height), ncol=len(handles),
-               fontsize=7.5, frameon=False)
-    return _render(fig, fmt)
-
-
-def _metric(rows: pd.DataFrame, name: str):
-    hit = rows[rows["series"] == name]
-    if hit.empty:
-        return None
-    value = hit["value"].iloc[0]
-    return hit["note"].iloc[0] if name == "status" else (None if pd.isna(value) else float(value))
-
-
-def _overview_cell(ax, rows: pd.DataFrame, tank: Mapping) -> None:
-    _style(ax)
-    pop = rows[rows["series"] == "population"].sort_values("at")
-    if pop.empty:
-        _empty(ax, "no census")
-    else:
-        ax.fill_between(pop["at"], pop["lower"], pop["upper"], color=OKABE_ITO["sky"], alpha=0.25, linewidth=0,
-                        step=None)
-        ax.plot(pop["at"], pop["value"], color=OKABE_ITO["blue"], marker="o", markersize=3, linewidth=1.2)
-    cap = _metric(rows, "capacity")
-    if cap:
-        ax.axhline(cap, color=OKABE_ITO["vermillion"], linestyle=(0, (5, 3)), linewidth=1)
-    ax.set_ylim(bottom=0, top=max(cap or 0, float(pop["upper"].max()) if not pop.empty else 0) * 1.12 or 1)
-    ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(nbins=3))
-    ax.yaxis.set_major_formatter(matplotlib.ticker.StrMethodFormatter("{x:,.0f}"))
-    status = _metric(rows, "status") or "ok"
-    label, edge, style = STATUS_STYLE.get(status, STATUS_STYLE["ok"])
-    for spine in ax.spines.values():
-        spine.set_visible(True)
-        spine.set_edgecolor(edge)
-        spine.set_linestyle(style)
-        spine.set_linewidth(2 if status != "ok" else 0.8)
-    pct = _metric(rows, "density_pct_of_max")
-    mort = _metric(rows, "mortality_per_1000_animal_days")
-    flagged = _metric(rows, "flagged_checks_pct")
-    devs = _metric(rows, "open_deviations")
-    line2 = " · ".join([f"{pct:.0f} % of max density" if pct is not None else "density unknown",
-                        f"mortality {mort:.2f}/1000 a-d" if mort is not None else "mortality unknown"])
-    line3 = " · ".join([f"{flagged:.0f} % of checks flagged" if flagged is not None else "no checks",
-                        f"{devs:.0f} open deviation{'s' if devs != 1 else ''}" if devs else "no open deviation"])
-    ax.set_title(f"{tank['tank']} · {label}\n{line2}\n{line3}", fontsize=7.2, loc="left", color=INK, pad=3,
-                 linespacing=1.3)

@@ -6,7 +6,8 @@ database and sending the response are in colonies/export_stream.py.
 """
 import csv
 import io
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Collection, Iterable, Iterator, Mapping, Sequence
+from datetime import datetime
 
 import pandas as pd
 
@@ -99,3 +100,56 @@ def batches(items: Iterable, size: int | None = None) -> Iterator[list]:
             batch = []
     if batch:
         yield batch
+
+
+class _Line:
+    """A file for csv.writer that hands back the line it was given (no buffer)."""
+
+    def write(self, line: str) -> str:
+        return line
+
+
+def rows_csv(rows: Iterable[Mapping], columns: Sequence[str], *, numeric: Collection[str] = (),
+             date_format: str = "%Y-%m-%d %H:%M:%S", batch: int = 2000) -> Iterator[str]:
+    """CSV text of `rows` (mappings; a missing key is an empty cell), header first, then `batch`
+    rows per chunk, so a long export streams with flat memory.
+
+    The text is what frame_csv gives for a DataFrame of the same rows, without building one (which
+    cost ~3 ms per chunk): `numeric` columns as floats (an integer as 12.0, missing as empty),
+    datetimes with `date_format`, text defused (spreadsheet_safe), rows ending in CRLF. Another
+    column is written as its values are, so a column of whole numbers must be on every row (pandas
+    would make it a float column, 1.0, if a row lacked it; it cannot be known before the last row).
+    """
+    writer = csv.writer(_Line(), lineterminator="\r\n")
+    yield writer.writerow(list(columns))
+    numeric = frozenset(numeric)
+    kinds = [c in numeric for c in columns]
+    dates: dict[tuple, str] = {}  # rows often share a time (e.g. every metric of the overview at its end)
+    chunk = []
+    for row in rows:
+        cells = []
+        for column, is_number in zip(columns, kinds):
+            value = row.get(column)
+            if value is None:
+                cells.append("")
+            elif is_number:
+                value = float(value)
+                cells.append("" if value != value else repr(value))  # NaN is the one value unequal to itself
+            elif type(value) is str:
+                cells.append("'" + value if value.startswith(FORMULA_START) else value)  # spreadsheet_safe, inline
+            elif isinstance(value, datetime):
+                key = (value, value.utcoffset())  # equal instants in two zones are written differently
+                text = dates.get(key)
+                if text is None:
+                    text = dates[key] = value.strftime(date_format)
+                cells.append(text)
+            elif isinstance(value, float) and value != value:
+                cells.append("")
+            else:
+                cells.append(spreadsheet_safe(value))
+        chunk.append(writer.writerow(cells))
+        if len(chunk) >= batch:
+            yield "".join(chunk)
+            chunk = []
+    if chunk:
+        yield "".join(chunk)

@@ -1,20 +1,20 @@
 """Population growth, mortality and summaries of one tank: plain functions over loaded points.
 
 Pure: no Django import. The rows come from colonies/health_series.py; the statistics from
-colonies/population.py. Times are aware datetimes.
+colonies/population.py and colonies/growth_curves.py. Times are aware datetimes.
 """
 import math
+import threading
 from dataclasses import dataclass, field
-from functools import lru_cache
 from datetime import datetime, timedelta
 
-from . import population
+from . import growth_curves, population
 
 DEFAULT_MORTALITY_DAYS = 30
 FIT_WINDOW_DAYS = 120  # growth is fitted on the censuses of the last 120 days
 LOGISTIC_MIN_POINTS = 6  # fewer points cannot tell a logistic curve from an exponential one
 FORECAST_HORIZON_DAYS = 365
-FIT_MEMO_SIZE = 8192  # fits remembered per process (a few hundred bytes each)
+FIT_MEMO_SIZE = 8192  # fits remembered per process (~2 KB each with the estimates that key them)
 
 
 @dataclass(frozen=True)
@@ -30,7 +30,7 @@ class Point:
 
 @dataclass(frozen=True)
 class Growth:
-    fit: population.GrowthFit | None
+    fit: growth_curves.GrowthFit | None
     t0: datetime | None
     n_points: int
     note: str  # why this model, or why no fit
@@ -90,11 +90,42 @@ def usable_points(points: list[Point], now: datetime, window_days: int = FIT_WIN
     return tuple(usable)
 
 
-@lru_cache(maxsize=FIT_MEMO_SIZE)
+# (usable, window_days) -> Growth, oldest first: the oldest go first when it is full (a lookup does
+# not reorder it: comparing a key's estimates twice per tank cost more than the order was worth).
+_memo: dict = {}
+_memo_lock = threading.Lock()  # one worker process may serve requests in threads
+
+
+def remembered(usable: tuple[Point, ...], window_days: int = FIT_WINDOW_DAYS) -> Growth | None:
+    """The fit of exactly these estimates if this process has made (or been given) it."""
+    return _memo.get((usable, window_days))
+
+
+def remember(usable: tuple[Point, ...], fitted: Growth, window_days: int = FIT_WINDOW_DAYS) -> None:
+    with _memo_lock:
+        _memo[(usable, window_days)] = fitted
+        while len(_memo) > FIT_MEMO_SIZE:
+            del _memo[next(iter(_memo))]
+
+
+def forget() -> None:
+    """Empty this process's fits, as a new worker process starts (the benchmark's cold cases)."""
+    with _memo_lock:
+        _memo.clear()
+
+
 def fit_usable(usable: tuple[Point, ...], window_days: int = FIT_WINDOW_DAYS) -> Growth:
     """The fit of exactly these estimates, remembered by their values (a pure function of its
     arguments, so a remembered result is the result: any new, corrected or voided estimate changes
     the arguments)."""
+    found = remembered(usable, window_days)
+    if found is None:
+        found = _fit(usable, window_days)
+        remember(usable, found, window_days)
+    return found
+
+
+def _fit(usable: tuple[Point, ...], window_days: int) -> Growth:
     if len(usable) < 3:
         return Growth(None, None, len(usable),
                       f"needs at least 3 estimates in the last {window_days} days since the latest split; "
@@ -103,13 +134,13 @@ def fit_usable(usable: tuple[Point, ...], window_days: int = FIT_WINDOW_DAYS) ->
     days = [(p.at - t0).total_seconds() / 86400 for p in usable]
     counts = [p.value for p in usable]
     try:
-        exponential = population.fit_growth(days, counts, "exponential")
+        exponential = growth_curves.fit_growth(days, counts, "exponential")
     except ValueError as error:
         exponential, why = None, str(error)
     logistic = None
     if len(usable) >= LOGISTIC_MIN_POINTS:
         try:
-            logistic = population.fit_growth(days, counts, "logistic")
+            logistic = growth_curves.fit_growth(days, counts, "logistic")
         except ValueError:
             logistic = None
     if exponential is None and logistic is None:

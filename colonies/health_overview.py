@@ -9,7 +9,7 @@ from django.db.models import Count, OuterRef, Subquery
 from django.utils import timezone
 
 from . import charts, growth, population
-from .health_series import check_counts, load_points, local, summarize
+from .health_series import check_counts, fits, load_points, summarize
 from .models import Deviation, Tank
 
 MORTALITY_WATCH_FACTOR = 2.0  # overview: "watch" a tank dying at twice its species' median rate (lab setting)
@@ -25,7 +25,10 @@ def overview(days: int = growth.DEFAULT_MORTALITY_DAYS, now: datetime | None = N
     start = now - timedelta(days=days)
     tanks = list(Tank.objects.in_use().select_related("room", "species").order_by("room__code", "code"))
     ids = [t.pk for t in tanks]
-    points = load_points(ids)
+    # Only the points the page uses: its trend and fit window (and mortality's, within it) and the
+    # estimate before them (health_series.load_points).
+    points = load_points(ids, since=now - timedelta(days=max(days, growth.FIT_WINDOW_DAYS)))
+    fitted = fits({pk: growth.usable_points(points[pk], now) for pk in ids})
     checks = check_counts(ids, start, now)
     worst = {r["tank_id"]: r for r in Deviation.objects.unresolved().filter(tank_id__in=ids).values("tank_id")
              .annotate(n=Count("id"), worst=Subquery(
@@ -34,7 +37,7 @@ def overview(days: int = growth.DEFAULT_MORTALITY_DAYS, now: datetime | None = N
     rows = []
     for tank in tanks:
         c = checks.get(tank.pk, {})
-        s = summarize(tank, points[tank.pk], c.get("dead") or 0, now, days)
+        s = summarize(tank, points[tank.pk], c.get("dead") or 0, now, days, fitted[tank.pk])
         dev = worst.get(tank.pk, {})
         rows.append({"tank": tank, "summary": s, "points": points[tank.pk], "checks": c.get("checks") or 0,
                      "flagged_pct": 100 * c["flagged"] / c["checks"] if c.get("checks") else None,
@@ -105,13 +108,15 @@ def overview_rows(data: dict, trend_start: datetime, rows: list[dict] | None = N
     (a selection of data["rows"]; all of them by default)."""
     out = []
     end = data["end"]
+    zone = timezone.get_current_timezone()  # once: the CSV of a facility has thousands of times
+    end_local = end.astimezone(zone)
     for r in data["rows"] if rows is None else rows:
         tank, s = r["tank"], r["summary"]
         base = {"tank": tank.code, "room": tank.room.code, "species": tank.species.scientific_name, "rank": r["rank"]}
         for p in r["points"]:
             if p.kind != "before-split" and trend_start <= p.at <= end:
-                out.append({**base, "series": "population", "at": local(p.at), "value": p.value, "lower": p.lower,
-                            "upper": p.upper, "unit": "animals", "note": p.kind})
+                out.append({**base, "series": "population", "at": p.at.astimezone(zone), "value": p.value,
+                            "lower": p.lower, "upper": p.upper, "unit": "animals", "note": p.kind})
         metrics = {
             "status": (None, "; ".join(r["reasons"]) or "ok"),
             "estimate": (s.latest.value if s.latest else None, ""),
@@ -127,7 +132,7 @@ def overview_rows(data: dict, trend_start: datetime, rows: list[dict] | None = N
         for name, (value, note) in metrics.items():
             if name == "status":
                 note = r["status"]
-            out.append({**base, "series": name, "at": local(end), "value": value,
+            out.append({**base, "series": name, "at": end_local, "value": value,
                         "unit": charts.OVERVIEW_METRICS.get(name, "animals"), "note": note})
     return out
 

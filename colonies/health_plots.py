@@ -5,12 +5,14 @@ overview's by the facility version (the newest history id of each record type it
 save, correction or void anywhere it looks makes a new key. The pictures come from charts.py.
 """
 import hashlib
+import itertools
 from datetime import datetime, timedelta
 
 from django.core.cache import cache
 from django.utils import timezone
 
-from . import charts, growth, health_overview, health_series
+from . import charts, growth, health_overview, health_series, overview_chart
+from .exports import rows_csv
 from .health_series import local, window
 from .models import Tank
 
@@ -56,24 +58,18 @@ def render_tank_plot(tank: Tank, days: int, fmt: str) -> tuple[bytes, bool]:
 
 
 def tank_csv_chunks(tank: Tank, days: int):
-    """The tank figure's rows as CSV text, one chunk per series (header first)."""
+    """The tank figure's rows as CSV text (charts.TANK_COLUMNS), grouped by series, header first."""
     start, end = window(days)
     rows = health_series.tank_plot_rows(tank, start, end)
     by_series: dict[str, list] = {}
     for row in rows:
         by_series.setdefault(row["series"], []).append(row)
-    return _csv_chunks(charts.TANK_COLUMNS, charts.tank_frame, by_series.values())
+    return _csv(charts.TANK_COLUMNS, itertools.chain.from_iterable(by_series.values()))
 
 
-def _csv_chunks(columns, make_frame, groups):
-    """CSV text chunk by chunk, the same text charts.to_csv gives for the whole frame: numeric
-    columns are written as floats in every chunk (as in a whole frame, where empty cells make them so)."""
-    yield charts.to_csv(make_frame([]).reindex(columns=columns))
-    for group in groups:
-        frame = make_frame(group)
-        for col in charts.NUMERIC_COLUMNS & set(frame.columns):
-            frame[col] = frame[col].astype("float64")
-        yield charts.to_csv(frame, header=False)
+def _csv(columns, rows):
+    """The rows as the same CSV text charts.to_csv gives for their frame, streamed in chunks."""
+    return rows_csv(rows, columns, numeric=charts.NUMERIC_COLUMNS, date_format=charts.CSV_DATE_FORMAT)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -94,7 +90,7 @@ def render_overview_plot(days: int, fmt: str, room: str = "", page: int = 1) -> 
         frame = charts.overview_frame(health_overview.overview_rows(data, trend_start, shown["rows"]))
         title = (f"Colony health · {today:%d %b %Y} · {shown['label']} · worst first · health over the last "
                  f"{days} days, population over {max(days, growth.FIT_WINDOW_DAYS)} days")
-        return charts.overview_figure(frame, title=title, start=local(trend_start), end=local(data["end"]), fmt=fmt)
+        return overview_chart.overview_figure(frame, title=title, start=local(trend_start), end=local(data["end"]), fmt=fmt)
 
     return cached(overview_plot_key(days, fmt, room, page), build)
 
@@ -104,7 +100,7 @@ def trend_from(data: dict) -> datetime:
 
 
 def overview_csv_chunks(data: dict, rows: list[dict]):
-    """The overview's rows (`rows`, a selection of data["rows"]) as CSV text, one chunk per tank."""
+    """The overview's rows (`rows`, a selection of data["rows"]) as CSV text, built a tank at a time."""
     trend_start = trend_from(data)
-    groups = (health_overview.overview_rows(data, trend_start, [row]) for row in rows)
-    return _csv_chunks(charts.OVERVIEW_COLUMNS, charts.overview_frame, groups)
+    return _csv(charts.OVERVIEW_COLUMNS, itertools.chain.from_iterable(
+        health_overview.overview_rows(data, trend_start, [row]) for row in rows))

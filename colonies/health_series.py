@@ -20,31 +20,59 @@ METHOD_LABELS = dict(Census.Method.choices)
 STEP = timedelta(seconds=1)  # a split is drawn as a step: the estimate just before it, then after it
 
 
-def load_points(tank_ids) -> dict[int, list[Point]]:
+def load_points(tank_ids, since: datetime | None = None) -> dict[int, list[Point]]:
     """Every tank's population estimates, oldest first, in three queries whatever the number of tanks.
 
     A split is a step: the estimate just before it and the estimate after it. A split into an
     existing tank adds the animals moved to that tank's previous estimate. One pass per tank over
     its own rows (the animals moved in are grouped by destination first).
+
+    With `since` (the overview), a tank's points start at its last census before `since`: the
+    points from `since` on, and the one before that animal-days and the latest estimate need, are
+    those of the whole history (tests/colonies/test_health_series.py). One query more finds each
+    tank's last census before `since`; splits are few and all read. Ties in time keep the order of
+    saving (then id), so the window and the whole history agree on which estimate is the latest.
     """
     ids = list(tank_ids)
+    bounds = _last_census_before(ids, since) if since is not None else {}
+    censuses = Census.objects.current().filter(tank_id__in=ids, estimate__isnull=False).order_by()
+    if since is not None:
+        censuses = censuses.filter(observed_at__gte=min([since, *bounds.values()]))
     raw: dict[int, list[tuple]] = {pk: [] for pk in ids}
-    for tank_id, at, value, low, high, method in (
-            Census.objects.current().filter(tank_id__in=ids, estimate__isnull=False)
-            .values_list("tank_id", "observed_at", "estimate", "estimate_lower", "estimate_upper", "method")):
-        raw[tank_id].append((at, 0, Point(at, value, low, high, "census", METHOD_LABELS[method])))
-    for tank_id, at, before, stayed in (Split.objects.current().filter(source_id__in=ids)
-                                        .values_list("source_id", "split_at", "source_before", "stayed")):
-        raw[tank_id].append((at - STEP, 1, Point(at - STEP, before, None, None, "before-split")))
-        raw[tank_id].append((at, 1, Point(at, stayed, None, None, "split", "left after a split")))
+    for tank_id, at, value, low, high, method, pk in censuses.values_list(
+            "tank_id", "observed_at", "estimate", "estimate_lower", "estimate_upper", "method", "pk"):
+        if since is None or at >= bounds.get(tank_id, since):
+            raw[tank_id].append((at, 0, pk, Point(at, value, low, high, "census", METHOD_LABELS[method])))
+    for tank_id, at, before, stayed, pk in (Split.objects.current().filter(source_id__in=ids).order_by()
+                                            .values_list("source_id", "split_at", "source_before", "stayed", "pk")):
+        raw[tank_id].append((at - STEP, 1, pk, Point(at - STEP, before, None, None, "before-split")))
+        raw[tank_id].append((at, 1, pk, Point(at, stayed, None, None, "split", "left after a split")))
     moved_in = defaultdict(list)
     for tank_id, at, animals, created, source in (
-            SplitPart.objects.filter(destination_id__in=ids, split__voided_at__isnull=True)
+            SplitPart.objects.filter(destination_id__in=ids, split__voided_at__isnull=True).order_by()
             .values_list("destination_id", "split__split_at", "animals", "created_tank", "split__source__code")):
         moved_in[tank_id].append((at, animals, created, source))
-    return {tank_id: _with_moves_in([p for *_, p in sorted(items, key=lambda i: (i[0], i[1]))],
-                                    sorted(moved_in.get(tank_id, ()), key=lambda m: m[0]))
-            for tank_id, items in raw.items()}
+    points = {tank_id: _with_moves_in([p for *_, p in sorted(items, key=lambda i: i[:3])],
+                                      sorted(moved_in.get(tank_id, ()), key=lambda m: m[0]))
+              for tank_id, items in raw.items()}
+    # A split into an existing tank at the very moment of the tank's last census before `since`
+    # would add to an estimate older than the window: read that tank's whole history (never seen
+    # in practice, but the window must equal the whole history).
+    exact_again = [tank_id for tank_id, moves in moved_in.items()
+                   if any(not created and at == bounds.get(tank_id) for at, _, created, _ in moves)]
+    if exact_again:
+        points.update(load_points(exact_again))
+    return {tank_id: [p for p in tank_points if tank_id in exact_again or p.at >= bounds.get(tank_id, p.at)]
+            for tank_id, tank_points in points.items()}
+
+
+def _last_census_before(tank_ids: list[int], since: datetime) -> dict[int, datetime]:
+    """Per tank, the time of its last census (with an estimate) before `since`; tanks with none are
+    left out. One query: a seek on the (tank, time) index per tank."""
+    last = (Census.objects.current().filter(tank_id=OuterRef("pk"), estimate__isnull=False, observed_at__lt=since)
+            .order_by("-observed_at").values("observed_at")[:1])
+    return {pk: at for pk, at in Tank.objects.filter(pk__in=tank_ids).annotate(at=Subquery(last))
+            .values_list("pk", "at") if at is not None}
 
 
 def _with_moves_in(points: list[Point], moves: list[tuple]) -> list[Point]:
@@ -82,20 +110,53 @@ def started_at(tank: Tank) -> datetime:
     return timezone.make_aware(datetime.combine(tank.started_on, time.min))
 
 
+FITS_KEY = "vermilog:growth-fits"  # one shared cache entry: {digest of a fit's inputs: Growth}
+SHARED_FITS = 2048  # fits kept in it (newest last), a few hundred bytes each
+
+
+def fits(usables: dict) -> dict:
+    """growth.fit_usable of each series (any keys, e.g. tank ids), shared between processes.
+
+    Each fit is found by its inputs (the estimates it uses), so a stored fit is never stale: first in
+    this process's memory, then in one cache entry that every worker shares (one read however many
+    tanks miss), else fitted (~3 ms each) and written back in one write. One entry rather than one per
+    tank, so the overview costs one cache read and the figures' entries are not crowded out. Two
+    workers writing at once may lose each other's new fits: they are fitted again, never wrong.
+    """
+    out, missing = {}, {}
+    for key, usable in usables.items():
+        found = growth.remembered(usable)
+        if found is None:
+            missing[key] = usable
+        else:
+            out[key] = found
+    if not missing:
+        return out
+    shared = cache.get(FITS_KEY) or {}
+    added = False
+    for key, usable in missing.items():
+        digest = hashlib.sha256(repr((usable, growth.FIT_WINDOW_DAYS)).encode()).hexdigest()
+        found = shared.get(digest)
+        if found is None:
+            found = shared[digest] = growth.fit_usable(usable)
+            added = True
+        else:
+            growth.remember(usable, found)
+        out[key] = found
+    if added:
+        cache.set(FITS_KEY, dict(list(shared.items())[-SHARED_FITS:]), FIT_CACHE_SECONDS)
+    return out
+
+
 def fit(points, now: datetime) -> growth.Growth:
-    """growth.fit_points, shared between processes through Django's cache under a key made of the
-    fit's inputs themselves (the estimates it uses), so a stored fit is never stale."""
-    usable = growth.usable_points(points, now)
-    key = "vermilog:fit:" + hashlib.sha256(repr((usable, growth.FIT_WINDOW_DAYS)).encode()).hexdigest()
-    found = cache.get(key)
-    if found is None:
-        found = growth.fit_usable(usable)
-        cache.set(key, found, FIT_CACHE_SECONDS)
-    return found
+    """One series' fit (see fits)."""
+    return fits({0: growth.usable_points(points, now)})[0]
 
 
-def summarize(tank: Tank, points, deaths: int, now: datetime, mortality_days: int) -> growth.Summary:
-    return growth.summarize(tank, points, deaths, now, started_at(tank), mortality_days, fit(points, now))
+def summarize(tank: Tank, points, deaths: int, now: datetime, mortality_days: int,
+              fitted: growth.Growth | None = None) -> growth.Summary:
+    return growth.summarize(tank, points, deaths, now, started_at(tank), mortality_days,
+                            fitted or fit(points, now))
 
 
 def tank_summary(tank: Tank, now: datetime | None = None,

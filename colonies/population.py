@@ -1,45 +1,36 @@
-"""Population statistics for worm cultures: counts, census estimates, growth, mortality.
+"""Population statistics for worm cultures: counts, census estimates, mortality, splits.
 
 Pure computation with no Django import, so it is testable without a database and usable
 from a notebook. Every function raises ValueError naming the argument, the value and the
 allowed range when it is given something impossible (negative animals, zero volume, ...).
+Growth curves are fitted in colonies/growth_curves.py.
 """
 
 from __future__ import annotations
 
+import bisect
 import math
 import numbers
-import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import integrate, optimize, stats
+from scipy import stats
 
 __all__ = [
     "Estimate",
-    "FitError",
-    "GrowthFit",
     "SplitBalance",
     "aliquot_estimate",
     "animal_days",
     "direct_count_estimate",
-    "fit_growth",
     "gravimetric_estimate",
     "mortality_rate_per_1000_animal_days",
     "poisson_interval",
     "split_balance",
 ]
 
-MODELS = ("exponential", "logistic")
-
 # Relative slack when comparing sums of float volumes, so that 3 x 0.1 mL "equals" 0.3 mL.
 _VOLUME_RTOL = 1e-9
-
-
-class FitError(ValueError):
-    """A growth curve could not be fitted to otherwise valid data (no convergence, or
-    parameters the data cannot determine). A ValueError so one except clause catches both."""
 
 
 # ---------------------------------------------------------------------------
@@ -246,232 +237,6 @@ def gravimetric_estimate(
 
 
 # ---------------------------------------------------------------------------
-# Growth
-
-
-def _exponential(t: np.ndarray | float, n0: float, r: float) -> np.ndarray | float:
-    return n0 * np.exp(r * t)
-
-
-def _logistic(t: np.ndarray | float, k: float, n0: float, r: float) -> np.ndarray | float:
-    # N(t) = K / (1 + ((K - N0) / N0) exp(-r t)); an overflowing exp means N -> 0, which is right.
-    with np.errstate(over="ignore"):
-        return k / (1 + (k / n0 - 1) * np.exp(-r * t))
-
-
-def _doubling(rate: float) -> float | None:
-    return math.log(2) / rate if rate > 0 else None
-
-
-def _doubling_ci(rate_ci: tuple[float, float]) -> tuple[float, float] | None:
-    lo, hi = rate_ci
-    if hi <= 0:
-        return None
-    # A rate interval reaching down to zero or below means the doubling time is unbounded.
-    return (math.log(2) / hi, math.log(2) / lo if lo > 0 else math.inf)
-
-
-@dataclass(frozen=True)
-class GrowthFit:
-    """A fitted growth curve; day 0 is day 0 of the `days` given to fit_growth.
-
-    For the logistic model `rate_per_day` and the doubling time are the low-density
-    (intrinsic) values. `r_squared` and `residual_se` are on the scale that was fitted:
-    ln(count) for the exponential model, count for the logistic model.
-    """
-
-    model: str
-    rate_per_day: float
-    rate_ci: tuple[float, float]
-    initial: float
-    initial_ci: tuple[float, float]
-    doubling_time_days: float | None
-    doubling_time_ci: tuple[float, float] | None
-    carrying_capacity: float | None
-    carrying_capacity_ci: tuple[float, float] | None
-    n_points: int
-    r_squared: float
-    residual_se: float
-    confidence: float
-
-    def predict(self, day: float) -> float:
-        t = _check_finite("day", day)
-        if self.model == "exponential":
-            return float(_exponential(t, self.initial, self.rate_per_day))
-        assert self.carrying_capacity is not None
-        return float(_logistic(t, self.carrying_capacity, self.initial, self.rate_per_day))
-
-    def day_reaching(self, size: float) -> float | None:
-        """The day the fitted curve rises through `size` (before day 0 if it already had).
-
-        None when the curve never grows to `size`: a rate of zero or below, a logistic
-        curve starting at or above its carrying capacity, or `size` at or above it.
-        """
-        s = _check_positive("size", size, "animals")
-        r, n0 = self.rate_per_day, self.initial
-        if r <= 0:
-            return None
-        if self.model == "exponential":
-            return math.log(s / n0) / r
-        k = self.carrying_capacity
-        assert k is not None
-        if n0 >= k or s >= k:
-            return None
-        return -math.log((k / s - 1) / (k / n0 - 1)) / r
-
-
-def _check_series(
-    days: Sequence[float], counts: Sequence[float], model: str
-) -> tuple[np.ndarray, np.ndarray]:
-    if model not in MODELS:
-        raise ValueError(f"model must be one of {', '.join(MODELS)}, got {model!r}")
-    if len(days) != len(counts):
-        raise ValueError(
-            f"days and counts must have the same length, got {len(days)} days and {len(counts)} counts"
-        )
-    minimum = 3 if model == "exponential" else 4
-    if len(days) < minimum:
-        raise ValueError(
-            f"a {model} fit needs at least {minimum} points, got {len(days)}"
-        )
-    t = np.array([_check_finite(f"days[{i}]", d) for i, d in enumerate(days)])
-    y = np.array([_check_finite(f"counts[{i}]", c) for i, c in enumerate(counts)])
-    for i, c in enumerate(y):
-        if c < 0:
-            raise ValueError(f"counts[{i}] must be >= 0 animals, got {counts[i]}")
-        if model == "exponential" and c == 0:
-            # ln(0) is undefined; a culture that hit zero is not growing exponentially.
-            raise ValueError(
-                f"counts[{i}] must be > 0 for an exponential fit (it is fitted on ln counts), got {counts[i]}"
-            )
-    distinct = 2 if model == "exponential" else 3
-    if len(np.unique(t)) < distinct:
-        raise ValueError(
-            f"days must hold at least {distinct} different days for a {model} fit, "
-            f"got {sorted(set(t.tolist()))}"
-        )
-    if model == "logistic" and not np.any(y > 0):
-        raise ValueError("counts must include at least one count > 0 for a logistic fit, got all zeros")
-    return t, y
-
-
-def fit_growth(
-    days: Sequence[float], counts: Sequence[float], model: str = "exponential", confidence: float = 0.95
-) -> GrowthFit:
-    """Fit an exponential or logistic growth curve to census counts.
-
-    Exponential: least squares of ln(count) on day (multiplicative, roughly constant relative
-    counting error); rate and ln N0 intervals from their standard errors and t(n - 2).
-    Logistic: nonlinear least squares on counts, N(t) = K / (1 + ((K - N0)/N0) exp(-r t)),
-    intervals from the residual-scaled covariance matrix and t(n - 3). Both are Wald
-    intervals: approximate, and optimistic when the data barely determine a parameter.
-    Raises FitError (a ValueError) when the logistic fit fails or K cannot be determined,
-    typically because the counts have not started to level off.
-    """
-    c = _check_confidence(confidence)
-    t, y = _check_series(days, counts, model)
-    n = len(t)
-
-    if model == "exponential":
-        fit = stats.linregress(t, np.log(y))
-        q = float(stats.t.ppf(0.5 + c / 2, n - 2))
-        rate, ln_n0 = float(fit.slope), float(fit.intercept)
-        rate_ci = (rate - q * float(fit.stderr), rate + q * float(fit.stderr))
-        residuals = np.log(y) - (ln_n0 + rate * t)
-        return GrowthFit(
-            model=model, rate_per_day=rate, rate_ci=rate_ci, initial=math.exp(ln_n0),
-            initial_ci=(
-                math.exp(ln_n0 - q * float(fit.intercept_stderr)),
-                math.exp(ln_n0 + q * float(fit.intercept_stderr)),
-            ),
-            doubling_time_days=_doubling(rate), doubling_time_ci=_doubling_ci(rate_ci),
-            carrying_capacity=None, carrying_capacity_ci=None, n_points=n,
-            r_squared=float(fit.rvalue**2),
-            residual_se=math.sqrt(float(residuals @ residuals) / (n - 2)), confidence=c,
-        )
-
-    k, n0, rate = _fit_logistic(t, y)
-    residuals = y - _logistic(t, k, n0, rate)
-    sse = float(residuals @ residuals)
-    se_k, se_n0, se_r = _logistic_standard_errors(t, (k, n0, rate), sse / (n - 3))
-    q = float(stats.t.ppf(0.5 + c / 2, n - 3))
-    rate_ci = (rate - q * se_r, rate + q * se_r)
-    sst = float(((y - y.mean()) ** 2).sum())
-    return GrowthFit(
-        model=model, rate_per_day=rate, rate_ci=rate_ci, initial=n0,
-        initial_ci=(n0 - q * se_n0, n0 + q * se_n0),
-        doubling_time_days=_doubling(rate), doubling_time_ci=_doubling_ci(rate_ci),
-        carrying_capacity=k, carrying_capacity_ci=(k - q * se_k, k + q * se_k), n_points=n,
-        r_squared=1 - sse / sst if sst > 0 else 1.0,
-        residual_se=math.sqrt(sse / (n - 3)), confidence=c,
-    )
-
-
-def _logistic_standard_errors(
-    t: np.ndarray, params: tuple[float, float, float], s2: float
-) -> tuple[float, float, float]:
-    # Covariance s^2 (J'J)^-1 from the analytic Jacobian. curve_fit's own covariance uses a
-    # truncated pseudo-inverse, which reports a zero-width interval for a carrying capacity the
-    # data cannot determine (counts still rising); a plain inverse reports it as huge instead.
-    k, n0, r = params
-    with np.errstate(over="ignore", invalid="ignore"):
-        e = np.exp(-r * t)
-        d = 1 + (k / n0 - 1) * e
-        jac = np.column_stack((
-            1 / d - k * e / (n0 * d**2),                 # dN/dK
-            k**2 * e / (n0**2 * d**2),                   # dN/dN0
-            k * (k / n0 - 1) * t * e / d**2,             # dN/dr
-        ))
-    # Scale columns by the parameters so J'J is not ill-conditioned by units alone.
-    scale = np.array([abs(p) if p != 0 else 1.0 for p in params])
-    js = jac * scale
-    try:
-        inv = np.linalg.inv(js.T @ js)
-    except np.linalg.LinAlgError:
-        inv = np.full((3, 3), np.inf)
-    se = np.sqrt(np.abs(np.diag(inv)) * s2) * scale
-    if not np.all(np.isfinite(se)):
-        raise FitError(
-            "the logistic fit cannot determine its parameters from these counts "
-            "(have they started to level off?); try model='exponential'"
-        )
-    return float(se[0]), float(se[1]), float(se[2])
-
-
-def _fit_logistic(t: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
-    # Starting values from the logit transform ln(N / (K - N)) = ln(N0 / (K - N0)) + r t for a
-    # few guesses of K above the largest count; keep the best converged fit.
-    top = float(y.max())
-    best: tuple[float, np.ndarray] | None = None
-    for k0 in (1.05 * top, 1.5 * top, 3 * top):
-        pos = y > 0
-        r0, n00 = 0.1, float(y[pos][np.argmin(t[pos])])
-        if np.count_nonzero(pos) >= 2 and len(np.unique(t[pos])) >= 2:
-            line = stats.linregress(t[pos], np.log(y[pos] / (k0 - y[pos])))
-            if math.isfinite(line.slope) and math.isfinite(line.intercept):
-                r0 = float(line.slope)
-                n00 = k0 / (1 + math.exp(-line.intercept))
-        try:
-            with warnings.catch_warnings():
-                # We compute the covariance ourselves; curve_fit's warning about it is moot.
-                warnings.simplefilter("ignore", optimize.OptimizeWarning)
-                params, _ = optimize.curve_fit(
-                    _logistic, t, y, p0=(k0, n00, r0),
-                    bounds=([top * 1e-9, top * 1e-12, -np.inf], [np.inf, np.inf, np.inf]),
-                    x_scale="jac", max_nfev=10_000,
-                )
-        except (RuntimeError, ValueError):
-            continue
-        sse = float(((y - _logistic(t, *params)) ** 2).sum())
-        if best is None or sse < best[0]:
-            best = (sse, params)
-    if best is None:
-        raise FitError("the logistic fit did not converge for these counts; try model='exponential'")
-    k, n0, r = (float(p) for p in best[1])
-    return k, n0, r
-
-
-# ---------------------------------------------------------------------------
 # Mortality and bookkeeping
 
 
@@ -500,20 +265,39 @@ def animal_days(estimates: Sequence[tuple[float, float]], start_day: float, end_
     for i, pair in enumerate(estimates):
         if len(pair) != 2:
             raise ValueError(f"estimates[{i}] must be a (day, N) pair, got {pair!r}")
-        day = _check_finite(f"estimates[{i}] day", pair[0])
-        size = _check_finite(f"estimates[{i}] N", pair[1])
+        day, size = pair
+        if not (_is_finite(day) and _is_finite(size)):  # the messages only when needed (the overview sums 400)
+            day = _check_finite(f"estimates[{i}] day", day)
+            size = _check_finite(f"estimates[{i}] N", size)
+        day, size = float(day), float(size)
         if size < 0:
             raise ValueError(f"estimates[{i}] N must be >= 0 animals, got {pair[1]}")
         if day in points:
             raise ValueError(f"estimates has two population values for day {pair[0]}; keep one")
         points[day] = size
     known = sorted(points)
-    xp = np.array(known)
-    fp = np.array([points[d] for d in known])
-    # Integrate exactly: the curve is piecewise linear, so knots at every estimate inside the
-    # span plus the ends make the trapezoid rule exact. np.interp holds the end values constant.
-    grid = np.unique(np.concatenate(([start, end], xp[(xp > start) & (xp < end)])))
-    return float(integrate.trapezoid(np.interp(grid, xp, fp), grid))
+    # Integrate exactly: the curve is piecewise linear, so knots at every estimate inside the span
+    # plus the ends make the trapezoid rule exact; before the first and after the last estimate the
+    # value is held (as np.interp does). Plain floats: a tank has a handful of estimates per period.
+    grid = [start] + [d for d in known if start < d < end] + ([end] if end > start else [])
+    values = [_interpolate(known, points, d) for d in grid]
+    return math.fsum((b - a) * (u + v) / 2 for a, b, u, v in zip(grid, grid[1:], values, values[1:]))
+
+
+def _is_finite(value: object) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def _interpolate(known: list[float], points: dict[float, float], day: float) -> float:
+    """The population on `day`: linear between the estimates around it, held outside them."""
+    if day <= known[0]:
+        return points[known[0]]
+    if day >= known[-1]:
+        return points[known[-1]]
+    after = bisect.bisect_right(known, day)
+    x0, x1 = known[after - 1], known[after]
+    y0, y1 = points[x0], points[x1]
+    return y0 + (y1 - y0) * (day - x0) / (x1 - x0)
 
 
 @dataclass(frozen=True)

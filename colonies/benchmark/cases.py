@@ -12,7 +12,7 @@ from django.test import Client
 from django.urls import reverse
 from django.utils import timezone
 
-from colonies import check_export, demo, deviations
+from colonies import check_export, demo, deviations, growth
 from colonies.forms import CheckEntryForm
 from colonies.models import Check, Room, Tank
 from colonies.round_post import ROWS_FIELD
@@ -79,6 +79,11 @@ def _round_post(client, url, tanks, *, filled_only=False, as_json=False):
     return run, len(data)
 
 
+def _forget_everything():
+    cache.clear()
+    growth.forget()
+
+
 def _rescan():
     report = deviations.rescan(now=timezone.now())  # what `scan_deviations --records` runs
     return {"rows": report.checks, "opened": len(report.opened), "updated": len(report.updated - report.opened)}
@@ -124,6 +129,10 @@ def build_cases() -> list[Case]:
         Case(f"Tank page ({tank.code})", TECHNICIAN, _get(tech, reverse("colonies:tank-detail", args=[tank.code]))),
         Case(f"Tank history ({tank.code})", MANAGER, _get(manager, reverse("colonies:tank-history", args=[tank.code]))),
         Case("Colony-health overview", MANAGER, _get(manager, reverse("colonies:health-overview"))),
+        Case("Colony-health overview, new process", MANAGER, _get(manager, reverse("colonies:health-overview")),
+             before=growth.forget, warm_up=False, notes="this process's fits forgotten before each run (a restart)"),
+        Case("Colony-health overview, nothing cached", MANAGER, _get(manager, reverse("colonies:health-overview")),
+             before=_forget_everything, warm_up=False, notes="cache and this process's fits emptied before each run"),
         Case("Overview figure, first", MANAGER, _get(manager, reverse("colonies:health-overview-plot")),
              kind="figure", before=cache.clear, warm_up=False, notes="cache cleared before each run"),
         Case("Overview figure, cached", MANAGER, _get(manager, reverse("colonies:health-overview-plot")), kind="figure"),
