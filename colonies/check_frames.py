@@ -226,9 +226,7 @@ def _read(checks, keys: list[str], tanks: dict[int, TankFacts]) -> dict[str, np.
         "dead": rows["dead_removed"].to_numpy(np.int64),
         **{k: rows[k].to_numpy(float, na_value=np.nan) for k in parameters.KEYS},
     }
-    for key in keys:
-        if key in derived.BY_KEY:
-            columns[key] = _derive(derived.BY_KEY[key], columns, tanks)
+    columns.update(_derive([derived.BY_KEY[k] for k in keys if k in derived.BY_KEY], columns, tanks))
     return columns
 
 
@@ -247,17 +245,18 @@ def _observed_micros():
     return _EpochMicros("observed_at")
 
 
-def _derive(d: derived.DerivedValue, columns: dict[str, np.ndarray], tanks: dict[int, TankFacts]) -> np.ndarray:
-    """A derived value per row, for the tanks with a target on it, by `derived.derive_arrays`: the registry's
-    own formulas on arrays, the same number bit for bit as on the tank page and in the flags."""
-    out = np.full(len(columns["pk"]), np.nan)
+def _derive(wanted: list, columns: dict[str, np.ndarray], tanks: dict[int, TankFacts]) -> dict[str, np.ndarray]:
+    """Each wanted derived value per row, for the tanks with a target on it, by `derived.derive_arrays` (the
+    registry's own formulas on arrays: the same number bit for bit as on the tank page and in the flags),
+    computed once per tank for all of them."""
+    out = {d.key: np.full(len(columns["pk"]), np.nan) for d in wanted}
     for tank_id, facts in tanks.items():
-        if d.key not in facts.targets or not d.applies_to(facts.habitat):
-            continue
-        rows = np.flatnonzero(columns["tank"] == tank_id)
+        mine = [d for d in wanted if d.key in facts.targets and d.applies_to(facts.habitat)]
+        rows = np.flatnonzero(columns["tank"] == tank_id) if mine else ()
         if len(rows):
             values = derived.derive_arrays({k: columns[k][rows] for k in derived.INPUTS}, [facts.habitat] * len(rows))
-            out[rows] = values[d.key]
+            for d in mine:
+                out[d.key][rows] = values[d.key]
     return out
 
 

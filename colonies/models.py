@@ -30,6 +30,7 @@ DEFAULT_WATER_CHANGE_INTERVAL_DAYS = 7
 DEFAULT_WATER_CHANGE_FRACTION = 0.5
 DEFAULT_CENSUS_INTERVAL_DAYS = 14
 LATE_ENTRY_AFTER = timedelta(hours=6)  # entered this long after the observation: marked as a late entry
+MEASURED_LOOKBACK = timedelta(days=schedules.MAX_EVERY_DAYS + 1)  # Tank.objects.with_last_measured()
 # A task is overdue (and the scan opens a deviation) this long after it fell due:
 OVERDUE_GRACE_FRACTION = 0.25  # common practice: a quarter of the interval...
 MIN_OVERDUE_GRACE = timedelta(hours=2)  # ...and at least two hours
@@ -342,11 +343,15 @@ class TankQuerySet(models.QuerySet):
             )
         return self.annotate(**annotations)
 
-    def with_last_measured(self):
-        """Annotate last_<key>_at: when each parameter was last measured (one query; the plans need it)."""
+    def with_last_measured(self, now=None):
+        """Annotate last_<key>_at: when each parameter was last measured within the last MEASURED_LOOKBACK (one
+        query; the plans need it, colonies/schedules.py). None beyond it: no plan waits longer than
+        schedules.MAX_EVERY_DAYS, so a reading older than that is due whatever its exact time. The bound keeps a
+        parameter a tank never measures (salinity in fresh water) from reading the tank's whole history."""
+        since = (now or timezone.now()) - MEASURED_LOOKBACK
         return self.annotate(**{
             f"last_{p.key}_at": Subquery(
-                Check.objects.current().filter(tank=OuterRef("pk"), **{f"{p.key}__isnull": False})
+                Check.objects.current().filter(tank=OuterRef("pk"), observed_at__gte=since, **{f"{p.key}__isnull": False})
                 .order_by("-observed_at").values("observed_at")[:1])
             for p in parameters.PARAMETERS})
 
@@ -354,8 +359,7 @@ class TankQuerySet(models.QuerySet):
         return (
             self.in_use()
             .select_related("room", "species")
-            .prefetch_related("species__targets", "target_overrides", "species__measurement_plans",
-                              "measurement_overrides")
+            .prefetch_related("species__targets", "target_overrides", "species__measurement_plans")
             .with_last_events()
             .with_last_readings()
             .with_last_measured()

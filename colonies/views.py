@@ -47,7 +47,7 @@ def home(request):
     today = timezone.localdate()
     rooms = {}
     tanks = list(Tank.objects.in_use().select_related("room", "species").with_last_events().with_last_measured()
-                 .prefetch_related("species__measurement_plans", "measurement_overrides").order_by("room__code", "code"))
+                 .prefetch_related("species__measurement_plans").order_by("room__code", "code"))
     readings_due = due_readings.due_by_tank(tanks, now)
     for tank in tanks:
         entry = rooms.setdefault(tank.room_id, {"room": tank.room, "tanks": 0, "checked_today": 0, "readings": {},
