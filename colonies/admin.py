@@ -141,9 +141,12 @@ class TankAdmin(ReasonAdmin):
 class RecordAdmin(HistoryAdmin):
     """Husbandry records are read here; they are entered and corrected in the app's own screens."""
 
-    list_filter = ["tank__room", ("voided_at", admin.EmptyFieldListFilter)]
+    # A date filter, not date_hierarchy: the hierarchy's year links cost a DISTINCT over every row of the table
+    # (1.7 s of the checks list's 1.8 s at 436,000 checks on SQLite); this filter runs no query of its own.
+    list_filter = [("observed_at", admin.DateFieldListFilter), "tank__room", ("voided_at", admin.EmptyFieldListFilter)]
     search_fields = ["tank__code", "note"]
-    date_hierarchy = "observed_at"
+    show_full_result_count = False  # one COUNT(*) of the whole table per page is enough
+    list_select_related = ["tank", "recorded_by"]
 
     def has_change_permission(self, request, obj=None):
         return False
