@@ -100,3 +100,18 @@ def test_fits_are_shared_through_one_cache_entry_and_never_stale(lines):
     changed = usables[pk][:-1] + (growth.Point(usables[pk][-1].at, 999.0, None, None, "census"),)
     assert health_series.fits({pk: changed})[pk].fit.rate_per_day != first[pk].fit.rate_per_day
     assert len(cache.get(health_series.FITS_KEY)) == len(stored) + 1
+
+
+@pytest.mark.django_db
+def test_every_history_table_the_version_key_reads_has_its_newest_per_tank_index():
+    # The figure's version query (records_versions) orders each tank's history rows by history_id; without
+    # (tank column, history_id) PostgreSQL walked the whole primary key (migration 0018's docstring).
+    from importlib import import_module
+
+    from django.db import connection
+
+    indexes = import_module("colonies.migrations.0018_history_newest_per_tank").INDEXES
+    with connection.cursor() as cursor:
+        for name, table, column in indexes:
+            found = connection.introspection.get_constraints(cursor, table)
+            assert found[name]["columns"] == [column, "history_id"] and found[name]["index"], name
