@@ -26,6 +26,8 @@ from django.db.models import OuterRef, Q, Subquery
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history, bulk_update_with_history
 
+from vermilog.lab_time import lab_moment
+
 from . import control_charts, derived
 from .flags import Target, out_of_target
 from .models import EVIDENCE_KEEP, Census, Check, Deviation, Tank, overdue_grace
@@ -184,7 +186,7 @@ class Context:
 
 
 def _local(dt: datetime) -> str:
-    return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M")
+    return lab_moment(dt)
 
 
 @record_rule

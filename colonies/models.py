@@ -19,6 +19,8 @@ from django.urls import get_script_prefix, get_urlconf, reverse
 from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
+from vermilog.lab_time import lab_date, lab_moment
+
 from . import derived, parameters
 from .flags import Target
 from .validators import (MAX_TEXT, CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
@@ -504,7 +506,7 @@ class Check(Readings, Recorded):
         ]
 
     def __str__(self):
-        return f"Check of {self.tank} at {timezone.localtime(self.observed_at):%Y-%m-%d %H:%M}"
+        return f"Check of {self.tank} at {lab_moment(self.observed_at)}"
 
     def get_absolute_url(self):
         return reverse("colonies:check-detail", args=[self.pk])
@@ -843,7 +845,7 @@ class Split(Voidable):
         ]
 
     def __str__(self):
-        return f"Split of {self.source} on {timezone.localtime(self.split_at):%Y-%m-%d}"
+        return f"Split of {self.source} on {lab_date(timezone.localtime(self.split_at))}"
 
     def get_absolute_url(self):
         return self.source.get_absolute_url()

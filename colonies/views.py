@@ -10,6 +10,7 @@ from django.http import FileResponse, Http404, HttpResponse, HttpResponseBadRequ
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.utils.dateformat import format as date_format
+from django.utils.formats import get_format
 from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
@@ -186,8 +187,10 @@ TANK_ROW = ('<tr><td><a href="{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><t
 
 def _tank_rows(tanks) -> str:
     """The list's table body in one call (a template loop costs ~0.1 ms a row; a facility lists 400+)."""
+    fmt = get_format("SHORT_DATETIME_FORMAT")  # the lab's format (vermilog/formats), looked up once
+
     def last(t):
-        return date_format(timezone.localtime(t.last_check_at), "d M H:i") if t.last_check_at else "never"
+        return date_format(timezone.localtime(t.last_check_at), fmt) if t.last_check_at else "never"
     return format_html_join("", TANK_ROW, (
         (t.get_absolute_url(), t.code, t.room, t.position, t.species.common_name or t.species, t.status,
          t.get_status_display(), t.volume_l, t.get_system_display(), last(t)) for t in tanks))

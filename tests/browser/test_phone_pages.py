@@ -1,0 +1,150 @@
+"""The main pages at phone width (390 px) and desktop width, as each role that uses them, on the demo data.
+
+Two checks per page:
+- nothing scrolls sideways at 390 px: not the page (document.scrollingElement.scrollWidth <= innerWidth)
+  and not a table inside its scroll box (tables turn into stacked rows on a phone instead);
+- axe-core (read from node_modules/axe-core/axe.min.js, installed by `npm ci` from the project's
+  package-lock.json, injected with Playwright's add_script_tag) finds no serious or critical violation,
+  at both widths.
+
+One test walks all the pages (the demo is loaded once; the machine is small); problems are collected
+and reported together, so one run names every page that needs work.
+"""
+from pathlib import Path
+
+import pytest
+
+from tests.browser.conftest import _unavailable
+
+pytestmark = pytest.mark.browser
+
+AXE = Path(__file__).resolve().parents[2] / "node_modules" / "axe-core" / "axe.min.js"
+PHONE = {"width": 390, "height": 844}
+DESKTOP = {"width": 1280, "height": 900}
+BLOCKING = ("serious", "critical")
+DEMO_DAYS = 30  # enough for every kind of record the pages show; the full 120 days take longer to load
+
+
+@pytest.fixture
+def demo_lab(transactional_db, monkeypatch):
+    """The invented demo facility (colonies.demo), shortened; returns the ids the pages need."""
+    from django.core.management import call_command
+
+    from colonies import demo
+    from colonies.models import Check, Deviation
+    from experiments.models import Study
+
+    monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
+    call_command("load_demo", "--seed", "7", stdout=open("/dev/null", "w"))
+    flagged = Check.objects.exclude(flags={}).order_by("-observed_at").first()
+    unblinded = Study.objects.filter(blinded=False).order_by("code").first() or Study.objects.order_by("code").first()
+    return {"check": flagged.pk, "study": unblinded.code, "deviation": Deviation.objects.order_by("pk").first().pk}
+
+
+def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
+    """Per demo user: (name, path, checked for overflow at 390 px). `None` path = booking suggestions."""
+    return {
+        None: [("login", "/accounts/login/", True)],
+        "tamsin": [  # technician
+            ("Today", "/", True), ("tank list", "/tanks/", True), ("tank page", "/tanks/LV-03/", True),
+            ("check detail", f"/checks/{ids['check']}/", True), ("species list", "/species/", True),
+            ("species page", "/species/1/", True), ("deviation", f"/deviations/{ids['deviation']}/", True),
+            ("colony health", "/health/", True), ("tank health", "/tanks/LV-03/health/", True),
+        ],
+        "ravi": [  # researcher
+            ("tank page (researcher)", "/tanks/LV-03/", True), ("trials list", "/experiments/", True),
+            ("study page", f"/experiments/studies/{ids['study']}/", True),
+            ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),
+        ],
+        "morwen": [  # manager
+            ("deviation register", "/deviations/", True), ("exposure ledger", "/experiments/ledger/", True),
+        ],
+    }
+
+
+def _sign_in(page, base: str, username: str) -> None:
+    from playwright.sync_api import expect
+
+    from colonies.demo import DEMO_PASSWORD
+
+    page.goto(f"{base}/accounts/login/")
+    page.get_by_label("Username").fill(username)
+    page.get_by_label("Password").fill(DEMO_PASSWORD)
+    page.get_by_role("button", name="Sign in").click()
+    expect(page.get_by_role("button", name="Sign out")).to_be_visible()
+
+
+def _open(page, base: str, path: str | None) -> None:
+    if path is not None:
+        response = page.goto(base + path)
+        assert response.status == 200, f"{path}: HTTP {response.status}"
+        return
+    # Booking suggestions are the answer to a POST: fill the form as a researcher would.
+    page.goto(f"{base}/experiments/bookings/new/")
+    page.get_by_label("Protocol").select_option(index=1)
+    page.get_by_label("Species").select_option(label="Lumbriculus variegatus (California blackworm)")
+    page.get_by_label("Animals", exact=False).first.fill("10")
+    page.get_by_role("button", name="Suggest tanks").click()
+    page.get_by_role("button", name="Book from LV-01").wait_for()
+
+
+def _overflow(page) -> list[str]:
+    """What scrolls sideways: the page itself, or any table in its scroll box."""
+    return page.evaluate("""() => {
+        const out = [];
+        const doc = document.scrollingElement;
+        if (doc.scrollWidth > innerWidth) out.push(`page is ${doc.scrollWidth}px wide for ${innerWidth}px`);
+        for (const box of document.querySelectorAll('.table-scroll')) {
+            if (box.scrollWidth > box.clientWidth + 1) {
+                const head = box.querySelector('th, td');
+                out.push(`table scrolls (${box.scrollWidth}px in ${box.clientWidth}px), first cell "${head ? head.textContent.trim().slice(0, 30) : ''}"`);
+            }
+        }
+        return out;
+    }""")
+
+
+def _axe(page) -> list[str]:
+    page.add_script_tag(path=str(AXE))
+    violations = page.evaluate("async () => (await axe.run(document, {resultTypes: ['violations']})).violations")
+    return [f"{v['impact']} {v['id']}: {v['help']} -> " + "; ".join(" ".join(n["target"]) for n in v["nodes"][:4])
+            for v in violations if v["impact"] in BLOCKING]
+
+
+def _walk(browser, base: str, pages: dict, errors: list) -> list[str]:
+    problems = []
+    for user, entries in pages.items():
+        context = browser.new_context(viewport=PHONE)
+        context.set_default_timeout(15_000)
+        page = context.new_page()
+        page.on("pageerror", lambda error: errors.append(str(error)))
+        if user:
+            _sign_in(page, base, user)
+        for name, path, check_overflow in entries:
+            for size in (PHONE, DESKTOP):
+                page.set_viewport_size(size)
+                _open(page, base, path)
+                where = f"{name} as {user or 'anonymous'} at {size['width']} px"
+                if size is PHONE and check_overflow:
+                    problems += [f"{where}: {p}" for p in _overflow(page)]
+                problems += [f"{where}: {p}" for p in _axe(page)]
+        context.close()
+    return problems
+
+
+def test_main_pages_fit_a_phone_and_pass_axe_for_each_role(browser, live_server, demo_lab):
+    if not AXE.exists():
+        _unavailable(f"axe-core not found at {AXE}: run `npm ci` in the project folder")
+    errors = []
+    problems = _walk(browser, live_server.url, _pages(demo_lab), errors)
+    assert not errors, f"JavaScript errors: {errors}"
+    assert not problems, "\n".join(problems)
+
+
+def test_round_fits_a_phone_and_passes_axe(browser, live_server, demo_lab):
+    if not AXE.exists():
+        _unavailable(f"axe-core not found at {AXE}: run `npm ci` in the project folder")
+    errors = []
+    problems = _walk(browser, live_server.url, {"tamsin": [("round", "/round/fw-1/", True)]}, errors)
+    assert not errors, f"JavaScript errors: {errors}"
+    assert not problems, "\n".join(problems)
