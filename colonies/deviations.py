@@ -186,7 +186,8 @@ class Context:
 
 
 def _local(dt: datetime) -> str:
-    return lab_moment(dt)
+    """A time in the evidence (stored data): ISO-like, local to the lab; pages show it the lab's way."""
+    return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M")
 
 
 @record_rule
@@ -330,7 +331,7 @@ def _overdue(tank, now, label, last, interval, rule):
     late_text = f"{hours:.0f} h" if hours < 48 else f"{hours / 24:.1f} days"
     return Finding(
         tank.pk, rule, severity,
-        f"{label} {late_text} overdue (last {_local(last) if last else 'never'}, due {_local(due_at)})",
+        f"{label} {late_text} overdue (last {lab_moment(last) if last else 'never'}, due {lab_moment(due_at)})",
         {"ref": f"due:{due_at.isoformat()}", "last": _local(last) if last else None, "due": _local(due_at),
          "seen": _local(now)},
         due_at,

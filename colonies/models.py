@@ -44,7 +44,7 @@ def overdue_grace(interval: timedelta) -> timedelta:
 TANK_CODE_RE = r"^[A-Z0-9][A-Z0-9-]{0,11}$"
 tank_code_validator = RegexValidator(
     TANK_CODE_RE,
-    "Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. FW-A07).",
+    "Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. LV-01, SM-01, PD-01).",
 )
 
 
@@ -314,7 +314,7 @@ class Tank(models.Model):
         RETIRED = "retired", "Retired"
 
     code = models.CharField(max_length=12, unique=True, validators=[tank_code_validator],
-                            help_text="Printed on the tank label.")
+                            help_text="Printed on the tank label: the species' prefix and a number, e.g. LV-01.")
     room = models.ForeignKey(Room, on_delete=models.PROTECT, related_name="tanks")
     position = models.CharField(max_length=30, blank=True, help_text="Rack and shelf, e.g. 'rack 2, shelf B'.")
     species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="tanks")

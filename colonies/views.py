@@ -181,8 +181,11 @@ def tank_list(request):
     return render(request, "colonies/tank_list.html", {"filter": tank_filter, "tanks": tanks, "rows": _tank_rows(tanks)})
 
 
-TANK_ROW = ('<tr><td><a href="{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td><span class="pill {}">{}</span></td>'
-            '<td class="num">{}</td><td>{}</td><td>{}</td></tr>')
+# data-label: the column's name, shown beside each value when the table stacks on a phone (vermilog.css).
+TANK_ROW = ('<tr><td class="row-head wide" data-label="Code"><a href="{}">{}</a></td><td data-label="Room">{}</td>'
+            '<td data-label="Position">{}</td><td data-label="Species">{}</td>'
+            '<td data-label="Status"><span class="pill {}">{}</span></td><td class="num" data-label="Volume (L)">{}</td>'
+            '<td data-label="System">{}</td><td data-label="Last check">{}</td></tr>')
 
 
 def _tank_rows(tanks) -> str:
@@ -222,13 +225,15 @@ def _tank_page_ctx(request, tank, **forms):
         rows.append({"check": c, "cells": [{"param": p, "value": p.format(values.get(p.key)),
                                             "side": (c.flags.get(p.key) or {}).get("side")} for p in columns],
                      "flag_text": _flag_text(c)})
+    deviations = list(tank.deviations.unresolved().select_related("tank").order_by("-severity", "-last_seen_at"))
     ctx = {
         "tank": tank_with,
         "due": tank_with.due() if hasattr(tank_with, "last_check_at") else [],
         "params": columns,
         "targets": [(p, targets.get(p.key)) for p in columns],
-        "deviations": tank.deviations.unresolved().select_related("tank").order_by("-severity", "-last_seen_at"),
-        "rows": rows,
+        "deviations": deviations,
+        "rows": rows, "recent_rows": rows[:RECENT_CHECKS_SHOWN], "earlier_rows": rows[RECENT_CHECKS_SHOWN:],
+        "figure_days": TANK_FIGURE_DAYS,
         "feedings": tank.feeding_set.current().select_related("recorded_by")[:10],
         "water_changes": tank.waterchange_set.current().select_related("recorded_by")[:10],
         "censuses": tank.census_set.current().select_related("recorded_by")[:10],
@@ -242,7 +247,30 @@ def _tank_page_ctx(request, tank, **forms):
         "split_form": forms.get("split_form") or split_form,
         "part_forms": forms.get("part_forms") or part_forms,
     }
+    ctx["sections"], ctx["jump"] = tank_sections(request.user, tank_with, deviations)
     return ctx
+
+
+# The tank page's sections (templates/colonies/tank/_<name>.html) in the order each person needs them:
+# who records starts with the forms (always first in tank_detail.html), then what is due and wrong;
+# who only reads starts with the population summary and the figure. Jump links lead to each.
+RECENT_CHECKS_SHOWN = 10  # the rest of the 30 are one tap away (a phone showed 30 checks in 5 screens)
+TANK_FIGURE_DAYS = 120
+SECTION_LABELS = {"record": "Record", "due": "Due", "deviations": "Deviations", "checks": "Checks",
+                  "population": "Population", "figure": "Figure", "records": "Husbandry", "about": "About"}
+RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "records", "about")
+READER_ORDER = ("population", "figure", "checks", "deviations", "due", "records", "about")
+
+
+def tank_sections(user, tank, deviations) -> tuple[list[str], list[tuple[str, str]]]:
+    """(section names in order, jump links (anchor, label)); the record section is the template's own."""
+    records = can_record_husbandry(user) and tank.status != Tank.Status.RETIRED
+    order = [name for name in (RECORDER_ORDER if records else READER_ORDER) if name != "deviations" or deviations]
+    anchors = {"records": "husbandry"}
+    jump = [("record", "Record")] if records else []
+    jump += [(anchors.get(name, name), SECTION_LABELS[name] + (f" ({len(deviations)})" if name == "deviations" else ""))
+             for name in order]
+    return order, jump
 
 
 @require_GET

@@ -3,6 +3,7 @@
 Two checks per page:
 - nothing scrolls sideways at 390 px: not the page (document.scrollingElement.scrollWidth <= innerWidth)
   and not a table inside its scroll box (tables turn into stacked rows on a phone instead);
+- inputs have 16 px text and checkboxes are 24 px at 390 px;
 - axe-core (read from node_modules/axe-core/axe.min.js, installed by `npm ci` from the project's
   package-lock.json, injected with Playwright's add_script_tag) finds no serious or critical violation,
   at both widths.
@@ -58,6 +59,7 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
         ],
         "morwen": [  # manager
             ("deviation register", "/deviations/", True), ("exposure ledger", "/experiments/ledger/", True),
+            ("care profile form", "/species/1/edit/", True),
         ],
     }
 
@@ -104,6 +106,24 @@ def _overflow(page) -> list[str]:
     }""")
 
 
+def _small_controls(page) -> list[str]:
+    """Inputs under 16 px text (a phone zooms into them on focus) and boxes under 24 px (WCAG 2.5.8)."""
+    return page.evaluate("""() => {
+        const out = [];
+        for (const el of document.querySelectorAll('input, select, textarea')) {
+            const box = el.getBoundingClientRect();
+            if (el.type === 'hidden' || box.width === 0) continue;
+            const name = `${el.tagName.toLowerCase()} ${el.name || el.id}`;
+            if (el.type === 'checkbox' || el.type === 'radio') {
+                if (box.width < 24 || box.height < 24) out.push(`${name} is ${box.width}x${box.height} px`);
+            } else if (parseFloat(getComputedStyle(el).fontSize) < 16) {
+                out.push(`${name} has ${getComputedStyle(el).fontSize} text`);
+            }
+        }
+        return out;
+    }""")
+
+
 def _axe(page) -> list[str]:
     page.add_script_tag(path=str(AXE))
     violations = page.evaluate("async () => (await axe.run(document, {resultTypes: ['violations']})).violations")
@@ -127,6 +147,8 @@ def _walk(browser, base: str, pages: dict, errors: list) -> list[str]:
                 where = f"{name} as {user or 'anonymous'} at {size['width']} px"
                 if size is PHONE and check_overflow:
                     problems += [f"{where}: {p}" for p in _overflow(page)]
+                if size is PHONE:
+                    problems += [f"{where}: {p}" for p in _small_controls(page)]
                 problems += [f"{where}: {p}" for p in _axe(page)]
         context.close()
     return problems

@@ -31,7 +31,7 @@ def test_tank_page_shows_a_saved_flag_on_the_value_and_asks_for_action(client, t
     assert cells["temp_c"]["side"] is None
     assert row["flag_text"] == ["pH 9.10 is above the care target 6–8"]
     text = page_text(response)
-    assert '<td class="num flag-cell">9.10 <span class="flag-mark" title="above target">▲</span></td>' in text
+    assert '<td class="num flag-cell" data-label="pH">9.10 <span class="flag-mark" title="above target">▲</span></td>' in text
     assert "corrective action missing" in text
 
 
@@ -41,7 +41,7 @@ def test_tank_page_flag_with_action_shows_the_action_instead_of_missing(client, 
 
     text = page_text(client.get(reverse("colonies:tank-detail", args=[tank.code])))
 
-    assert '<td class="num flag-cell">5.00 <span class="flag-mark" title="below target">▼</span></td>' in text
+    assert '<td class="num flag-cell" data-label="pH">5.00 <span class="flag-mark" title="below target">▼</span></td>' in text
     assert "Buffered with bicarbonate" in text
     assert "corrective action missing" not in text
 
