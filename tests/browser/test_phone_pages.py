@@ -4,6 +4,7 @@ Two checks per page:
 - nothing scrolls sideways at 390 px: not the page (document.scrollingElement.scrollWidth <= innerWidth)
   and not a table inside its scroll box (tables turn into stacked rows on a phone instead);
 - inputs have 16 px text and checkboxes are 24 px at 390 px;
+- the deviation register and the exposure ledger print every column on A4, without navigation;
 - axe-core (read from node_modules/axe-core/axe.min.js, installed by `npm ci` from the project's
   package-lock.json, injected with Playwright's add_script_tag) finds no serious or critical violation,
   at both widths.
@@ -124,6 +125,32 @@ def _small_controls(page) -> list[str]:
     }""")
 
 
+# Printable pages: the width of an A4 page's printed area at 96 px to the inch (vermilog.css @page margins).
+PRINTED = {"deviation register": {"width": 718, "height": 1000},  # portrait: 210 - 2 x 10 mm
+           "exposure ledger": {"width": 1047, "height": 700}}  # landscape: 297 - 2 x 10 mm
+
+
+def _printed(page, size: dict) -> list[str]:
+    """As printed on A4: no navigation or filter form, every column of every table on the page."""
+    page.set_viewport_size(size)
+    page.emulate_media(media="print")
+    try:
+        return page.evaluate("""() => {
+            const out = [];
+            for (const sel of ['.topbar', 'form.toolbar', '.foot']) {
+                const el = document.querySelector(sel);
+                if (el && el.getClientRects().length) out.push(`${sel} is printed`);
+            }
+            for (const th of document.querySelectorAll('table.data th')) {
+                if (!th.getClientRects().length) out.push(`column "${th.textContent.trim()}" is not printed`);
+                else if (th.getBoundingClientRect().right > innerWidth + 1) out.push(`column "${th.textContent.trim()}" is off the page`);
+            }
+            return out;
+        }""")
+    finally:
+        page.emulate_media(media="screen")
+
+
 def _axe(page) -> list[str]:
     page.add_script_tag(path=str(AXE))
     violations = page.evaluate("async () => (await axe.run(document, {resultTypes: ['violations']})).violations")
@@ -150,6 +177,8 @@ def _walk(browser, base: str, pages: dict, errors: list) -> list[str]:
                 if size is PHONE:
                     problems += [f"{where}: {p}" for p in _small_controls(page)]
                 problems += [f"{where}: {p}" for p in _axe(page)]
+                if size is DESKTOP and name in PRINTED:
+                    problems += [f"{name} printed: {p}" for p in _printed(page, PRINTED[name])]
         context.close()
     return problems
 

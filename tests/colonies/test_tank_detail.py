@@ -1,4 +1,5 @@
 """The tank page: recent checks with their flags, records, what is due."""
+import re
 from datetime import timedelta
 
 import pytest
@@ -95,3 +96,59 @@ def test_tank_page_offers_record_forms_to_technicians_only(client, technician, r
     assert add_check in page_text(client.get(url))
     client.force_login(researcher)
     assert add_check not in page_text(client.get(url))
+
+
+def _section_order(html: str) -> list[str]:
+    return re.findall(r'class="tank-section[^"]*" id="([a-z]+)"', html)
+
+
+def test_tank_page_puts_the_forms_first_for_who_records_and_the_summary_first_for_who_reads(
+        client, technician, researcher, tank):
+    url = reverse("colonies:tank-detail", args=[tank.code])
+
+    client.force_login(technician)
+    technician_page = client.get(url)
+    client.force_login(researcher)
+    researcher_page = client.get(url)
+
+    assert _section_order(technician_page.content.decode()) == [
+        "record", "due", "checks", "population", "figure", "husbandry", "about"]  # no deviation: no section
+    assert _section_order(researcher_page.content.decode()) == [
+        "population", "figure", "checks", "due", "husbandry", "about"]
+    # the jump links lead to the sections, in the same order
+    for response in (technician_page, researcher_page):
+        jump = re.findall(r'<li><a href="#([a-z]+)">', response.content.decode())
+        assert jump == _section_order(response.content.decode())
+
+
+def test_tank_page_jump_link_to_deviations_counts_them(client, technician, tank):
+    from colonies.models import Deviation
+    Deviation.objects.create(tank=tank, rule=Deviation.Rule.OUT_OF_TARGET, parameter="ph", summary="pH high",
+                             opened_at=timezone.now())
+    client.force_login(technician)
+
+    html = client.get(reverse("colonies:tank-detail", args=[tank.code])).content.decode()
+
+    assert '<a href="#deviations">Deviations (1)</a>' in html
+    assert _section_order(html)[:3] == ["record", "due", "deviations"]
+
+
+def test_tank_page_shows_ten_checks_and_the_rest_one_tap_away(client, technician, tank):
+    for days in range(12):
+        make_check(tank, user=technician, temp_c=22.0, observed_at=timezone.now() - timedelta(days=days, hours=1))
+    client.force_login(technician)
+
+    response = client.get(reverse("colonies:tank-detail", args=[tank.code]))
+
+    assert (len(response.context["recent_rows"]), len(response.context["earlier_rows"])) == (10, 2)
+    assert "<summary>2 earlier checks</summary>" in response.content.decode()
+
+
+def test_tank_page_picks_the_phone_figure_below_40rem(client, researcher, tank):
+    client.force_login(researcher)
+
+    html = client.get(reverse("colonies:tank-detail", args=[tank.code])).content.decode()
+
+    plot = reverse("colonies:tank-plot", args=[tank.code])
+    assert f'<source media="(max-width: 40rem)" srcset="{plot}?days=120&amp;layout=phone">' in html
+    assert f'<img src="{plot}?days=120"' in html
