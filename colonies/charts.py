@@ -44,7 +44,7 @@ FORMATS = {"svg": "image/svg+xml", "png": "image/png"}
 # download) and "phone" (one panel per row, sized for a phone held upright: the page picks it below
 # 40rem with <picture>).
 LAYOUTS = ("wide", "phone")
-PHONE_WIDTH_IN = 4.0
+PHONE_WIDTH_IN = 3.6  # shown about 350 CSS px wide on a phone: 8 pt text stays about 10.5 px
 
 # One tidy table per chart. `series` says what a row is:
 #   population  census or split estimate (value, lower, upper; note = "census" or "split")
@@ -186,7 +186,7 @@ def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: dateti
     width = PHONE_WIDTH_IN if phone else 11
     margins = dict(TANK_MARGINS)
     if phone:  # the title and footer wrap to the narrow width; the margins grow by their extra lines
-        title, subtitle = textwrap.fill(title, 40), textwrap.fill(subtitle, 62)
+        title, subtitle = textwrap.fill(title, 36), textwrap.fill(subtitle, 56)
         margins["top"] += 0.2 * title.count("\n")
         margins["bottom"] += 0.14 * subtitle.count("\n")
     gap = TANK_GAPS["rows"] + (0.22 if phone else 0)  # date labels under every panel on a phone

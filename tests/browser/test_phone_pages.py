@@ -89,6 +89,7 @@ def _open(page, base: str, path: str | None) -> None:
     page.get_by_label("Animals", exact=False).first.fill("10")
     page.get_by_role("button", name="Suggest tanks").click()
     page.get_by_role("button", name="Book from LV-01").wait_for()
+    page.wait_for_load_state("load")  # the stylesheet too, before anything is measured
 
 
 def _overflow(page) -> list[str]:

@@ -112,13 +112,14 @@ def test_tank_figure_phone_layout_is_narrow_with_one_panel_per_row():
     phone = charts.tank_figure(frame, title="Tank LV-01 · Lumbriculus variegatus · Freshwater room 1", start=START,
                                end=END, layout="phone")
 
-    # 72 pt to the inch: the wide figure is 11 in across, the phone one PHONE_WIDTH_IN (4 in)
+    # 72 pt to the inch: the wide figure is 11 in across, the phone one PHONE_WIDTH_IN (3.6 in)
     assert _svg_size_pt(wide)[0] == 11 * 72 and _svg_size_pt(phone)[0] == charts.PHONE_WIDTH_IN * 72
     # two parameters (temperature, ammonia): side by side in the wide figure, one under the other on a phone
     assert _svg_size_pt(phone)[1] > _svg_size_pt(wide)[1] + 1.45 * 72 * 0.9
     text = phone.decode()
     assert "Temperature (°C)" in text and "1 outside (▲ above, ▼ below)" in text
-    assert "Tank LV-01 · Lumbriculus variegatus ·" in text  # the title wraps onto two lines
+    assert "Tank LV-01 · Lumbriculus variegatus · Freshwater" not in text  # the title wraps onto two lines
+    assert "Tank LV-01 · Lumbriculus" in text and "Freshwater room 1" in text
 
 
 def test_tank_figure_rejects_an_unknown_layout_naming_the_allowed_ones():
