@@ -255,7 +255,7 @@ def _tank_page_ctx(request, tank, **forms):
 # who records starts with the forms (always first in tank_detail.html), then what is due and wrong;
 # who only reads starts with the population summary and the figure. Jump links lead to each.
 RECENT_CHECKS_SHOWN = 10  # the rest of the 30 are one tap away (a phone showed 30 checks in 5 screens)
-TANK_FIGURE_DAYS = 120
+TANK_FIGURE_DAYS = 120  # the health page's default period too (health_views.DEFAULT_PLOT_DAYS): one cached figure for both
 SECTION_LABELS = {"record": "Record", "due": "Due", "deviations": "Deviations", "checks": "Checks",
                   "population": "Population", "figure": "Figure", "records": "Husbandry", "about": "About"}
 RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "records", "about")

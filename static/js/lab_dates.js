@@ -21,7 +21,9 @@
     var out = document.createElement("span");
     out.className = "lab-date";
     out.id = (input.id || input.name) + "-lab";
-    out.setAttribute("aria-live", "polite");
+    // Read as the input's description (aria-describedby), not as part of its name when a <label>
+    // wraps both: hidden from the name computation, still readable through the reference.
+    out.setAttribute("aria-hidden", "true");
     input.insertAdjacentElement("afterend", out);
     var described = input.getAttribute("aria-describedby");
     input.setAttribute("aria-describedby", described ? described + " " + out.id : out.id);

@@ -200,3 +200,19 @@ def test_round_fits_a_phone_and_passes_axe(browser, live_server, demo_lab):
     problems = _walk(browser, live_server.url, {"tamsin": [("round", "/round/fw-1/", True)]}, errors)
     assert not errors, f"JavaScript errors: {errors}"
     assert not problems, "\n".join(problems)
+
+
+def test_a_time_input_says_what_was_picked_the_labs_way_and_in_which_zone(page, live_server, bench, log_in):
+    from django.conf import settings
+    from playwright.sync_api import expect
+
+    log_in("tess")
+    page.goto(f"{live_server.url}/tanks/BT-01/")
+    split_at = page.get_by_label("Split at")
+    hint = page.locator(".split-form .lab-date")
+    expect(hint).to_have_text(f"Lab time: {settings.TIME_ZONE}")  # before anything is picked
+
+    split_at.fill("2026-03-05T14:30")  # the browser shows it in its own locale (03/05/2026, 02:30 PM here)
+
+    expect(hint).to_have_text(f"= 05 Mar 2026 14:30 ({settings.TIME_ZONE})")
+    expect(split_at).to_have_accessible_description(f"Leave empty for now. = 05 Mar 2026 14:30 ({settings.TIME_ZONE})")

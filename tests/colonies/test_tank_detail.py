@@ -152,3 +152,8 @@ def test_tank_page_picks_the_phone_figure_below_40rem(client, researcher, tank):
     plot = reverse("colonies:tank-plot", args=[tank.code])
     assert f'<source media="(max-width: 40rem)" srcset="{plot}?days=120&amp;layout=phone">' in html
     assert f'<img src="{plot}?days=120"' in html
+
+
+def test_tank_page_figure_is_the_health_pages_default_period_so_both_share_one_cached_figure():
+    from colonies import health_views, views
+    assert views.TANK_FIGURE_DAYS == health_views.DEFAULT_PLOT_DAYS
