@@ -257,19 +257,18 @@ def _tank_page_ctx(request, tank, **forms):
 RECENT_CHECKS_SHOWN = 10  # the rest of the 30 are one tap away (a phone showed 30 checks in 5 screens)
 TANK_FIGURE_DAYS = 120  # the health page's default period too (health_views.DEFAULT_PLOT_DAYS): one cached figure for both
 SECTION_LABELS = {"record": "Record", "due": "Due", "deviations": "Deviations", "checks": "Checks",
-                  "population": "Population", "figure": "Figure", "records": "Husbandry", "about": "About"}
-RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "records", "about")
-READER_ORDER = ("population", "figure", "checks", "deviations", "due", "records", "about")
+                  "population": "Population", "figure": "Figure", "husbandry": "Husbandry", "about": "About"}
+RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "husbandry", "about")
+READER_ORDER = ("population", "figure", "checks", "deviations", "due", "husbandry", "about")
 
 
 def tank_sections(user, tank, deviations) -> tuple[list[str], list[tuple[str, str]]]:
-    """(section names in order, jump links (anchor, label)); the record section is the template's own."""
+    """(section names in order, jump links (anchor = section name, label)); the record section is the
+    template's own and comes first when there is one."""
     records = can_record_husbandry(user) and tank.status != Tank.Status.RETIRED
     order = [name for name in (RECORDER_ORDER if records else READER_ORDER) if name != "deviations" or deviations]
-    anchors = {"records": "husbandry"}
-    jump = [("record", "Record")] if records else []
-    jump += [(anchors.get(name, name), SECTION_LABELS[name] + (f" ({len(deviations)})" if name == "deviations" else ""))
-             for name in order]
+    jump = [(name, SECTION_LABELS[name] + (f" ({len(deviations)})" if name == "deviations" else ""))
+            for name in (["record"] if records else []) + order]
     return order, jump
 
 
