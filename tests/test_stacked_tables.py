@@ -66,17 +66,18 @@ def _same(label: str, heading: str) -> bool:
 def test_every_cell_of_a_stacked_table_is_labelled_with_its_column(monkeypatch):
     monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
     call_command("load_demo", stdout=open("/dev/null", "w"))
-    from colonies.models import Check, Deviation
-    from experiments.models import Study
+    from colonies.models import Check, Deviation, Species
+    from experiments.models import Cohort, Study
 
     check = Check.objects.order_by("-observed_at").first()
+    species, cohort = Species.objects.order_by("pk").first().pk, Cohort.objects.order_by("pk").first().pk
     pages = {
-        "tamsin": ["/", "/tanks/", "/tanks/LV-03/", f"/checks/{check.pk}/", "/species/", "/species/1/",
+        "tamsin": ["/", "/tanks/", "/tanks/LV-03/", f"/checks/{check.pk}/", "/species/", f"/species/{species}/",
                    f"/deviations/{Deviation.objects.order_by('pk').first().pk}/", "/health/", "/tanks/LV-03/history/",
                    "/tanks/LV-03/health/"],
         "ravi": ["/experiments/", "/experiments/bookings/calendar/"]
                 + [f"/experiments/studies/{s.code}/" for s in Study.objects.all()],
-        "morwen": ["/deviations/", "/experiments/ledger/", "/species/1/edit/", "/experiments/cohorts/1/"],
+        "morwen": ["/deviations/", "/experiments/ledger/", f"/species/{species}/edit/", f"/experiments/cohorts/{cohort}/"],
     }
     client, seen = Client(), 0
     for username, paths in pages.items():

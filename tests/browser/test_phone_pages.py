@@ -33,14 +33,15 @@ def demo_lab(transactional_db, monkeypatch):
     from django.core.management import call_command
 
     from colonies import demo
-    from colonies.models import Check, Deviation
+    from colonies.models import Check, Deviation, Species
     from experiments.models import Study
 
     monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
     call_command("load_demo", "--seed", "7", stdout=open("/dev/null", "w"))
     flagged = Check.objects.exclude(flags={}).order_by("-observed_at").first()
     unblinded = Study.objects.filter(blinded=False).order_by("code").first() or Study.objects.order_by("code").first()
-    return {"check": flagged.pk, "study": unblinded.code, "deviation": Deviation.objects.order_by("pk").first().pk}
+    return {"check": flagged.pk, "study": unblinded.code, "deviation": Deviation.objects.order_by("pk").first().pk,
+            "species": Species.objects.order_by("pk").first().pk}
 
 
 def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
@@ -50,7 +51,7 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
         "tamsin": [  # technician
             ("Today", "/", True), ("tank list", "/tanks/", True), ("tank page", "/tanks/LV-03/", True),
             ("check detail", f"/checks/{ids['check']}/", True), ("species list", "/species/", True),
-            ("species page", "/species/1/", True), ("deviation", f"/deviations/{ids['deviation']}/", True),
+            ("species page", f"/species/{ids['species']}/", True), ("deviation", f"/deviations/{ids['deviation']}/", True),
             ("colony health", "/health/", True), ("tank health", "/tanks/LV-03/health/", True),
         ],
         "ravi": [  # researcher
@@ -60,7 +61,7 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
         ],
         "morwen": [  # manager
             ("deviation register", "/deviations/", True), ("exposure ledger", "/experiments/ledger/", True),
-            ("care profile form", "/species/1/edit/", True),
+            ("care profile form", f"/species/{ids['species']}/edit/", True),
         ],
     }
 
