@@ -247,7 +247,8 @@ def _tank_page_ctx(request, tank, **forms):
         "split_form": forms.get("split_form") or split_form,
         "part_forms": forms.get("part_forms") or part_forms,
     }
-    ctx["sections"], ctx["jump"] = tank_sections(request.user, tank_with, deviations)
+    ctx["split_first"] = "split_form" in forms  # a refused split: its form and errors at the top
+    ctx["sections"], ctx["jump"] = tank_sections(request.user, tank_with, deviations, split_first=ctx["split_first"])
     return ctx
 
 
@@ -257,18 +258,22 @@ def _tank_page_ctx(request, tank, **forms):
 RECENT_CHECKS_SHOWN = 10  # the rest of the 30 are one tap away (a phone showed 30 checks in 5 screens)
 TANK_FIGURE_DAYS = 120  # the health page's default period too (health_views.DEFAULT_PLOT_DAYS): one cached figure for both
 SECTION_LABELS = {"record": "Record", "due": "Due", "deviations": "Deviations", "checks": "Checks",
-                  "population": "Population", "figure": "Figure", "husbandry": "Husbandry", "about": "About"}
-RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "husbandry", "about")
+                  "population": "Population", "figure": "Figure", "husbandry": "Husbandry", "split": "Split",
+                  "about": "About"}
+# The split form is long and rarely used: its own section near the end, not among the daily forms.
+RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "husbandry", "split", "about")
 READER_ORDER = ("population", "figure", "checks", "deviations", "due", "husbandry", "about")
 
 
-def tank_sections(user, tank, deviations) -> tuple[list[str], list[tuple[str, str]]]:
-    """(section names in order, jump links (anchor = section name, label)); the record section is the
-    template's own and comes first when there is one."""
+def tank_sections(user, tank, deviations, split_first: bool = False) -> tuple[list[str], list[tuple[str, str]]]:
+    """(section names in order, jump links (anchor = section name, label)). The template places the
+    record section first (and before it the split section when `split_first`)."""
     records = can_record_husbandry(user) and tank.status != Tank.Status.RETIRED
-    order = [name for name in (RECORDER_ORDER if records else READER_ORDER) if name != "deviations" or deviations]
+    order = [name for name in (RECORDER_ORDER if records else READER_ORDER)
+             if (name != "deviations" or deviations) and (name != "split" or not split_first)]
+    top = (["split"] if split_first and records else []) + (["record"] if records else [])
     jump = [(name, SECTION_LABELS[name] + (f" ({len(deviations)})" if name == "deviations" else ""))
-            for name in (["record"] if records else []) + order]
+            for name in top + order]
     return order, jump
 
 

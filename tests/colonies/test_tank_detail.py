@@ -112,7 +112,7 @@ def test_tank_page_puts_the_forms_first_for_who_records_and_the_summary_first_fo
     researcher_page = client.get(url)
 
     assert _section_order(technician_page.content.decode()) == [
-        "record", "due", "checks", "population", "figure", "husbandry", "about"]  # no deviation: no section
+        "record", "due", "checks", "population", "figure", "husbandry", "split", "about"]  # no deviation: no section
     assert _section_order(researcher_page.content.decode()) == [
         "population", "figure", "checks", "due", "husbandry", "about"]
     # the jump links lead to the sections, in the same order
@@ -157,3 +157,16 @@ def test_tank_page_picks_the_phone_figure_below_40rem(client, researcher, tank):
 def test_tank_page_figure_is_the_health_pages_default_period_so_both_share_one_cached_figure():
     from colonies import health_views, views
     assert views.TANK_FIGURE_DAYS == health_views.DEFAULT_PLOT_DAYS
+
+
+def test_a_refused_split_comes_back_at_the_top_of_the_tank_page(client, technician, tank):
+    client.force_login(technician)
+    data = {"split-source_before": "100", "split-stayed": "500", "part-TOTAL_FORMS": "1", "part-INITIAL_FORMS": "0",
+            "part-MIN_NUM_FORMS": "0", "part-MAX_NUM_FORMS": "6", "part-0-new_code": "LV-11", "part-0-animals": "50"}
+
+    response = client.post(reverse("colonies:tank-split", args=[tank.code]), data)
+
+    assert response.status_code == 400
+    html = response.content.decode()
+    assert _section_order(html)[:2] == ["split", "record"] and html.count('id="split"') == 1
+    assert re.findall(r'<li><a href="#([a-z]+)">', html)[:2] == ["split", "record"]
