@@ -14,6 +14,7 @@ import functools
 import gc
 import io
 import math
+import textwrap
 from collections.abc import Iterable, Mapping
 from datetime import datetime
 
@@ -42,6 +43,11 @@ GRID = "#d9dcd5"
 BAND = "#009E73"  # care band fill (green, light alpha)
 
 FORMATS = {"svg": "image/svg+xml", "png": "image/png"}
+# The tank figure's layouts: "wide" (two columns of parameter panels, for a desktop page, print and
+# download) and "phone" (one panel per row, sized for a phone held upright: the page picks it below
+# 40rem with <picture>).
+LAYOUTS = ("wide", "phone")
+PHONE_WIDTH_IN = 3.6  # shown about 350 CSS px wide on a phone: 8 pt text stays about 10.5 px
 
 # One tidy table per chart. `series` says what a row is:
 #   population  census or split estimate (value, lower, upper; note = "census" or "split")
@@ -162,14 +168,14 @@ def _style(ax, ylabel: str = "") -> None:
         ax.set_ylabel(ylabel, fontsize=8.5, color=INK)
 
 
-def _date_axis(panels: list[tuple], start: datetime, end: datetime) -> None:
+def _date_axis(panels: list[tuple], start: datetime, end: datetime, *, minticks: int = 4, maxticks: int = 9) -> None:
     """The time axis of panels that share it, as (axes, show the dates under it) pairs, once all are drawn.
 
     Shared axes share one locator, which every panel would call again at each draw: the dates are
     found once (AutoDateLocator, as before) and then fixed, the same dates for every panel."""
     first = panels[0][0]
     first.set_xlim(start, end)
-    locator = mdates.AutoDateLocator(minticks=4, maxticks=9)
+    locator = mdates.AutoDateLocator(minticks=minticks, maxticks=maxticks)
     first.xaxis.set_major_locator(locator)
     # No offset ("2026-Dec") under every panel: the period is written in the figure's footer.
     first.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, show_offset=False))
@@ -195,14 +201,19 @@ TANK_GAPS = {"rows": 0.42, "columns": 1.05}  # inches between panels: titles abo
 
 @_without_collections
 def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: datetime, fmt: str = "svg",
-                subtitle: str = "") -> bytes:
+                subtitle: str = "", layout: str = "wide") -> bytes:
     """Multi-panel health figure of one tank over [start, end].
 
     Panels, sharing the time axis: population (estimates with interval bars, fitted curve, maximum
     stocking); husbandry events (feedings, water changes, splits); dead removed per day; then one
     panel per measured parameter with its care band shaded and out-of-target points marked
-    (▲ above, ▼ below). Works with empty or short data (panels say "no data").
+    (▲ above, ▼ below). Works with empty or short data (panels say "no data"). `layout` is one of
+    LAYOUTS: "phone" stacks every panel in one column of a narrow figure, with fewer date ticks.
     """
+    if layout not in LAYOUTS:
+        raise ValueError(f"layout must be one of {', '.join(LAYOUTS)}, got {layout!r}")
+    phone = layout == "phone"
+    columns = 1 if phone else 2
     start, end = _naive_dt(start), _naive_dt(end)
     if end <= start:
         raise ValueError(f"end must be after start = {start:%Y-%m-%d %H:%M}, got {end:%Y-%m-%d %H:%M}")
@@ -210,19 +221,25 @@ def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: dateti
     frame["at"] = _naive(frame["at"])
     readings = frame[frame["series"] == "reading"]
     keys = [k for k in parameters.KEYS if k in set(readings["parameter"])]
-    n_param_rows = math.ceil(len(keys) / 2)
+    n_param_rows = math.ceil(len(keys) / columns)
     heights = [2.4, 0.75, 1.1] + [1.45] * n_param_rows
     # A fixed layout (margins and gaps in inches, sized for the labels these panels carry), not
     # constrained layout: that measured every text of every panel and was half of the first render.
-    width = 11
-    height = TANK_MARGINS["top"] + TANK_MARGINS["bottom"] + sum(heights) + TANK_GAPS["rows"] * (len(heights) - 1)
+    width = PHONE_WIDTH_IN if phone else 11
+    margins = dict(TANK_MARGINS)
+    if phone:  # the title and footer wrap to the narrow width; the margins grow by their extra lines
+        title, subtitle = textwrap.fill(title, 36), textwrap.fill(subtitle, 56)
+        margins["top"] += 0.2 * title.count("\n")
+        margins["bottom"] += 0.14 * subtitle.count("\n")
+    gap = TANK_GAPS["rows"] + (0.22 if phone else 0)  # date labels under every panel on a phone
+    height = margins["top"] + margins["bottom"] + sum(heights) + gap * (len(heights) - 1)
     fig = Figure(figsize=(width, height))
-    panel_width = (width - TANK_MARGINS["left"] - TANK_MARGINS["right"] - TANK_GAPS["columns"]) / 2
+    panel_width = (width - margins["left"] - margins["right"] - TANK_GAPS["columns"] * (columns - 1)) / columns
     grid = fig.add_gridspec(
-        len(heights), 2, height_ratios=heights,
-        left=TANK_MARGINS["left"] / width, right=1 - TANK_MARGINS["right"] / width,
-        top=1 - TANK_MARGINS["top"] / height, bottom=TANK_MARGINS["bottom"] / height,
-        hspace=TANK_GAPS["rows"] / (sum(heights) / len(heights)), wspace=TANK_GAPS["columns"] / panel_width)
+        len(heights), columns, height_ratios=heights,
+        left=margins["left"] / width, right=1 - margins["right"] / width,
+        top=1 - margins["top"] / height, bottom=margins["bottom"] / height,
+        hspace=gap / (sum(heights) / len(heights)), wspace=TANK_GAPS["columns"] / panel_width)
     ax_pop = fig.add_subplot(grid[0, :])
     ax_events = fig.add_subplot(grid[1, :], sharex=ax_pop)
     ax_dead = fig.add_subplot(grid[2, :], sharex=ax_pop)
@@ -231,21 +248,24 @@ def tank_figure(frame: pd.DataFrame, *, title: str, start: datetime, end: dateti
     if subtitle:
         fig.supxlabel(subtitle, x=0.01, y=0.08 / height, ha="left", va="bottom", fontsize=8, color="#5b6b6e")
 
-    _population_panel(ax_pop, frame)
+    _population_panel(ax_pop, frame, legend_columns=columns)
     _events_panel(ax_events, frame)
     _deaths_panel(ax_dead, frame)
     param_axes = []
     for i, key in enumerate(keys):
-        ax = fig.add_subplot(grid[3 + i // 2, i % 2], sharex=ax_pop)
+        ax = fig.add_subplot(grid[3 + i // columns, i % columns], sharex=ax_pop)
         _parameter_panel(ax, readings[readings["parameter"] == key], parameters.BY_KEY[key])
         param_axes.append(ax)
-    last_row = {len(keys) - 1, len(keys) - 2}  # the bottom panel of each column
-    _date_axis([(ax_pop, True), (ax_events, False), (ax_dead, not keys)]
-               + [(ax, i in last_row) for i, ax in enumerate(param_axes)], start, end)
+    # Date labels under the population panel and the bottom panel of each column; on a phone, where
+    # a screen shows a panel or two, under every parameter panel too, with fewer dates.
+    last_row = set(range(len(keys))) if phone else {len(keys) - 1, len(keys) - 2}
+    _date_axis([(ax_pop, True), (ax_events, False), (ax_dead, not keys or phone)]
+               + [(ax, i in last_row) for i, ax in enumerate(param_axes)], start, end,
+               **({"minticks": 3, "maxticks": 5} if phone else {}))
     return _render(fig, fmt)
 
 
-def _population_panel(ax, frame: pd.DataFrame) -> None:
+def _population_panel(ax, frame: pd.DataFrame, legend_columns: int = 2) -> None:
     _style(ax, "Population (animals)")
     pop = frame[frame["series"] == "population"]
     census = pop[pop["note"] != "split"]
@@ -282,7 +302,7 @@ def _population_panel(ax, frame: pd.DataFrame) -> None:
         ax.set_ylim(0, 1.18 * max(float(v) for v in tops if pd.notna(v)))  # room for the legend
         ax.yaxis.set_major_formatter(matplotlib.ticker.StrMethodFormatter("{x:,.0f}"))
     if handles:
-        ax.legend(handles=handles, loc="best", fontsize=7.5, framealpha=0.85, edgecolor=GRID, ncol=2)
+        ax.legend(handles=handles, loc="best", fontsize=7.5, framealpha=0.85, edgecolor=GRID, ncol=legend_columns)
 
 
 EVENT_STYLE = {

@@ -1,10 +1,14 @@
 """Deviation register (managers), deviation pages, acknowledge and close (technicians and managers)."""
+import re
+from datetime import datetime
+
 import pandas as pd
 from django import forms
 from django.contrib import messages
 from django.core.exceptions import PermissionDenied
 from django.db.models import Count, F
 from django.shortcuts import get_object_or_404, redirect, render
+from django.utils import formats
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
 from . import deviation_export
@@ -33,9 +37,19 @@ class CloseForm(forms.Form):
 def _evidence_rows(dev) -> list[dict]:
     rows = []
     for e in reversed(dev.evidence):
-        details = [(k, v) for k, v in e.items() if k not in ("ref", "at", "seen", "check")]
-        rows.append({"when": e.get("at") or e.get("seen") or "", "details": details, "check": e.get("check")})
+        details = [(k, _shown(v)) for k, v in e.items() if k not in ("ref", "at", "seen", "check")]
+        rows.append({"when": _shown(e.get("at") or e.get("seen") or ""), "details": details, "check": e.get("check")})
     return rows
+
+
+def _shown(value):
+    """Evidence keeps local times as 'YYYY-MM-DD HH:MM' (deviations._local); shown the lab's way."""
+    if isinstance(value, str) and EVIDENCE_TIME.fullmatch(value):
+        return formats.date_format(datetime.strptime(value, "%Y-%m-%d %H:%M"), "DATETIME_FORMAT")
+    return value
+
+
+EVIDENCE_TIME = re.compile(r"\d{4}-\d{2}-\d{2} \d{2}:\d{2}")
 
 
 def _register_qs():

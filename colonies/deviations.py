@@ -26,6 +26,8 @@ from django.db.models import Max, Min, OuterRef, Q, Subquery
 from django.utils import timezone
 from simple_history.utils import bulk_create_with_history, bulk_update_with_history
 
+from vermilog.lab_time import lab_moment
+
 from . import check_frames
 from .check_frames import HISTORY_DAYS, WINDOW_DAYS, CheckFrame  # noqa: F401 (HISTORY_DAYS, WINDOW_DAYS: API)
 from .flags import Target
@@ -105,6 +107,7 @@ def severity_outside(value: float, target: Target) -> int:
 # Running the record rules
 # ---------------------------------------------------------------------------------------------
 def local_text(dt: datetime) -> str:
+    """A time in the evidence (stored data): ISO-like, local to the lab; pages show it the lab's way."""
     return timezone.localtime(dt).strftime("%Y-%m-%d %H:%M")
 
 
@@ -248,7 +251,7 @@ def _overdue(tank, now, label, last, interval, rule):
     late_text = f"{hours:.0f} h" if hours < 48 else f"{hours / 24:.1f} days"
     return Finding(
         tank.pk, rule, severity,
-        f"{label} {late_text} overdue (last {local_text(last) if last else 'never'}, due {local_text(due_at)})",
+        f"{label} {late_text} overdue (last {lab_moment(last) if last else 'never'}, due {lab_moment(due_at)})",
         {"ref": f"due:{due_at.isoformat()}", "last": local_text(last) if last else None, "due": local_text(due_at),
          "seen": local_text(now)},
         due_at,

@@ -53,7 +53,8 @@ class SplitPartForm(NamedErrorsMixin, forms.Form):
     """One destination: an existing tank of the same species, or a new tank set up now."""
 
     destination = forms.ChoiceField(required=False, label="To existing tank")
-    new_code = forms.CharField(required=False, max_length=12, label="or new tank code")
+    new_code = forms.CharField(required=False, max_length=12, label="or new tank code",
+                               help_text="As on its label: the species' prefix and the next number, e.g. LV-11.")
     new_position = forms.CharField(required=False, max_length=30, label="New tank position")
     new_volume_l = forms.FloatField(required=False, label="New tank volume (L)")
     animals = forms.FloatField(required=False, label="Animals moved (estimate)")
@@ -70,7 +71,7 @@ class SplitPartForm(NamedErrorsMixin, forms.Form):
                 tank_code_validator(code)
             except forms.ValidationError:
                 raise forms.ValidationError(f"New tank code: '{code}' is not a tank code; use 1-12 capital letters, "
-                                            "digits or hyphens (e.g. FW-A07).") from None
+                                            "digits or hyphens (e.g. LV-11).") from None
         return code
 
     def clean_new_volume_l(self):

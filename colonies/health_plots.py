@@ -36,14 +36,14 @@ def cache_key(*parts) -> str:
 # ---------------------------------------------------------------------------------------------
 # One tank
 # ---------------------------------------------------------------------------------------------
-def tank_plot_key(tank: Tank, days: int, fmt: str) -> str:
-    """Cache key of a tank's figure: tank, period (whole local days), records version and format."""
+def tank_plot_key(tank: Tank, days: int, fmt: str, layout: str = "wide") -> str:
+    """Cache key of a tank's figure: tank, period (whole local days), records version, format and layout."""
     start, _ = window(days)
     return cache_key("tank-plot", tank.pk, days, start.isoformat(),
-                     health_series.records_versions([tank.pk])[tank.pk], fmt)
+                     health_series.records_versions([tank.pk])[tank.pk], fmt, *(() if layout == "wide" else (layout,)))
 
 
-def render_tank_plot(tank: Tank, days: int, fmt: str) -> tuple[bytes, bool]:
+def render_tank_plot(tank: Tank, days: int, fmt: str, layout: str = "wide") -> tuple[bytes, bool]:
     """The tank's figure for the last `days` days, from the cache when its records have not changed."""
     start, end = window(days)
 
@@ -52,9 +52,10 @@ def render_tank_plot(tank: Tank, days: int, fmt: str) -> tuple[bytes, bool]:
         title = f"Tank {tank.code} · {tank.species.scientific_name} · {tank.room.name}"
         subtitle = (f"{local(start):%d %b %Y} to {local(end - timedelta(seconds=1)):%d %b %Y} ({days} days) · "
                     f"{tank.volume_l:g} L · made by Vermilog {timezone.localdate():%Y-%m-%d}")
-        return charts.tank_figure(frame, title=title, subtitle=subtitle, start=local(start), end=local(end), fmt=fmt)
+        return charts.tank_figure(frame, title=title, subtitle=subtitle, start=local(start), end=local(end), fmt=fmt,
+                                  layout=layout)
 
-    return cached(tank_plot_key(tank, days, fmt), build)
+    return cached(tank_plot_key(tank, days, fmt, layout), build)
 
 
 def tank_csv_chunks(tank: Tank, days: int):

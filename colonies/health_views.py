@@ -41,6 +41,13 @@ def _format(request) -> str:
     return fmt
 
 
+def _layout(request) -> str:
+    layout = request.GET.get("layout", "wide")
+    if layout not in charts.LAYOUTS:
+        raise Http404(f"Layout: '{layout}' is not one of {', '.join(charts.LAYOUTS)}.")
+    return layout
+
+
 def _page(request) -> int:
     raw = request.GET.get("page", "") or "1"
     if not raw.isdigit():
@@ -85,9 +92,9 @@ def tank_health(request, code):
 def tank_plot(request, code):
     tank = _tank_for_plot(code)
     fmt = _format(request)
-    days = _period(request, DEFAULT_PLOT_DAYS)
-    body, _ = health_plots.render_tank_plot(tank, days, fmt)
-    return _image(body, fmt, f"vermilog-{tank.code}-{days}d")
+    days, layout = _period(request, DEFAULT_PLOT_DAYS), _layout(request)
+    body, _ = health_plots.render_tank_plot(tank, days, fmt, layout)
+    return _image(body, fmt, f"vermilog-{tank.code}-{days}d{'-' + layout if layout != 'wide' else ''}")
 
 
 @require_GET

@@ -19,6 +19,8 @@ from django.urls import get_script_prefix, get_urlconf, reverse
 from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
+from vermilog.lab_time import lab_date, lab_moment
+
 from . import derived, parameters, schedules
 from .flags import Target
 from .validators import (MAX_TEXT, CENSUS_MAX_MASS_G, CENSUS_MAX_ML, FEEDING_MAX, MAX_ANIMALS, MAX_CHECK_INTERVAL_HOURS, MAX_COUNT,
@@ -43,7 +45,7 @@ def overdue_grace(interval: timedelta) -> timedelta:
 TANK_CODE_RE = r"^[A-Z0-9][A-Z0-9-]{0,11}$"
 tank_code_validator = RegexValidator(
     TANK_CODE_RE,
-    "Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. FW-A07).",
+    "Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. LV-01, SM-01, PD-01).",
 )
 
 
@@ -379,7 +381,7 @@ class Tank(models.Model):
         RETIRED = "retired", "Retired"
 
     code = models.CharField(max_length=12, unique=True, validators=[tank_code_validator],
-                            help_text="Printed on the tank label.")
+                            help_text="Printed on the tank label: the species' prefix and a number, e.g. LV-01.")
     room = models.ForeignKey(Room, on_delete=models.PROTECT, related_name="tanks")
     position = models.CharField(max_length=30, blank=True, help_text="Rack and shelf, e.g. 'rack 2, shelf B'.")
     species = models.ForeignKey(Species, on_delete=models.PROTECT, related_name="tanks")
@@ -682,7 +684,7 @@ class Check(Readings, Recorded):
         ]
 
     def __str__(self):
-        return f"Check of {self.tank} at {timezone.localtime(self.observed_at):%Y-%m-%d %H:%M}"
+        return f"Check of {self.tank} at {lab_moment(self.observed_at)}"
 
     def get_absolute_url(self):
         return reverse("colonies:check-detail", args=[self.pk])
@@ -1069,7 +1071,7 @@ class Split(Voidable):
         ]
 
     def __str__(self):
-        return f"Split of {self.source} on {timezone.localtime(self.split_at):%Y-%m-%d}"
+        return f"Split of {self.source} on {lab_date(timezone.localtime(self.split_at))}"
 
     def get_absolute_url(self):
         return self.source.get_absolute_url()

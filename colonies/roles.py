@@ -7,7 +7,6 @@ A superuser counts as a manager.
 """
 from functools import wraps
 
-from django.conf import settings
 from django.core.exceptions import PermissionDenied
 
 TECHNICIAN = "technician"
@@ -65,7 +64,6 @@ def roles_context(request):
         return {}
     mine = roles_of(user)
     return {
-        "TIME_ZONE": settings.TIME_ZONE,
         "roles": mine,
         "can_record": can_record_husbandry(user),
         "can_read": can_read_husbandry(user),

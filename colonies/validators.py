@@ -16,6 +16,8 @@ from django.core.exceptions import ValidationError
 from django.utils import timezone
 from django.utils.deconstruct import deconstructible
 
+from vermilog.lab_time import lab_date, lab_moment
+
 # Clocks differ a little between the bench tablet and the server: a time up to this far ahead of
 # the server's "now" is still taken as now-ish; anything later is in the future and refused.
 FUTURE_LEEWAY = timedelta(minutes=10)
@@ -102,8 +104,8 @@ def check_date(label: str, value: date, *, earliest: date = EARLIEST_DATE, ahead
     today = today or timezone.localdate()
     latest = today + timedelta(days=ahead_days)
     if not earliest <= value <= latest:
-        raise ValidationError(f"{label}: {value:%Y-%m-%d} is impossible; allowed range {earliest:%Y-%m-%d} "
-                              f"to {latest:%Y-%m-%d}{why}.", code="out_of_range")
+        raise ValidationError(f"{label}: {lab_date(value)} is impossible; allowed range {lab_date(earliest)} "
+                              f"to {lab_date(latest)}{why}.", code="out_of_range")
     return value
 
 
@@ -113,7 +115,7 @@ def start_of(day: date) -> datetime:
 
 
 def _minute(dt: datetime) -> str:
-    return f"{timezone.localtime(dt):%Y-%m-%d %H:%M}"
+    return lab_moment(dt)
 
 
 def check_moment(label: str, value: datetime | None, *, started_on: date | None = None, what: str = "",

@@ -10,6 +10,7 @@ from django.shortcuts import get_object_or_404, redirect, render
 from django.urls import reverse
 from django.utils import timezone
 from django.utils.dateformat import format as date_format
+from django.utils.formats import get_format
 from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
@@ -224,14 +225,19 @@ def tank_list(request):
                                                        "batch_links": [(k.slug, k.title) for k in batch.KINDS.values()]})
 
 
-TANK_ROW = ('<tr><td><a href="{}">{}</a></td><td>{}</td><td>{}</td><td>{}</td><td><span class="pill {}">{}</span></td>'
-            '<td class="num">{}</td><td>{}</td><td>{}</td></tr>')
+# data-label: the column's name, shown beside each value when the table stacks on a phone (vermilog.css).
+TANK_ROW = ('<tr><td class="row-head wide" data-label="Code"><a href="{}">{}</a></td><td data-label="Room">{}</td>'
+            '<td data-label="Position">{}</td><td data-label="Species">{}</td>'
+            '<td data-label="Status"><span class="pill {}">{}</span></td><td class="num" data-label="Volume (L)">{}</td>'
+            '<td data-label="System">{}</td><td data-label="Last check">{}</td></tr>')
 
 
 def _tank_rows(tanks) -> str:
     """The list's table body in one call (a template loop costs ~0.1 ms a row; a facility lists 400+)."""
+    fmt = get_format("SHORT_DATETIME_FORMAT")  # the lab's format (vermilog/formats), looked up once
+
     def last(t):
-        return date_format(timezone.localtime(t.last_check_at), "d M H:i") if t.last_check_at else "never"
+        return date_format(timezone.localtime(t.last_check_at), fmt) if t.last_check_at else "never"
     return format_html_join("", TANK_ROW, (
         (t.get_absolute_url(), t.code, t.room, t.position, t.species.common_name or t.species, t.status,
          t.get_status_display(), t.volume_l, t.get_system_display(), last(t)) for t in tanks))
@@ -265,13 +271,15 @@ def _tank_page_ctx(request, tank, **forms):
         rows.append({"check": c, "cells": [{"param": p, "value": p.format(values.get(p.key)),
                                             "side": (c.flags.get(p.key) or {}).get("side")} for p in columns],
                      "flag_text": _flag_text(c)})
+    deviations = list(tank.deviations.unresolved().select_related("tank").order_by("-severity", "-last_seen_at"))
     ctx = {
         "tank": tank_with,
         "due": tank_with.due() if hasattr(tank_with, "last_check_at") else [],
         "params": columns,
         "targets": [(p, targets.get(p.key)) for p in columns],
-        "deviations": tank.deviations.unresolved().select_related("tank").order_by("-severity", "-last_seen_at"),
-        "rows": rows,
+        "deviations": deviations,
+        "rows": rows, "recent_rows": rows[:RECENT_CHECKS_SHOWN], "earlier_rows": rows[RECENT_CHECKS_SHOWN:],
+        "figure_days": TANK_FIGURE_DAYS,
         "feedings": feedings,
         "water_changes": water_changes,
         "censuses": tank.census_set.current().select_related("recorded_by")[:10],
@@ -289,6 +297,8 @@ def _tank_page_ctx(request, tank, **forms):
         "split_form": forms.get("split_form") or split_form,
         "part_forms": forms.get("part_forms") or part_forms,
     }
+    ctx["split_first"] = "split_form" in forms  # a refused split: its form and errors at the top
+    ctx["sections"], ctx["jump"] = tank_sections(request.user, tank_with, deviations, split_first=ctx["split_first"])
     return ctx
 
 
@@ -297,6 +307,31 @@ def _prefilled(form, offer: prefill.Prefill, what: str, first_field: str):
     form.initial.update(offer.values)
     form.fields[first_field].help_text = f"Pre-filled {offer.text(what)}." if offer.source else ""
     return form
+
+
+# The tank page's sections (templates/colonies/tank/_<name>.html) in the order each person needs them:
+# who records starts with the forms (always first in tank_detail.html), then what is due and wrong;
+# who only reads starts with the population summary and the figure. Jump links lead to each.
+RECENT_CHECKS_SHOWN = 10  # the rest of the 30 are one tap away (a phone showed 30 checks in 5 screens)
+TANK_FIGURE_DAYS = 120  # the health page's default period too (health_views.DEFAULT_PLOT_DAYS): one cached figure for both
+SECTION_LABELS = {"record": "Record", "due": "Due", "deviations": "Deviations", "checks": "Checks",
+                  "population": "Population", "figure": "Figure", "husbandry": "Husbandry", "split": "Split",
+                  "about": "About"}
+# The split form is long and rarely used: its own section near the end, not among the daily forms.
+RECORDER_ORDER = ("due", "deviations", "checks", "population", "figure", "husbandry", "split", "about")
+READER_ORDER = ("population", "figure", "checks", "deviations", "due", "husbandry", "about")
+
+
+def tank_sections(user, tank, deviations, split_first: bool = False) -> tuple[list[str], list[tuple[str, str]]]:
+    """(section names in order, jump links (anchor = section name, label)). The template places the
+    record section first (and before it the split section when `split_first`)."""
+    records = can_record_husbandry(user) and tank.status != Tank.Status.RETIRED
+    order = [name for name in (RECORDER_ORDER if records else READER_ORDER)
+             if (name != "deviations" or deviations) and (name != "split" or not split_first)]
+    top = (["split"] if split_first and records else []) + (["record"] if records else [])
+    jump = [(name, SECTION_LABELS[name] + (f" ({len(deviations)})" if name == "deviations" else ""))
+            for name in top + order]
+    return order, jump
 
 
 @require_GET

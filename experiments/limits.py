@@ -85,9 +85,9 @@ def protocol_problem(terms: ProtocolTerms, on: date) -> str:
     if not terms.status_ok:
         return f"Protocol {terms.reference} is {terms.status_label.lower()}, not approved: it cannot be booked or used."
     if on < terms.starts_on:
-        return f"Protocol {terms.reference} starts on {terms.starts_on:%Y-%m-%d}; it cannot be used on {on:%Y-%m-%d}."
+        return f"Protocol {terms.reference} starts on {terms.starts_on:%d %b %Y}; it cannot be used on {on:%d %b %Y}."
     if on > terms.expires_on:
-        return f"Protocol {terms.reference} expired on {terms.expires_on:%Y-%m-%d}; it cannot be used on {on:%Y-%m-%d}."
+        return f"Protocol {terms.reference} expired on {terms.expires_on:%d %b %Y}; it cannot be used on {on:%d %b %Y}."
     return ""
 
 

@@ -15,6 +15,7 @@ from simple_history.models import HistoricalRecords
 
 from colonies.models import Species, Tank, Voidable
 from colonies.validators import MAX_TEXT, DateRange
+from vermilog.lab_time import lab_date
 
 from . import limits
 from .validators import BOUNDS, PROTOCOL_AHEAD_DAYS, Within, within_q
@@ -278,7 +279,7 @@ class Booking(models.Model):
         ]
 
     def __str__(self):
-        return f"Booking {self.pk}: {self.animals} from {self.tank.code} on {self.needed_on:%Y-%m-%d}"
+        return f"Booking {self.pk}: {self.animals} from {self.tank.code} on {lab_date(self.needed_on)}"
 
     def get_absolute_url(self):
         return reverse("experiments:booking-detail", args=[self.pk])

@@ -36,6 +36,7 @@ from colonies.deviations import Finding, apply_findings
 from colonies.models import Census, Deviation, Split, SplitPart, Tank
 from colonies.roles import MANAGER, has_role
 from colonies.validators import FUTURE_LEEWAY
+from vermilog.lab_time import lab_date, lab_moment
 
 from . import allocation, limits, stimulus
 from .models import (LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort, Override, Protocol,
@@ -175,7 +176,7 @@ def book(*, user, protocol: Protocol, tank: Tank, animals: int, needed_on: date,
     if animals < 1:
         raise Refused(f"Animals {animals} is not possible: book at least 1.")
     if needed_on < today:
-        raise Refused(f"Date {needed_on:%Y-%m-%d} is in the past; book for today or later.")
+        raise Refused(f"Date {lab_date(needed_on)} is in the past; book for today or later.")
     problem = Protocol.objects.prefetch_related("allowances").get(pk=protocol.pk).problem(needed_on)
     if problem:
         raise Refused(problem)
@@ -219,7 +220,7 @@ def draw(*, user, booking: Booking, count: int | None = None, at: datetime | Non
     now = timezone.now()
     at = at or now
     if at > now + FUTURE_LEEWAY:
-        raise Refused(f"Drawn at {timezone.localtime(at):%Y-%m-%d %H:%M} is in the future; record a draw once "
+        raise Refused(f"Drawn at {lab_moment(at)} is in the future; record a draw once "
                       "it has happened.")
     day = timezone.localdate(at)
     with transaction.atomic():
@@ -228,7 +229,7 @@ def draw(*, user, booking: Booking, count: int | None = None, at: datetime | Non
         if not booking.is_active:
             raise Refused(f"Booking {booking.pk} is {booking.get_status_display().lower()}; nothing can be drawn.")
         if day > booking.needed_on:
-            raise Refused(f"Booking {booking.pk} was for {booking.needed_on:%Y-%m-%d} and has expired; book again.")
+            raise Refused(f"Booking {booking.pk} was for {lab_date(booking.needed_on)} and has expired; book again.")
         problem = booking.protocol.problem(day)
         if problem:
             raise Refused(problem)
@@ -268,8 +269,8 @@ def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = Non
         if not cohort.is_active:
             raise Refused(f"Cohort {cohort.label} has already ended ({cohort.get_end_display().lower()}).")
         if at < cohort.drawn_at:
-            raise Refused(f"End time {timezone.localtime(at):%Y-%m-%d %H:%M} is before the cohort was drawn "
-                          f"({timezone.localtime(cohort.drawn_at):%Y-%m-%d %H:%M}).")
+            raise Refused(f"End time {lab_moment(at)} is before the cohort was drawn "
+                          f"({lab_moment(cohort.drawn_at)}).")
         if end == Cohort.End.RETURNED:
             if returned_to is None or returned_count is None:
                 raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
@@ -385,8 +386,8 @@ def normalise_outcome(trial: Trial) -> None:
 
 def _check_order(trial: Trial, cohort: Cohort, now: datetime) -> None:
     if trial.run_at < cohort.drawn_at.replace(second=0, microsecond=0):  # forms record whole minutes
-        raise ValidationError({"run_at": f"Run at {timezone.localtime(trial.run_at):%Y-%m-%d %H:%M} is before cohort "
-                                         f"{cohort.label} was drawn ({timezone.localtime(cohort.drawn_at):%Y-%m-%d %H:%M})."})
+        raise ValidationError({"run_at": f"Run at {lab_moment(trial.run_at)} is before cohort "
+                                         f"{cohort.label} was drawn ({lab_moment(cohort.drawn_at)})."})
     if trial.run_at > now + FUTURE_LEEWAY:
         raise ValidationError({"run_at": "Run at is in the future; record a trial once it has run."})
     if trial.mortality_24h is not None and now < trial.run_at + timedelta(hours=24):

@@ -1,15 +1,16 @@
-"""Screenshots of the technician's pages at phone and desktop width, for looking at, not for testing.
+"""Screenshots of the main pages at phone and desktop width, for looking at, not for testing.
 
 Starts nothing itself: point it at a running Vermilog with the demo data loaded, e.g.
 
     DATABASE_URL=sqlite:////tmp/vermilog-demo.sqlite3 .venv/bin/python manage.py demo --addrport 127.0.0.1:8011 &
     .venv/bin/python scripts/screenshots.py http://127.0.0.1:8011
 
-It signs in as the demo technician and writes PNGs to ./screenshots/ (gitignored). It also types one
-out-of-range temperature into the first row of the round, so the live flag shows, and prints a
-warning for any page that scrolls sideways.
+It signs in as the demo user of each role and writes PNGs of the pages that role uses to
+./screenshots/ (gitignored). It also types one out-of-range temperature into the first row of the
+round, so the live flag shows, and prints a warning for any page that scrolls sideways.
 """
 import argparse
+import itertools
 import os
 from pathlib import Path
 
@@ -18,15 +19,16 @@ from playwright.sync_api import expect, sync_playwright
 CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run", "--disable-quic"]
 WIDTHS = {"phone": (390, 844), "desktop": (1280, 900)}
-PAGES = [  # (file stem, path)
-    ("today", "/"),
-    ("round-fw-1", "/round/fw-1/"),
-    ("round-all", "/round/"),
-    ("tank-LV-03", "/tanks/LV-03/"),
-    ("feeding-fw-1", "/husbandry/feeding/?room=fw-1"),
-    ("water-changes-due", "/husbandry/water-change/?due=1"),
-    ("dead-removed-pl-1", "/husbandry/dead-removed/?room=pl-1"),
-]
+PAGES = {  # demo user: [(file stem, path)]
+    "tamsin": [("today", "/"), ("round-fw-1", "/round/fw-1/"), ("round-all", "/round/"), ("tanks", "/tanks/"),
+               ("tank-LV-03", "/tanks/LV-03/"), ("tank-LV-03-health", "/tanks/LV-03/health/"),
+               ("feeding-fw-1", "/husbandry/feeding/?room=fw-1"), ("water-changes-due", "/husbandry/water-change/?due=1"),
+               ("dead-removed-pl-1", "/husbandry/dead-removed/?room=pl-1"),
+               ("colony-health", "/health/"), ("species", "/species/")],
+    "ravi": [("tank-LV-03-researcher", "/tanks/LV-03/"), ("trials", "/experiments/"),
+             ("study", "/experiments/studies/uv-dispersal-01/"), ("calendar", "/experiments/bookings/calendar/")],
+    "morwen": [("deviations", "/deviations/"), ("ledger", "/experiments/ledger/")],
+}
 
 
 def sign_in(page, base: str, username: str, password: str) -> None:
@@ -49,7 +51,6 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("base_url", nargs="?", default="http://127.0.0.1:8000")
     parser.add_argument("--out", default="screenshots", type=Path)
-    parser.add_argument("--username", default="tamsin")
     parser.add_argument("--password", default="worms-demo-2026")
     parser.add_argument("--chromium", default=os.environ.get("VERMILOG_CHROMIUM", "/usr/bin/chromium"))
     args = parser.parse_args()
@@ -58,14 +59,16 @@ def main() -> None:
 
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=args.chromium, headless=True, args=CHROMIUM_ARGS)
-        for label, (width, height) in WIDTHS.items():
+        for (label, (width, height)), (username, pages) in itertools.product(WIDTHS.items(), PAGES.items()):
             context = browser.new_context(viewport={"width": width, "height": height})
             page = context.new_page()
-            sign_in(page, base, args.username, args.password)
-            for stem, path in PAGES:
+            sign_in(page, base, username, args.password)
+            for stem, path in pages:
                 page.goto(base + path)
+                page.evaluate("document.querySelectorAll('img[loading=lazy]').forEach(i => i.loading = 'eager')")
+                page.wait_for_load_state("networkidle")
                 shoot(page, args.out, f"{stem}-{label}")
-            if label == "phone":
+            if label == "phone" and username == "tamsin":
                 page.goto(f"{base}/round/fw-1/")
                 row = page.locator("fieldset.tankrow").first
                 cell = row.locator(".reading-cell:has(input[data-param='temp_c'])")

@@ -126,6 +126,7 @@ TEMPLATES = [
                 "django.contrib.auth.context_processors.auth",
                 "django.contrib.messages.context_processors.messages",
                 "colonies.roles.roles_context",
+                "vermilog.lab_time.lab_time_context",
             ],
         },
     },
@@ -203,9 +204,13 @@ LOGIN_REDIRECT_URL = "colonies:home"
 LOGOUT_REDIRECT_URL = "login"
 
 LANGUAGE_CODE = "en-gb"
+# The lab's one time zone (an IANA name such as Europe/Berlin; an unknown name stops the start-up).
+# Every page names it in its footer (vermilog/lab_time.py); dates are written the lab's way
+# (vermilog/formats/en_GB/formats.py: "05 Dec 2026 14:30"), not the browser's.
 TIME_ZONE = os.environ.get("TIME_ZONE", "UTC")
 USE_I18N = True
 USE_TZ = True  # who/when are stored in UTC and shown in TIME_ZONE
+FORMAT_MODULE_PATH = ["vermilog.formats"]
 
 STATIC_URL = "static/"
 STATICFILES_DIRS = [BASE_DIR / "static"]

@@ -106,7 +106,7 @@ class Migration(migrations.Migration):
             name='HistoricalTank',
             fields=[
                 ('id', models.BigIntegerField(auto_created=True, blank=True, db_index=True, verbose_name='ID')),
-                ('code', models.CharField(db_index=True, help_text='Printed on the tank label.', max_length=12, validators=[django.core.validators.RegexValidator('^[A-Z0-9][A-Z0-9-]{0,11}$', 'Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. FW-A07).')])),
+                ('code', models.CharField(db_index=True, help_text="Printed on the tank label: the species' prefix and a number, e.g. LV-01.", max_length=12, validators=[django.core.validators.RegexValidator('^[A-Z0-9][A-Z0-9-]{0,11}$', 'Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. LV-01, SM-01, PD-01).')])),
                 ('position', models.CharField(blank=True, help_text="Rack and shelf, e.g. 'rack 2, shelf B'.", max_length=30)),
                 ('volume_l', models.FloatField(help_text='Water volume in litres.', validators=[django.core.validators.MinValueValidator(0.01), django.core.validators.MaxValueValidator(10000)])),
                 ('system', models.CharField(choices=[('static', 'Static renewal'), ('flow', 'Flow-through'), ('recirc', 'Recirculating')], default='static', max_length=12)),
@@ -157,7 +157,7 @@ class Migration(migrations.Migration):
             name='Tank',
             fields=[
                 ('id', models.BigAutoField(auto_created=True, primary_key=True, serialize=False, verbose_name='ID')),
-                ('code', models.CharField(help_text='Printed on the tank label.', max_length=12, unique=True, validators=[django.core.validators.RegexValidator('^[A-Z0-9][A-Z0-9-]{0,11}$', 'Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. FW-A07).')])),
+                ('code', models.CharField(help_text="Printed on the tank label: the species' prefix and a number, e.g. LV-01.", max_length=12, unique=True, validators=[django.core.validators.RegexValidator('^[A-Z0-9][A-Z0-9-]{0,11}$', 'Tank codes are 1-12 capital letters, digits or hyphens, as printed on the label (e.g. LV-01, SM-01, PD-01).')])),
                 ('position', models.CharField(blank=True, help_text="Rack and shelf, e.g. 'rack 2, shelf B'.", max_length=30)),
                 ('volume_l', models.FloatField(help_text='Water volume in litres.', validators=[django.core.validators.MinValueValidator(0.01), django.core.validators.MaxValueValidator(10000)])),
                 ('system', models.CharField(choices=[('static', 'Static renewal'), ('flow', 'Flow-through'), ('recirc', 'Recirculating')], default='static', max_length=12)),

@@ -6,6 +6,8 @@ from datetime import timedelta
 from types import SimpleNamespace
 
 import pytest
+
+from vermilog.lab_time import lab_moment
 from django.db import connection
 from django.test.utils import CaptureQueriesContext
 from django.urls import reverse
@@ -255,7 +257,7 @@ def test_an_observed_time_out_of_bounds_saves_nothing(client, world, technician,
     response = _post(client, _url(), {"A-03": {"record": "on", "food": "liver paste", "amount": "0.2", "unit": "mL"}},
                      **{"batch-observed_at": when.strftime("%Y-%m-%dT%H:%M")})
     assert response.status_code == 400
-    assert f"Observed at: {when:%Y-%m-%d %H:%M} {expected}" in page_text(response)
+    assert f"Observed at: {lab_moment(when)} {expected}" in page_text(response)
     assert not Feeding.objects.filter(tank__code="A-03").exists()
 
 

@@ -1,4 +1,5 @@
 """Colony-health plots (colonies/charts.py): pure functions, no database."""
+import re
 import subprocess
 import sys
 from datetime import datetime, timedelta
@@ -96,6 +97,34 @@ def test_same_rows_give_the_same_svg_bytes():
     frame = charts.tank_frame(_tank_rows())
     first = charts.tank_figure(frame, title="T", start=START, end=END)
     assert charts.tank_figure(frame, title="T", start=START, end=END) == first
+
+
+def _svg_size_pt(body: bytes) -> tuple[float, float]:
+    head = body[:2000].decode()
+    width = re.search(r'<svg[^>]* width="([\d.]+)pt"', head).group(1)
+    height = re.search(r'<svg[^>]* height="([\d.]+)pt"', head).group(1)
+    return float(width), float(height)
+
+
+def test_tank_figure_phone_layout_is_narrow_with_one_panel_per_row():
+    frame = charts.tank_frame(_tank_rows())
+    wide = charts.tank_figure(frame, title="Tank LV-01 · Lumbriculus variegatus · Freshwater room 1", start=START, end=END)
+    phone = charts.tank_figure(frame, title="Tank LV-01 · Lumbriculus variegatus · Freshwater room 1", start=START,
+                               end=END, layout="phone")
+
+    # 72 pt to the inch: the wide figure is 11 in across, the phone one PHONE_WIDTH_IN (3.6 in)
+    assert _svg_size_pt(wide)[0] == 11 * 72 and _svg_size_pt(phone)[0] == charts.PHONE_WIDTH_IN * 72
+    # two parameters (temperature, ammonia): side by side in the wide figure, one under the other on a phone
+    assert _svg_size_pt(phone)[1] > _svg_size_pt(wide)[1] + 1.45 * 72 * 0.9
+    text = phone.decode()
+    assert "Temperature (°C)" in text and "1 outside (▲ above, ▼ below)" in text
+    assert "Tank LV-01 · Lumbriculus variegatus · Freshwater" not in text  # the title wraps onto two lines
+    assert "Tank LV-01 · Lumbriculus" in text and "Freshwater room 1" in text
+
+
+def test_tank_figure_rejects_an_unknown_layout_naming_the_allowed_ones():
+    with pytest.raises(ValueError, match=r"layout must be one of wide, phone, got 'tablet'"):
+        charts.tank_figure(charts.tank_frame([]), title="T", start=START, end=END, layout="tablet")
 
 
 def test_tank_figure_rejects_unknown_format_and_reversed_period():

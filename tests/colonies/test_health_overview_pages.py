@@ -57,3 +57,22 @@ def test_the_figure_shows_the_page_chosen_and_is_cached_per_page(client, facilit
     assert png.content.startswith(PNG_MAGIC)
     assert health_plots.render_overview_plot(30, "png", "", 2)[1]  # cached
     assert not health_plots.render_overview_plot(30, "png", "", 1)[1]  # another page: its own figure
+
+
+def test_needs_attention_has_its_own_mark_and_words_not_the_above_target_triangle(client, facility, technician):
+    from django.utils import timezone
+
+    from colonies.models import Deviation, Tank
+    tank = Tank.objects.get(code="S-01")
+    now = timezone.now()
+    Deviation.objects.create(tank=tank, rule=Deviation.Rule.OUT_OF_TARGET, parameter="ph", summary="pH high",
+                             severity=Deviation.Severity.MAJOR, opened_at=now, last_seen_at=now)
+    client.force_login(technician)
+
+    html = client.get(reverse("colonies:health-overview") + "?room=SMALL").content.decode()
+
+    row = html[html.index('<tr class="status-row-attention">'):]
+    row = row[:row.index("</tr>")]
+    assert '<svg class="mark"' in row and 'aria-hidden="true"' in row and "needs attention" in row
+    assert "▲" not in row  # ▲ means above a target or limit only
+    assert "major deviation open" in row

@@ -389,6 +389,24 @@ def test_tank_plot_is_svg_by_default_and_png_on_request(client, world, technicia
     assert client.get(reverse("colonies:tank-plot", args=[world.tank.code]) + "?format=gif").status_code == 404
 
 
+def test_tank_plot_phone_layout_is_its_own_cached_figure_and_unknown_layouts_are_not_found(client, world, technician):
+    _doubling_series(world, technician)
+    client.force_login(technician)
+    url = reverse("colonies:tank-plot", args=[world.tank.code])
+
+    phone = client.get(url + "?layout=phone")
+    wide = client.get(url)
+
+    assert phone.status_code == 200 and phone["Content-Type"] == "image/svg+xml"
+    assert phone.content != wide.content
+    assert 'filename="vermilog-' + world.tank.code + '-120d-phone.svg"' in phone["Content-Disposition"]
+    tank = health_views._tank_for_plot(world.tank.code)
+    assert health_plots.render_tank_plot(tank, 120, "svg", "phone")[1]  # cached under its own key
+    assert health_plots.render_tank_plot(tank, 120, "svg")[0] == wide.content
+    missing = client.get(url + "?layout=tablet")
+    assert missing.status_code == 404
+
+
 def test_tank_plot_csv_has_the_chart_columns_and_rows(client, world, technician):
     _doubling_series(world, technician)
     make_check(world.tank, user=technician, temp_c=26.0, dead_removed=2)

@@ -61,7 +61,7 @@ def test_since_judges_later_checks_against_the_history_before_them(technician, c
 
 @pytest.mark.parametrize("args, message", [
     (["--records", "--since", "2026-13-01"], "--since: '2026-13-01' is not a date; write it as YYYY-MM-DD."),
-    (["--records", "--since", "1900-01-01"], "--since: 1900-01-01 is impossible; allowed range 1950-01-01 to"),
+    (["--records", "--since", "1900-01-01"], "--since: 01 Jan 1900 is impossible; allowed range 01 Jan 1950 to"),
     (["--since", "2024-01-01"], "--since applies to --records only."),
 ])
 def test_bad_since_is_refused_with_the_allowed_form_or_range(args, message):

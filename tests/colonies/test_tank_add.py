@@ -3,6 +3,8 @@ import re
 from datetime import timedelta
 
 import pytest
+
+from vermilog.lab_time import lab_moment
 from django.urls import reverse
 from django.utils import timezone
 
@@ -258,7 +260,7 @@ def test_an_entry_time_before_the_tank_or_in_the_future_is_refused(client, techn
                                                   "feeding-observed_at": when.strftime("%Y-%m-%dT%H:%M")})
     assert response.status_code == 400
     start = timezone.localtime(validators.start_of(old_tank.started_on))
-    assert (f"Observed at: {when:%Y-%m-%d %H:%M} {expected}; allowed range {start:%Y-%m-%d %H:%M} (when tank FW-02 "
+    assert (f"Observed at: {lab_moment(when)} {expected}; allowed range {lab_moment(start)} (when tank FW-02 "
             f"was started) to") in page_text(response)
     assert not Feeding.objects.exists()
 

@@ -1,4 +1,5 @@
 """The tank page: recent checks with their flags, records, what is due."""
+import re
 from datetime import timedelta
 
 import pytest
@@ -31,7 +32,7 @@ def test_tank_page_shows_a_saved_flag_on_the_value_and_asks_for_action(client, t
     assert cells["temp_c"]["side"] is None
     assert row["flag_text"] == ["pH 9.10 is above the care target 6–8"]
     text = page_text(response)
-    assert '<td class="num flag-cell">9.10 <span class="flag-mark" title="above target">▲</span></td>' in text
+    assert '<td class="num flag-cell" data-label="pH">9.10 <span class="flag-mark" title="above target">▲</span></td>' in text
     assert "corrective action missing" in text
 
 
@@ -41,7 +42,7 @@ def test_tank_page_flag_with_action_shows_the_action_instead_of_missing(client, 
 
     text = page_text(client.get(reverse("colonies:tank-detail", args=[tank.code])))
 
-    assert '<td class="num flag-cell">5.00 <span class="flag-mark" title="below target">▼</span></td>' in text
+    assert '<td class="num flag-cell" data-label="pH">5.00 <span class="flag-mark" title="below target">▼</span></td>' in text
     assert "Buffered with bicarbonate" in text
     assert "corrective action missing" not in text
 
@@ -95,3 +96,77 @@ def test_tank_page_offers_record_forms_to_technicians_only(client, technician, r
     assert add_check in page_text(client.get(url))
     client.force_login(researcher)
     assert add_check not in page_text(client.get(url))
+
+
+def _section_order(html: str) -> list[str]:
+    return re.findall(r'class="tank-section[^"]*" id="([a-z]+)"', html)
+
+
+def test_tank_page_puts_the_forms_first_for_who_records_and_the_summary_first_for_who_reads(
+        client, technician, researcher, tank):
+    url = reverse("colonies:tank-detail", args=[tank.code])
+
+    client.force_login(technician)
+    technician_page = client.get(url)
+    client.force_login(researcher)
+    researcher_page = client.get(url)
+
+    assert _section_order(technician_page.content.decode()) == [
+        "record", "due", "checks", "population", "figure", "husbandry", "split", "about"]  # no deviation: no section
+    assert _section_order(researcher_page.content.decode()) == [
+        "population", "figure", "checks", "due", "husbandry", "about"]
+    # the jump links lead to the sections, in the same order
+    for response in (technician_page, researcher_page):
+        jump = re.findall(r'<li><a href="#([a-z]+)">', response.content.decode())
+        assert jump == _section_order(response.content.decode())
+
+
+def test_tank_page_jump_link_to_deviations_counts_them(client, technician, tank):
+    from colonies.models import Deviation
+    Deviation.objects.create(tank=tank, rule=Deviation.Rule.OUT_OF_TARGET, parameter="ph", summary="pH high",
+                             opened_at=timezone.now())
+    client.force_login(technician)
+
+    html = client.get(reverse("colonies:tank-detail", args=[tank.code])).content.decode()
+
+    assert '<a href="#deviations">Deviations (1)</a>' in html
+    assert _section_order(html)[:3] == ["record", "due", "deviations"]
+
+
+def test_tank_page_shows_ten_checks_and_the_rest_one_tap_away(client, technician, tank):
+    for days in range(12):
+        make_check(tank, user=technician, temp_c=22.0, observed_at=timezone.now() - timedelta(days=days, hours=1))
+    client.force_login(technician)
+
+    response = client.get(reverse("colonies:tank-detail", args=[tank.code]))
+
+    assert (len(response.context["recent_rows"]), len(response.context["earlier_rows"])) == (10, 2)
+    assert "<summary>2 earlier checks</summary>" in response.content.decode()
+
+
+def test_tank_page_picks_the_phone_figure_below_40rem(client, researcher, tank):
+    client.force_login(researcher)
+
+    html = client.get(reverse("colonies:tank-detail", args=[tank.code])).content.decode()
+
+    plot = reverse("colonies:tank-plot", args=[tank.code])
+    assert f'<source media="(max-width: 40rem)" srcset="{plot}?days=120&amp;layout=phone">' in html
+    assert f'<img src="{plot}?days=120"' in html
+
+
+def test_tank_page_figure_is_the_health_pages_default_period_so_both_share_one_cached_figure():
+    from colonies import health_views, views
+    assert views.TANK_FIGURE_DAYS == health_views.DEFAULT_PLOT_DAYS
+
+
+def test_a_refused_split_comes_back_at_the_top_of_the_tank_page(client, technician, tank):
+    client.force_login(technician)
+    data = {"split-source_before": "100", "split-stayed": "500", "part-TOTAL_FORMS": "1", "part-INITIAL_FORMS": "0",
+            "part-MIN_NUM_FORMS": "0", "part-MAX_NUM_FORMS": "6", "part-0-new_code": "LV-11", "part-0-animals": "50"}
+
+    response = client.post(reverse("colonies:tank-split", args=[tank.code]), data)
+
+    assert response.status_code == 400
+    html = response.content.decode()
+    assert _section_order(html)[:2] == ["split", "record"] and html.count('id="split"') == 1
+    assert re.findall(r'<li><a href="#([a-z]+)">', html)[:2] == ["split", "record"]

@@ -49,8 +49,8 @@ def test_values_exactly_at_the_limits_pass():
 
 @pytest.mark.parametrize("terms,day,word", [
     (replace(TERMS, status_ok=False, status_label="Draft"), DAY, "draft, not approved"),
-    (TERMS, date(2027, 1, 1), "expired on 2026-12-31"),
-    (TERMS, date(2025, 12, 31), "starts on 2026-01-01"),
+    (TERMS, date(2027, 1, 1), "expired on 31 Dec 2026"),  # dates the lab's way (vermilog/formats)
+    (TERMS, date(2025, 12, 31), "starts on 01 Jan 2026"),
 ])
 def test_an_unapproved_or_expired_protocol_is_a_hard_refusal(terms, day, word):
     [breach] = limits.check_exposure(terms, FRESH, UV, day)
