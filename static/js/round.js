@@ -68,6 +68,17 @@
   var form = document.getElementById("round-form");
   if (!form) return;
 
+  // The save bar says when the round is observed: now, or the time typed.
+  var whenInput = form.querySelector("input[name='round-observed_at']");
+  var whenSummary = form.querySelector(".savebar .when summary");
+  if (whenInput && whenSummary) {
+    var sayWhen = function () {
+      whenSummary.textContent = whenInput.value ? "Observed " + whenInput.value.replace("T", " ") : "Observed now";
+    };
+    whenInput.addEventListener("change", sayWhen);
+    sayWhen();
+  }
+
   // ---- Enter moves to the next input; it never submits the round ---------------------------------
   function visibleInputs() {
     return Array.prototype.filter.call(form.querySelectorAll("input:not([type=hidden]), select"), function (el) {
