@@ -268,8 +268,8 @@ def _binomial_glm(endog, exog, link: str, **options):
     return GLM(endog, exog, family=families.Binomial(LINKS[link]()), offset=options.pop("offset", None)).fit(**options)
 
 
-def _fit_link(endog, exog, link: str) -> tuple[LinkFit, npt.NDArray[np.float64], float] | None:
-    """One link's fit, its (binomial) covariance and the intercept-only deviance; None if it failed."""
+def _fit_link(endog, exog, link: str) -> tuple[LinkFit, object] | None:
+    """One link's fit and statsmodels' result; None if it failed to converge."""
     with warnings.catch_warnings():
         # IRLS far from the data overflows exp() on the way; convergence is checked instead.
         warnings.simplefilter("ignore")
@@ -277,10 +277,16 @@ def _fit_link(endog, exog, link: str) -> tuple[LinkFit, npt.NDArray[np.float64],
         a, b = (float(v) for v in r.params)
         se_a, se_b = (float(v) for v in r.bse)
         fit = LinkFit(link, a, b, se_a, se_b, float(r.deviance), float(r.pearson_chi2), float(r.aic))
-        null_deviance = float(r.null_deviance)
     if not r.converged or not all(map(math.isfinite, (se_a, se_b, fit.deviance, fit.pearson_chi2))):
         return None
-    return fit, np.asarray(r.cov_params(), dtype=float), null_deviance
+    return fit, r
+
+
+def _null_deviance(result) -> float:
+    """Deviance of the intercept-only fit (the pooled proportion at every dose: the same for every link)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return float(result.null_deviance)
 
 
 def _constrained_deviance(endog, x, m: float, fit: LinkFit, eta50: float) -> float:
@@ -357,7 +363,8 @@ def fit_dose_response(doses: npt.ArrayLike, n_responding: npt.ArrayLike, n_total
         raise ValueError("the maximum-likelihood fit did not converge for any link; check the data")
     fits = tuple(f[0] for f in fitted.values())
     chosen = min(fits, key=lambda f: f.aic)
-    _, binomial_cov, null_deviance = fitted[chosen.link]
+    result = fitted[chosen.link][1]
+    binomial_cov, null_deviance = np.asarray(result.cov_params(), dtype=float), _null_deviance(result)
 
     pearson = chosen.pearson_chi2
     gof_p = float(stats.chi2.sf(pearson, df))
