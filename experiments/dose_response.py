@@ -57,16 +57,14 @@ from statsmodels.genmod.families import links
 from statsmodels.genmod.generalized_linear_model import GLM
 
 LINKS: dict[str, type[links.Link]] = {"logit": links.Logit, "probit": links.Probit, "cloglog": links.CLogLog}
-LINK_LABELS = {
-    "logit": "logit (log-logistic curve)",
-    "probit": "probit (log-normal curve)",
-    "cloglog": "complementary log-log (Weibull curve)",
-}
+LINK_LABELS = {"logit": "logit (log-logistic curve)", "probit": "probit (log-normal curve)",
+               "cloglog": "complementary log-log (Weibull curve)"}
 TREND_LEVEL = 0.05  # the slope test; the interval is at 1 - TREND_LEVEL, so the two agree (point 6)
 HETEROGENEITY_LEVEL = 0.05  # Finney's practice: apply the factor when X^2 is significant at 5 % (from memory)
 CONFIDENCE = 1 - TREND_LEVEL
 
 Status = Literal["ec50", "no_trend", "separation", "beyond_range"]
+Doses = float | Sequence[float] | npt.NDArray[np.floating]
 
 # 10**x overflows a float above about x = 308.25; the profile search stays inside this.
 _MAX_LOG10 = 300.0
@@ -89,7 +87,7 @@ class LinkFit:
     def label(self) -> str:
         return LINK_LABELS[self.link]
 
-    def predict(self, dose: float | Sequence[float] | npt.NDArray[np.floating]) -> float | npt.NDArray[np.float64]:
+    def predict(self, dose: Doses) -> float | npt.NDArray[np.float64]:
         """Fitted probability of response at ``dose`` (same unit as the fitted doses); dose 0 gives the limit."""
         values = np.asarray(dose, dtype=float)
         if np.any(~np.isfinite(values)) or np.any(values < 0):
@@ -158,14 +156,10 @@ class DoseResponseFit:
         if self.status != "ec50":
             return self.reason
         interval = {"fieller": "Fieller's theorem", "profile": "profile likelihood (Fieller unbounded)"}
-        factor = "applied" if self.heterogeneity_applied else "not applied"
-        label = self.link_label
-        return (f"{label[0].upper()}{label[1:]} fit on log10 dose, chosen by {self._chosen_text()}; "
-                f"EC50 95 % interval by {interval[self.interval_method]}; heterogeneity factor "
-                f"{self.heterogeneity:.2f} ({factor}).")
-
-    def _chosen_text(self) -> str:
-        return "lowest AIC" if self.chosen_by == "aic" else "the caller"
+        label, chosen = self.link_label, "lowest AIC" if self.chosen_by == "aic" else "the caller"
+        return (f"{label[0].upper()}{label[1:]} fit on log10 dose, chosen by {chosen}; EC50 95 % interval by "
+                f"{interval[self.interval_method]}; heterogeneity factor {self.heterogeneity:.2f} "
+                f"({'applied' if self.heterogeneity_applied else 'not applied'}).")
 
     @property
     def link_table(self) -> list[tuple[LinkFit, float, bool]]:
@@ -177,7 +171,7 @@ class DoseResponseFit:
     def chosen(self) -> LinkFit | None:
         return next((f for f in self.links if f.link == self.link), None)
 
-    def predict(self, dose: float | Sequence[float] | npt.NDArray[np.floating]) -> float | npt.NDArray[np.float64]:
+    def predict(self, dose: Doses) -> float | npt.NDArray[np.float64]:
         """The chosen link's fitted probability at ``dose``; ValueError when nothing was fitted."""
         if self.chosen is None:
             raise ValueError(f"no curve was fitted ({self.status}): nothing to predict")
@@ -230,12 +224,11 @@ def _dose_arrays(
 # Data that carry no slope: flat, or separated
 # --------------------------------------------------------------------------------------------
 def _flat_reason(responding: npt.NDArray[np.int64], total: npt.NDArray[np.int64]) -> str | None:
+    n, tail = int(total.sum()), "so there is no EC50 within the doses tested."
     if not np.any(responding > 0):
-        return (f"No dose trend: none responded at any dose (0 of {int(total.sum())}), so there is no "
-                "EC50 within the doses tested.")
+        return f"No dose trend: none responded at any dose (0 of {n}), {tail}"
     if not np.any(responding < total):
-        return (f"No dose trend: all responded at every dose ({int(total.sum())} of {int(total.sum())}), "
-                "so there is no EC50 within the doses tested.")
+        return f"No dose trend: all responded at every dose ({n} of {n}), {tail}"
     return None
 
 
@@ -255,7 +248,7 @@ def _separation_reason(dose, responding, total) -> str | None:
             below, above = np.any(dose < low), np.any(dose > low)
             sides = [f"{none} responded below {low:g}"] if below else []
             sides += [f"{all_} responded above it"] if above else []
-            return (f"Quasi-complete separation: {' and '.join(sides) or 'only one dose has mixed results'}; at "
+            return (f"Quasi-complete separation: {' and '.join(sides)}; at "
                     f"{low:g}, {int(responding[at].sum())} of {int(total[at].sum())} responded; {tail} "
                     f"Test doses around {low:g}.")
     return None
