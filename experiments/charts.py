@@ -165,12 +165,13 @@ def km_chart(table: pd.DataFrame, *, order: Sequence[str] | None = None, window_
 def dose_response_chart(groups: pd.DataFrame, *, curve: pd.DataFrame | None = None, ec50: float | None = None,
                         ec50_lower: float | None = None, ec50_upper: float | None = None,
                         control: tuple[int, int] | None = None, title: str = "", note: str = "",
-                        fmt: str = "svg") -> bytes:
+                        curve_label: str = "", fmt: str = "svg") -> bytes:
     """Fraction dispersed within the window against light dose (log axis), with the fitted curve.
 
     `groups` has columns dose, n_responding, n_total (one row per dose); `curve` has dose and
-    fitted (the fitted probability). EC50 is a dashed line with its interval shaded. A zero-dose
-    control, which a log axis cannot place, is drawn as a separate point at the left edge.
+    fitted (the fitted probability): pass none when there is no dose trend, and only the points
+    are drawn. EC50 is a dashed line with its interval shaded. A zero-dose control, which a log
+    axis cannot place, is drawn as a separate point at the left edge.
     """
     positive = groups[groups["dose"] > 0]
     if positive.empty:
@@ -186,7 +187,7 @@ def dose_response_chart(groups: pd.DataFrame, *, curve: pd.DataFrame | None = No
         ax.axvspan(ec50_lower, ec50_upper, color=vermillion, alpha=0.12, linewidth=0,
                    label=f"95 % interval {ec50_lower:.3g}–{ec50_upper:.3g}")
     if curve is not None and not curve.empty:
-        ax.plot(curve["dose"], curve["fitted"], color=blue, linewidth=2, label="Fitted log-logistic curve")
+        ax.plot(curve["dose"], curve["fitted"], color=blue, linewidth=2, label=curve_label or "Fitted curve")
     if ec50 is not None and np.isfinite(ec50):
         ax.axvline(ec50, color=vermillion, linestyle="--", linewidth=1.5, label=f"EC50 = {ec50:.3g} mJ/cm²")
     sizes = 30 + 12 * positive["n_total"].to_numpy(dtype=float)

@@ -16,7 +16,7 @@ from django.utils import timezone
 
 from colonies import exports
 
-from . import analysis
+from . import analysis, dose_response
 from .charts import KM_TABLE_COLUMNS
 from .models import Trial
 
@@ -97,7 +97,7 @@ class StudyAnalysis:
     reference: str
     km_table: pd.DataFrame
     dose_groups: pd.DataFrame | None = None
-    dose_fit: analysis.DoseResponseFit | None = None
+    dose_fit: dose_response.DoseResponseFit | None = None
     dose_curve: pd.DataFrame | None = None
     dose_error: str = ""
     control: tuple[int, int] | None = None
@@ -171,26 +171,41 @@ def _dose_response(data: pd.DataFrame, result: StudyAnalysis) -> None:
     if n_ctrl:
         result.control = (int(zero["n_responding"].sum()) + int(sham["dispersed"].sum()), n_ctrl)
     try:
-        fit = analysis.fit_dose_response(positive["dose"], positive["n_responding"], positive["n_total"])
+        fit = dose_response.fit_dose_response(positive["dose"], positive["n_responding"], positive["n_total"])
     except ValueError as error:
         result.dose_error = str(error)
         return
     result.dose_fit = fit
-    grid = np.logspace(np.log10(positive["dose"].min() / 3), np.log10(positive["dose"].max() * 3), 200)
-    result.dose_curve = pd.DataFrame({"dose": grid, "fitted": fit.predict(grid)})
+    if fit.has_ec50:  # no curve without a dose trend: a flat line would read as a result
+        grid = np.logspace(np.log10(positive["dose"].min() / 3), np.log10(positive["dose"].max() * 3), 200)
+        result.dose_curve = pd.DataFrame({"dose": grid, "fitted": fit.predict(grid)})
+
+
+# Fit-level columns of the dose-response CSV, the same on every row (the page states them once).
+DOSE_FIT_COLUMNS = ("status", "reason", "link", "chosen_by", "ec50_mj_cm2", "ec50_lower", "ec50_upper",
+                    "interval_method", "extrapolated", "trend_test", "trend_statistic", "trend_p", "pearson_chi2",
+                    "df_resid", "gof_p", "heterogeneity_factor", "heterogeneity_applied", "method")
 
 
 def dose_table(result: StudyAnalysis) -> pd.DataFrame:
-    """The data behind the dose-response chart: groups with observed and fitted fractions."""
+    """The data behind the dose-response chart: groups with observed fractions, each link's fitted
+    fraction, deviance and AIC, and the fit's decisions (status, link, EC50 and interval, tests)."""
     groups = result.dose_groups.copy()
     groups["observed_fraction"] = groups["n_responding"] / groups["n_total"]
-    if result.dose_fit is not None:
-        fit = result.dose_fit
-        groups["fitted_fraction"] = [fit.predict(d) if d > 0 else None for d in groups["dose"]]
-        groups["ec50_mj_cm2"] = fit.ec50
-        groups["ec50_lower"] = fit.ec50_lower
-        groups["ec50_upper"] = fit.ec50_upper
-        groups["method"] = fit.method
+    fit = result.dose_fit
+    if fit is None:
+        return groups.rename(columns={"dose": "dose_mj_cm2"})
+    positive = groups["dose"] > 0
+    if fit.has_ec50:
+        groups["fitted_fraction"] = np.where(positive, fit.predict(groups["dose"]), np.nan)
+    for link in fit.links:
+        groups[f"fitted_{link.link}"] = np.where(positive, link.predict(groups["dose"]), np.nan)
+    for link in fit.links:
+        groups[f"deviance_{link.link}"] = link.deviance
+        groups[f"aic_{link.link}"] = link.aic
+    values = {"heterogeneity_factor": fit.heterogeneity, "ec50_mj_cm2": fit.ec50}
+    for column in DOSE_FIT_COLUMNS:
+        groups[column] = values[column] if column in values else getattr(fit, column)
     return groups.rename(columns={"dose": "dose_mj_cm2"})
 
 

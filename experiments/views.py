@@ -395,6 +395,7 @@ def study_chart(request, code, kind, fmt):
             result.dose_groups, curve=result.dose_curve, ec50=fit.ec50 if fit else None,
             ec50_lower=fit.ec50_lower if fit else None, ec50_upper=fit.ec50_upper if fit else None,
             control=result.control, title=f"Dose-response · {study.code}",
+            curve_label=f"Fitted curve, {fit.link_label}" if fit else "",
             note=_dose_note(fit, result.dose_error), fmt=fmt)
     response = HttpResponse(body, content_type=charts.FORMATS[fmt])
     if request.GET.get("download"):
@@ -405,9 +406,7 @@ def study_chart(request, code, kind, fmt):
 def _dose_note(fit, error: str) -> str:
     if fit is None:
         return f"No fit: {error}"
-    interval = "Fieller" if fit.interval_method == "fieller" else "delta method (Fieller unbounded: unreliable)"
-    return (f"Response: clump dispersed within the window. Two-parameter log-logistic fit, binomial maximum "
-            f"likelihood; EC50 95 % interval by {interval}; goodness of fit p = {fit.gof_p:.2g}.")
+    return f"Response: clump dispersed within the window. {fit.headline}"
 
 
 @require_GET

@@ -1,9 +1,9 @@
-"""Tests for experiments/analysis.py: survival (Kaplan-Meier, log-rank) and dose-response fits.
+"""Tests for experiments/analysis.py: survival (Kaplan-Meier, log-rank); dose-response fits are in
+test_dose_response.py.
 
 Pure module, no database. Published values are named beside each check; lifelines and
 statsmodels serve as independent reference implementations (the hard checks).
 """
-import dataclasses
 import math
 
 import numpy as np
@@ -14,14 +14,10 @@ from lifelines import KaplanMeierFitter
 from lifelines.statistics import logrank_test as lifelines_logrank
 from scipy import stats
 from statsmodels.duration.survfunc import SurvfuncRight, survdiff
-from statsmodels.genmod import families
-from statsmodels.genmod.generalized_linear_model import GLM
 
 from experiments.analysis import (
     KM_COLUMNS,
-    DoseResponseFit,
     condition_summary,
-    fit_dose_response,
     kaplan_meier,
     logrank_test,
     median_survival,
@@ -35,14 +31,6 @@ MP_OBSERVED = [1] * 9 + [0] * 12
 # Group 2, placebo: every remission ended in relapse.
 PLACEBO_TIMES = [1, 1, 2, 2, 3, 4, 4, 5, 5, 8, 8, 8, 8, 11, 11, 12, 12, 15, 17, 22, 23]
 PLACEBO_OBSERVED = [1] * 21
-
-# Beetle mortality after 5 h exposure to gaseous carbon disulphide, Bliss (1935), as analysed
-# in Dobson & Barnett, An Introduction to Generalized Linear Models, ch. 7 (data Table 7.2,
-# fits Table 7.3: table numbers from memory). The doses are already log10(CS2 mg/L).
-BEETLE_LOG10_DOSE = [1.6907, 1.7242, 1.7552, 1.7842, 1.8113, 1.8369, 1.8610, 1.8839]
-BEETLE_N = [59, 60, 62, 56, 63, 59, 62, 60]
-BEETLE_KILLED = [6, 13, 18, 28, 52, 53, 61, 60]
-BEETLE_DOSE = [10**x for x in BEETLE_LOG10_DOSE]
 
 
 def _row(frame, time):
@@ -386,143 +374,3 @@ def test_condition_summary_with_no_trials_is_empty_not_an_error():
 def test_condition_summary_rejects_mismatched_lengths():
     with pytest.raises(ValueError, match="same length"):
         condition_summary([1, 2, 3], [1, 1])
-
-
-# --- Dose-response ------------------------------------------------------------------------------
-
-
-def _newton_logistic(x, y, n, iterations=50):
-    """Hand check: Newton-Raphson for logit(p) = a + b x on binomial counts."""
-    design = np.column_stack((np.ones_like(x), x))
-    beta = np.zeros(2)
-    for _ in range(iterations):
-        p = 1 / (1 + np.exp(-design @ beta))
-        score = design.T @ (y - n * p)
-        information = design.T @ (design * (n * p * (1 - p))[:, None])
-        beta = beta + np.linalg.solve(information, score)
-    p = 1 / (1 + np.exp(-design @ beta))
-    information = design.T @ (design * (n * p * (1 - p))[:, None])
-    return beta, np.linalg.inv(information)
-
-
-def test_dose_response_reproduces_dobson_beetle_logit_fit():
-    fit = fit_dose_response(BEETLE_DOSE, BEETLE_KILLED, BEETLE_N)
-    # Dobson & Barnett ch. 7 (Bliss 1935 beetle data), logistic model: b1 = -60.72 (s.e. 5.18),
-    # b2 = 34.27 (s.e. 2.91), deviance D = 11.23 on 6 df. Cross-checked against the glmlab
-    # manual (Dunn, Univ. of Southern Queensland), which reprints -60.717455 (5.180701),
-    # 34.270326 (2.912134), scaled deviance 11.232231 and says they agree with Dobson.
-    assert fit.intercept == pytest.approx(-60.72, abs=0.005)
-    assert fit.slope == pytest.approx(34.27, abs=0.005)
-    assert fit.intercept_se == pytest.approx(5.18, abs=0.005)
-    assert fit.slope_se == pytest.approx(2.91, abs=0.005)
-    assert fit.deviance == pytest.approx(11.23, abs=0.005)
-    assert fit.df_resid == 6 and fit.n_groups == 8
-    # log10 LD50 = 60.717 / 34.270 = 1.7718 [C from the published coefficients].
-    assert math.log10(fit.ec50) == pytest.approx(60.717455 / 34.270326, rel=1e-5)
-    assert fit.interval_method == "fieller"
-    assert fit.ec50_lower < fit.ec50 < fit.ec50_upper
-
-
-def test_dose_response_matches_statsmodels_glm_and_hand_newton_raphson():
-    x = np.array(BEETLE_LOG10_DOSE)
-    y = np.array(BEETLE_KILLED, float)
-    n = np.array(BEETLE_N, float)
-    fit = fit_dose_response(BEETLE_DOSE, BEETLE_KILLED, BEETLE_N)
-
-    glm = GLM(
-        np.column_stack((y, n - y)), np.column_stack((np.ones_like(x), x)),
-        family=families.Binomial(),
-    ).fit()
-    assert fit.intercept == pytest.approx(glm.params[0], rel=1e-6)
-    assert fit.slope == pytest.approx(glm.params[1], rel=1e-6)
-    assert fit.slope_se == pytest.approx(glm.bse[1], rel=1e-6)
-    assert fit.deviance == pytest.approx(glm.deviance, rel=1e-8)
-    assert fit.pearson_chi2 == pytest.approx(glm.pearson_chi2, rel=1e-8)
-
-    beta, cov = _newton_logistic(x, y, n)
-    assert fit.intercept == pytest.approx(beta[0], rel=1e-6)
-    assert fit.slope == pytest.approx(beta[1], rel=1e-6)
-    assert fit.slope_se == pytest.approx(math.sqrt(cov[1, 1]), rel=1e-5)
-
-    # Pearson chi-square by hand and its p value on 8 - 2 df.
-    p = 1 / (1 + np.exp(-(beta[0] + beta[1] * x)))
-    pearson = float(np.sum((y - n * p) ** 2 / (n * p * (1 - p))))
-    assert fit.pearson_chi2 == pytest.approx(pearson, rel=1e-6)
-    assert fit.gof_p == pytest.approx(stats.chi2.sf(pearson, 6), rel=1e-5)
-
-
-def test_fieller_interval_matches_collett_closed_form():
-    fit = fit_dose_response(BEETLE_DOSE, BEETLE_KILLED, BEETLE_N)
-    x = np.array(BEETLE_LOG10_DOSE)
-    (a, b), cov = _newton_logistic(x, np.array(BEETLE_KILLED, float), np.array(BEETLE_N, float))
-    v00, v11, v01 = cov[0, 0], cov[1, 1], cov[0, 1]
-    z = stats.norm.ppf(0.975)
-    m = -a / b
-    g = z**2 * v11 / b**2
-    # Fieller limits for ED50 = -b0/b1 in the form of Collett, Modelling Binary Data, §4.2
-    # (from memory; the algebra is checked here against the quadratic used in the module).
-    centre = m + g / (1 - g) * (m + v01 / v11)
-    radicand = v00 + 2 * m * v01 + m**2 * v11 - g * (v00 - v01**2 / v11)
-    half = z / (abs(b) * (1 - g)) * math.sqrt(radicand)
-    assert math.log10(fit.ec50_lower) == pytest.approx(centre - half, rel=1e-5)
-    assert math.log10(fit.ec50_upper) == pytest.approx(centre + half, rel=1e-5)
-    # With a steep, well-estimated slope (g small) Fieller and the delta method nearly agree.
-    delta_half = z * math.sqrt(v00 + 2 * m * v01 + m**2 * v11) / abs(b)
-    assert g < 0.05
-    assert half == pytest.approx(delta_half, rel=0.05)
-
-
-def test_shallow_slope_falls_back_to_delta_method_and_says_so():
-    fit = fit_dose_response([1, 10, 100], [4, 6, 5], [10, 10, 10])
-    assert fit.interval_method == "delta"
-    assert "Fieller" in fit.method and "delta method" in fit.method and "unreliable" in fit.method
-    assert fit.ec50_lower < fit.ec50 < fit.ec50_upper
-
-
-def test_predict_gives_one_half_at_ec50_and_follows_the_curve():
-    fit = fit_dose_response(BEETLE_DOSE, BEETLE_KILLED, BEETLE_N)
-    assert fit.predict(fit.ec50) == pytest.approx(0.5)
-    assert fit.predict(0) == 0.0
-    expected = 1 / (1 + math.exp(-(fit.intercept + fit.slope * 1.8113)))
-    assert fit.predict(10**1.8113) == pytest.approx(expected)
-    curve = fit.predict(BEETLE_DOSE)
-    assert isinstance(curve, np.ndarray) and np.all(np.diff(curve) > 0)
-    with pytest.raises(ValueError, match="dose"):
-        fit.predict(-1)
-
-
-def test_fit_is_frozen():
-    fit = fit_dose_response(BEETLE_DOSE, BEETLE_KILLED, BEETLE_N)
-    assert isinstance(fit, DoseResponseFit)
-    with pytest.raises(dataclasses.FrozenInstanceError):
-        fit.ec50 = 1.0  # type: ignore[misc]
-
-
-def test_decreasing_response_gives_negative_slope():
-    fit = fit_dose_response([1, 3, 10, 30], [18, 12, 7, 2], [20, 20, 20, 20])
-    assert fit.slope < 0
-    assert fit.predict(fit.ec50) == pytest.approx(0.5)
-
-
-@pytest.mark.parametrize(
-    ("doses", "responding", "total", "message"),
-    [
-        ([1, 2, 3], [1, 2], [10, 10, 10], "same length"),
-        ([1, 2, 3], [1, 12, 5], [10, 10, 10], "exceeds n_total"),
-        ([1, -2, 3], [1, 2, 3], [10, 10, 10], "negative"),
-        ([1, 2, 3], [1, -2, 3], [10, 10, 10], "negative"),
-        ([0, 1, 2, 3], [0, 1, 5, 9], [10, 10, 10, 10], "control"),
-        ([1, 2], [2, 8], [10, 10], "at least 3"),
-        ([1, 1, 2, 2], [2, 3, 7, 8], [10, 10, 10, 10], "at least 3"),
-        ([1, 2, 3], [0, 0, 0], [10, 10, 10], "no response"),
-        ([1, 2, 3], [10, 10, 10], [10, 10, 10], "full response"),
-        ([1, 2, 3, 4], [0, 0, 10, 10], [10, 10, 10, 10], "separation"),
-        ([1, 2, 3], [0, 4, 10], [10, 10, 10], "separation"),
-        ([1, 2, 3], [1.5, 2, 3], [10, 10, 10], "whole numbers"),
-        ([1, 2, 3], [1, 2, 3], [10, 0, 10], "n_total >= 1"),
-        ([1, float("nan"), 3], [1, 2, 3], [10, 10, 10], "finite"),
-    ],
-)
-def test_dose_response_rejects_bad_input(doses, responding, total, message):
-    with pytest.raises(ValueError, match=message):
-        fit_dose_response(doses, responding, total)

@@ -2,7 +2,7 @@
 import pandas as pd
 import pytest
 
-from experiments import analysis, charts
+from experiments import analysis, charts, dose_response
 
 
 def _km_table(groups: dict[str, tuple[list[float], list[bool]]]) -> pd.DataFrame:
@@ -43,13 +43,23 @@ def test_dose_response_chart_draws_fit_and_ec50():
     groups = pd.DataFrame({"dose": [0.0, 5.0, 10.0, 20.0, 40.0], "n_responding": [1, 1, 3, 4, 5],
                            "n_total": [6, 6, 6, 6, 6]})
     positive = groups[groups["dose"] > 0]
-    fit = analysis.fit_dose_response(positive["dose"], positive["n_responding"], positive["n_total"])
+    fit = dose_response.fit_dose_response(positive["dose"], positive["n_responding"], positive["n_total"])
+    assert fit.has_ec50
     curve = pd.DataFrame({"dose": [2.0, 10.0, 80.0], "fitted": fit.predict([2.0, 10.0, 80.0])})
     svg = charts.dose_response_chart(groups, curve=curve, ec50=fit.ec50, ec50_lower=fit.ec50_lower,
-                                     ec50_upper=fit.ec50_upper, control=(1, 6), fmt="svg").decode()
+                                     ec50_upper=fit.ec50_upper, control=(1, 6), fmt="svg",
+                                     curve_label=f"Fitted curve, {fit.link_label}").decode()
     assert "Light dose per exposure (mJ/cm², log scale)" in svg
     assert f"EC50 = {fit.ec50:.3g} mJ/cm²" in svg
+    assert f"Fitted curve, {fit.link_label}" in svg
     assert "Sham, no light (1/6)" in svg
+
+
+def test_dose_response_chart_without_a_trend_draws_the_points_only():
+    groups = pd.DataFrame({"dose": [5.0, 10.0, 20.0], "n_responding": [3, 3, 3], "n_total": [6, 6, 6]})
+    svg = charts.dose_response_chart(groups, note="No dose trend: ...", fmt="svg").decode()
+    assert "Observed fraction" in svg
+    assert "Fitted curve" not in svg and "EC50" not in svg and "95 % interval" not in svg
 
 
 def test_empty_inputs_give_a_readable_placeholder():

@@ -152,7 +152,8 @@ def test_cautions_appear_where_uv_or_electrical_stimulus_is_configured(client, r
 
 
 # --- the study page ---------------------------------------------------------------------------------
-def _filled_study(researcher, protocol, tank, n_cohorts: int, code="full-study"):
+def _filled_study(researcher, protocol, tank, n_cohorts: int, code="full-study", disperses=None):
+    """`disperses(dose, replicate)` decides each trial's outcome; by default more disperse at higher doses."""
     study = make_study(user=researcher, protocol=protocol, code=code, replicates=n_cohorts,
                        conditions=("sham", "UV 10", "UV 20", "UV 40"))
     doses = {"sham": 0, "UV 10": 10, "UV 20": 20, "UV 40": 40}
@@ -160,7 +161,7 @@ def _filled_study(researcher, protocol, tank, n_cohorts: int, code="full-study")
         cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(30))
         for j, entry in enumerate(study.allocation[2 * i:2 * i + 2]):
             dose = doses[entry["condition"]]
-            dispersed = (entry["replicate"] + j) % 4 < (dose // 10)
+            dispersed = disperses(dose, entry["replicate"]) if disperses else (entry["replicate"] + j) % 4 < (dose // 10)
             values = {"slot": entry["slot"], "at": days_ago(29 - j),
                       "disperse_s": 100.0 + 10 * entry["replicate"] if dispersed else None, "censored": not dispersed}
             if dose:
@@ -185,6 +186,55 @@ def test_study_page_shows_summaries_curves_and_dose_response(client, technician,
         png = client.get(reverse("experiments:study-chart", args=[study.code, kind, "png"]) + "?download=1")
         assert png.content[:8] == b"\x89PNG\r\n\x1a\n"
         assert png["Content-Disposition"] == f'attachment; filename="{study.code}-{kind}.png"'
+
+
+def _dose_csv(client, study) -> list[dict]:
+    return list(csv.DictReader(io.StringIO(_streamed(client.get(
+        reverse("experiments:study-chart-csv", args=[study.code, "dose"]))))))
+
+
+def test_study_page_states_the_dose_response_decisions_and_the_link_comparison(client, researcher, protocol, tank):
+    # 1 of 4, 2 of 4 and 4 of 4 trials disperse at 10, 20 and 40 mJ/cm²: a trend, no separation.
+    study = _filled_study(researcher, protocol, tank, 4, code="graded", disperses=lambda dose, rep: rep <= dose // 10)
+    client.force_login(researcher)
+    response = client.get(study.get_absolute_url())
+    fit = response.context["result"].dose_fit
+    text = page_text(response)
+    assert fit.has_ec50 and f"EC50 <strong>{fit.ec50:.3g} mJ/cm²</strong>" in text
+    assert "Fieller's theorem" in text or "profile likelihood" in text
+    assert "Dose trend" in text and "likelihood-ratio" in text and "heterogeneity factor χ²/df" in text
+    table = response.content.decode().split('id="dose-links"')[1].split("</table>")[0]
+    assert table.count("<tr>") == 4 and table.count(">chosen<") == 1  # header and three links
+    rows = _dose_csv(client, study)
+    assert {"status", "link", "ec50_mj_cm2", "interval_method", "heterogeneity_factor", "heterogeneity_applied",
+            "trend_p", "aic_logit", "aic_probit", "aic_cloglog", "fitted_fraction"} <= set(rows[0])
+    assert rows[0]["status"] == "ec50" and rows[0]["link"] == fit.link
+
+
+def test_flat_dose_response_shows_no_dose_trend_instead_of_crashing(client, researcher, protocol, tank):
+    # Half the trials disperse at every dose: the fitted slope is exactly 0 (this page used to fail).
+    study = _filled_study(researcher, protocol, tank, 4, code="flat", disperses=lambda dose, rep: rep % 2 == 0)
+    client.force_login(researcher)
+    response = client.get(study.get_absolute_url())
+    assert response.status_code == 200
+    text = page_text(response)
+    assert "No dose trend: the slope is not distinguishable from zero" in text
+    assert "EC50 " not in text.split("No dose trend")[0].split("Dose-response")[-1]
+    svg = client.get(reverse("experiments:study-chart", args=[study.code, "dose", "svg"])).content.decode()
+    assert "No dose trend" in svg and "Fitted curve" not in svg and "EC50 =" not in svg
+    rows = _dose_csv(client, study)
+    assert {r["status"] for r in rows} == {"no_trend"} and {r["ec50_mj_cm2"] for r in rows} == {""}
+    assert "fitted_fraction" not in rows[0]
+
+
+def test_separated_dose_response_says_where_the_response_jumps(client, researcher, protocol, tank):
+    study = _filled_study(researcher, protocol, tank, 4, code="steep", disperses=lambda dose, rep: dose >= 20)
+    client.force_login(researcher)
+    text = page_text(client.get(study.get_absolute_url()))
+    assert "Complete separation: none responded at 10 or below and all at 20 or above" in text
+    svg = client.get(reverse("experiments:study-chart", args=[study.code, "dose", "svg"])).content.decode()
+    assert "Fitted curve" not in svg and "EC50 =" not in svg
+    assert {r["status"] for r in _dose_csv(client, study)} == {"separation"}
 
 
 def test_tidy_csv_has_one_row_per_trial_with_settings_derived_values_and_outcomes(client, researcher, protocol, tank):
