@@ -607,8 +607,9 @@ class OutcomeChanges:
     late_changed: list[str]
 
     @property
-    def any(self) -> bool:
-        return bool(self.main or self.late_new or self.late_changed)
+    def late_only(self) -> bool:
+        """Only late outcomes change (the 24 h count entered the day after scoring, or after unblinding)."""
+        return not self.main and bool(self.late_new or self.late_changed)
 
 
 def outcome_changes(trial: Trial, values: dict) -> OutcomeChanges:
@@ -623,9 +624,10 @@ def outcome_changes(trial: Trial, values: dict) -> OutcomeChanges:
 
 
 def is_correction(trial: Trial, changes: OutcomeChanges) -> bool:
-    """Changing a value already recorded (a score, or a late count) needs the owner or a manager and a reason;
-    entering one for the first time (the 24 h count the day after scoring) does not."""
-    return bool((trial.is_scored and changes.main) or changes.late_changed)
+    """Resubmitting a scored trial or changing a late count already recorded needs a reason; entering a late
+    count for the first time (the 24 h count the day after scoring) does not."""
+    first_late_entry = changes.late_new and not changes.main and not changes.late_changed
+    return bool((trial.is_scored and not first_late_entry) or changes.late_changed)
 
 
 def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None) -> Trial:
@@ -643,16 +645,14 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
         if trial.is_voided:
             raise Refused(f"{trial} is voided.")
         changes = outcome_changes(trial, values)
-        if study.is_locked and changes.main:
+        if study.is_locked and not changes.late_only:
             raise Refused(f"Study {study.code} has locked outcomes; scores can no longer change. Only late outcomes "
                           f"({late_outcome_labels()}) can still be entered, marked as entered after unblinding.")
         if study.scorer_not_operator and trial.run_by_id == user.pk:
             raise PermissionDenied(f"Scorer: you ran {trial.code}, and study {study.code} requires that the "
                                    "scorer is not the operator; another person scores it.")
-        if not changes.any:
-            raise Refused(f"Nothing to save: the outcomes of {trial.code} are already these.")
         correcting = is_correction(trial, changes)
-        if correcting:
+        if correcting or trial.is_scored:
             require_study_owner(user, study, "correct scores")
         if correcting and not reason:
             raise Refused(f"{trial} is already scored: give a reason to correct the score.")
@@ -661,13 +661,13 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
         normalise_outcome(trial)
         _check_order(trial, trial.cohort, now)
         trial.full_clean()
-        if changes.main:
+        if not changes.late_only:
             trial.scored_at, trial.scored_by = now, user
         after_unblinding = study.unblinded_at is not None
         for name in changes.late_new + changes.late_changed:
             setattr(trial, f"{name}_entered_at", now)
             setattr(trial, f"{name}_after_unblinding", after_unblinding)
-        what = "Outcome corrected" if correcting else ("Outcome scored" if changes.main else "Late outcome entered")
+        what = "Outcome corrected" if correcting else ("Late outcome entered" if changes.late_only else "Outcome scored")
         if after_unblinding and (changes.late_new or changes.late_changed):
             what += " after unblinding"
         return _save(trial, user, f"{what}: {reason}" if reason else what)

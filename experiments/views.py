@@ -25,8 +25,7 @@ from . import blinding, charts, filetypes, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
                     ScoreForm, StudyForm, TrialForm, errors_text)
-from .models import (LATE_OUTCOME_FIELDS, Attachment, Booking, Cohort, Protocol, SlotClaim, Stimulus, Study, Trial,
-                     cautions_for)
+from .models import Attachment, Booking, Cohort, Protocol, SlotClaim, Stimulus, Study, Trial, cautions_for
 
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
@@ -585,17 +584,11 @@ def _trial_detail_page(request, trial, attachment_form=None, status=200):
 
 
 def _score_mode(user, trial) -> str | None:
-    """What the score page lets `user` enter: "all" outcomes, only the "late" ones (the 24 h count; after
-    unblinding, or a count still missing on a trial another person scored), or None."""
-    if trial.is_voided:
+    """What the score page lets `user` enter: "all" outcomes, only the "late" ones (the 24 h count, once the
+    study is unblinded and its other outcomes locked), or None. A scored trial is the owner's or a manager's."""
+    if trial.is_voided or (trial.is_scored and not services.may_change_study(user, trial.study)):
         return None
-    may_correct = services.may_change_study(user, trial.study)
-    late_open = any(getattr(trial, name) is None for name in LATE_OUTCOME_FIELDS)
-    if trial.study.is_locked:
-        return "late" if late_open or may_correct else None
-    if not trial.is_scored or may_correct:
-        return "all"
-    return "late" if late_open else None
+    return "late" if trial.study.is_locked else "all"
 
 
 def _score_refusal(user, trial) -> str | None:
@@ -603,7 +596,7 @@ def _score_refusal(user, trial) -> str | None:
     if trial.study.scorer_not_operator and trial.run_by_id == user.pk:
         return (f"Scorer: you ran {trial.code}, and study {trial.study.code} requires that the scorer is not the "
                 "operator; another person scores it.")
-    if _score_mode(user, trial) is None and not trial.is_voided:
+    if trial.is_scored and not services.may_change_study(user, trial.study):
         return (f"Only the study's owner ({trial.study.owner.get_username()}) or a manager may correct scores "
                 f"in study {trial.study.code}.")
     return None

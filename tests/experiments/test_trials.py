@@ -211,17 +211,30 @@ def test_scoring_corrects_with_history_and_locking_stops_it(setup, researcher):
         services.score_trial(user=researcher, trial=trial, values={"disperse_s": 5.0}, reason="late")
 
 
-def test_only_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, manager, protocol):
+def test_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, manager, protocol):
+    from colonies.roles import RESEARCHER
+    from tests.factories import make_user
     study = make_study(user=researcher, protocol=protocol, blinded=True)
-    assert study.hides_conditions_from(manager) and not study.hides_conditions_from(researcher)
+    assert study.hides_conditions_from(manager) and study.hides_conditions_from(researcher)  # the owner too
     with pytest.raises(PermissionDenied):
-        services.unblind(user=manager, study=study, reason="curious")
+        services.unblind(user=make_user("rival", role=RESEARCHER), study=study, reason="curious")
     with pytest.raises(services.Refused, match="reason"):
         services.unblind(user=researcher, study=study, reason="")
     services.unblind(user=researcher, study=study, reason="Analysis plan complete")
     study.refresh_from_db()
     assert study.unblinded_by == researcher and study.outcomes_locked_at <= study.unblinded_at
     assert not study.hides_conditions_from(manager)
+
+
+def test_a_manager_who_must_see_unblinds_with_a_reason_kept_in_the_history(researcher, manager, protocol):
+    study = make_study(user=researcher, protocol=protocol, blinded=True)
+    with pytest.raises(services.Refused, match="reason"):
+        services.unblind(user=manager, study=study, reason=" ")
+    services.unblind(user=manager, study=study, reason="Welfare review of dish deaths")
+    study.refresh_from_db()
+    assert (study.unblinded_by, study.unblind_reason) == (manager, "Welfare review of dish deaths")
+    latest = study.history.latest("history_date")
+    assert latest.history_user == manager and "Welfare review of dish deaths" in latest.history_change_reason
 
 
 def test_exclude_and_void_need_reasons_and_void_frees_the_exposure(setup, researcher):
