@@ -727,7 +727,8 @@ class Attachment(Voidable):
         ordering = ["uploaded_at"]
 
     def __str__(self):
-        return f"{self.name} ({self.sha256[:12]}…)"
+        # Not the file's name: the operator's name may name the condition, and titles and histories show this.
+        return f"File {self.pk} ({self.sha256[:12]}…)"
 
     def get_absolute_url(self):
         return reverse("experiments:attachment", args=[self.pk])
