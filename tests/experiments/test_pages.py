@@ -339,6 +339,26 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
             b"".join(response.streaming_content) if response.streaming else response.content  # a CSV reads as it streams
 
 
+@pytest.mark.parametrize("n", [1, 4])
+def test_blinded_page_query_counts_do_not_grow_with_the_data(client, manager, researcher, protocol, technician,
+                                                             django_assert_max_num_queries, n):
+    # The pooled preview, the masked CSV and the pooled chart ask the blinding rule per trial without a query.
+    tank = make_stocked_tank(estimate=5000, reserve=0, user=technician)
+    study = _filled_study(researcher, protocol, tank, n, code=f"qb-{n}")
+    study.blinded = True
+    study.save()
+    client.force_login(manager)
+    pages = {study.get_absolute_url(): 5, reverse("experiments:study-csv", args=[study.code]): 5,
+             reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
+             reverse("experiments:study-chart-csv", args=[study.code, "km"]): 5,
+             Trial.objects.filter(study=study).first().get_absolute_url(): 7}
+    for url, limit in pages.items():
+        with django_assert_max_num_queries(limit):
+            response = client.get(url)
+            assert response.status_code == 200, url
+            b"".join(response.streaming_content) if response.streaming else response.content
+
+
 def test_booking_form_names_an_impossible_number(client, researcher, protocol, tank):
     client.force_login(researcher)
     response = client.post(reverse("experiments:booking-new"), {

@@ -158,6 +158,18 @@ def test_override_deviation_of_a_blinded_study_names_the_limit_but_not_the_value
     assert deviation.evidence[0]["reason"].startswith("hidden while study")
 
 
+def test_override_deviation_of_a_blinded_study_does_not_name_a_stimulus_limit(researcher, manager, protocol):
+    # A dose or irradiance limit would tell every reader of the deviation that the trial was a light condition.
+    cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
+    study = make_study(user=researcher, protocol=protocol, replicates=3, blinded=True)
+    record(study, cohort, manager, at=days_ago(9), irradiance=5.0, duration=30,  # 150 mJ/cm² > 100 per exposure
+           override_reason="Dose step agreed with the welfare officer")
+    deviation = Deviation.objects.get()
+    assert "a stimulus limit (values hidden while study" in deviation.summary
+    assert "dose" not in deviation.summary.lower() and "dose" not in str(deviation.evidence).lower()
+    assert deviation.evidence[0]["limits"] == ["a stimulus limit"]
+
+
 def test_a_second_override_on_the_same_cohort_adds_evidence_to_the_open_deviation(researcher, manager, protocol):
     cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
     study = make_study(user=researcher, protocol=protocol, replicates=3)
