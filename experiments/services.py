@@ -16,9 +16,10 @@ Races
     Under PostgreSQL's READ COMMITTED each statement after the lock sees the other's committed
     rows. SQLite has no row locks but serialises writers, and is not the multi-user database.
     `record_trial` locks the cohort row the same way, so two trials cannot both take its last
-    permitted exposure. `claim_slot` locks the study row, so of two operators claiming the same
-    slot at once one wins and the other is told to claim another; a partial unique constraint
-    (one active claim per slot) backs it up.
+    permitted exposure. `claim_slot` locks the study row (FOR NO KEY UPDATE, which does not hold
+    up trials being saved), so of two operators claiming the same slot at once one wins and the
+    other is told to claim another; a partial unique constraint (one active claim per slot) backs
+    it up. `record_trial` locks the slot's claim, so a manager releasing it waits for the trial.
 """
 from __future__ import annotations
 
@@ -386,7 +387,9 @@ def claim_slot(*, user, study: Study, slot: int, now: datetime | None = None) ->
     require_study_owner(user, study, "claim slots")
     now = now or timezone.now()
     with transaction.atomic():
-        study = Study.objects.select_for_update().get(pk=study.pk)  # serialises claims on this study
+        # Serialises claims on this study. NO KEY UPDATE (PostgreSQL): trials being saved meanwhile take a key-share
+        # lock on the study for their foreign key, which this does not block.
+        study = Study.objects.select_for_update(no_key=True).get(pk=study.pk)
         if study.slot(slot) is None:
             raise Refused(f"Slot {slot} is not in the allocation of study {study.code} (1–{len(study.allocation)}).")
         if study.is_locked:
@@ -427,7 +430,7 @@ def release_claim(*, user, claim: SlotClaim, reason: str, now: datetime | None =
     if not reason:
         raise Refused("Reason: a reason is required to release a claim.")
     with transaction.atomic():
-        study = Study.objects.select_for_update().get(pk=claim.study_id)
+        study = Study.objects.select_for_update(no_key=True).get(pk=claim.study_id)
         claim = SlotClaim.objects.select_for_update().get(pk=claim.pk)
         if not claim.is_active:
             raise Refused(f"{_slot_name(study, claim.slot)} of study {study.code} is not claimed any more.")
@@ -512,7 +515,6 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
                                       "outcomes empty and have another person score the trial."})
     with transaction.atomic():
         cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=cohort.pk)
-        study = Study.objects.select_for_update().select_related("protocol", "owner").get(pk=study.pk)  # vs claims
         protocol = Protocol.objects.prefetch_related("allowances").get(pk=cohort.protocol_id)
         if study.protocol_id != protocol.pk:
             raise Refused(f"Cohort {cohort.label} was drawn under protocol {protocol.reference}, but study "
@@ -559,7 +561,8 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
 
 
 def _require_claim(user, study: Study, slot: int) -> None:
-    claim = SlotClaim.objects.active().filter(study=study, slot=slot).select_related("claimed_by").first()
+    """The slot is `user`'s; the claim row stays locked to the end of the transaction, so a release waits."""
+    claim = SlotClaim.objects.select_for_update().active().filter(study=study, slot=slot).first()
     if claim is None:
         raise Refused(f"{_slot_name(study, slot)} of study {study.code} is not claimed: claim it first (\"I will run "
                       f"slot {slot}\"); its condition is shown to the operator who claims it.")
@@ -640,7 +643,9 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
     now = now or timezone.now()
     reason = (reason or "").strip()
     with transaction.atomic():
-        trial = Trial.objects.select_for_update().select_related("study", "cohort").get(pk=trial.pk)
+        # Only the trial row is locked (of=self): locking its study and cohort too could deadlock with a trial
+        # being recorded on the same cohort (record_trial holds the cohort and needs a key-share lock on the study).
+        trial = Trial.objects.select_for_update(of=("self",)).select_related("study", "cohort").get(pk=trial.pk)
         study = trial.study
         if trial.is_voided:
             raise Refused(f"{trial} is voided.")
