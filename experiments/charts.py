@@ -152,8 +152,11 @@ def km_chart(table: pd.DataFrame, *, order: Sequence[str] | None = None, window_
         for ax in axes[len(conditions):]:
             ax.axis("off")
         spare = axes[len(conditions)] if len(conditions) < len(axes) else None
-        note = KM_METHOD + (f" Grey line: the reference condition, {reference}." if reference in curves else
-                            f" The reference condition, {reference}, has no analysable trials yet." if reference else "")
+        if reference in curves:
+            note = KM_METHOD + f" Grey line: the reference condition, {reference}."
+        else:
+            note = KM_METHOD + (f" The reference condition, {reference}, has no analysable trials yet." if reference
+                                else "")
         if spare is not None:
             spare.text(0.0, 0.95, textwrap.fill(note, 42), fontsize=7.5, color="#444444", va="top",
                        transform=spare.transAxes)

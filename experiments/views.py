@@ -300,7 +300,8 @@ def study_new(request):
         seed = d["seed"] if d["seed"] is not None else random.SystemRandom().randrange(2**31)
         study = services.create_study(
             user=request.user, code=d["code"], title=d["title"], protocol=d["protocol"], conditions=d["conditions"],
-            reference_condition=d["reference_condition"], replicates=d["replicates"], method=d["method"], seed=seed, blinded=d["blinded"],
+            reference_condition=d["reference_condition"], replicates=d["replicates"], method=d["method"], seed=seed,
+            blinded=d["blinded"],
             observation_window_s=d["observation_window_s"], question=d["question"],
             exclusion_criteria=d["exclusion_criteria"], scorer_not_operator=d["scorer_not_operator"])
         messages.success(request, f"Study {study.code} created: {len(study.allocation)} trials allocated "
