@@ -11,17 +11,15 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 
 from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
-from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Override, Protocol, Study, Trial
+from . import blinding
+from .models import Allowance, Attachment, Booking, Cohort, Override, Protocol, SlotClaim, Study, Trial
 
-# What a trial of a study still blinded to the viewer must not show, as on the trial page:
-# the condition, and the stimulus with its settings and the values derived from them.
-BLINDED_TRIAL_FIELDS = frozenset({"condition", "replicate", "kind", *SETTING_FIELDS, "substance", "mechanical_note",
-                                  "dose_mj_cm2", "field_v_cm", "pulse_on_s", "train_s"})
-# The allocation (slot -> condition) is the key itself; the labels are hidden too, as on the study page.
-# The seed too: with the design (conditions x replicates) it rebuilds the allocation.
-BLINDED_STUDY_FIELDS = frozenset({"allocation", "conditions", "seed"})
-BLINDED_OVERRIDE_FIELDS = frozenset({"reason", "breaches"})  # they name the stimulus settings
-BLINDED = "blinded"
+# What a row must not show to a viewer blinded to it: experiments/blinding.py decides, as on the app's pages.
+BLINDED_TRIAL_FIELDS = blinding.HIDDEN_TRIAL_FIELDS
+BLINDED_STUDY_FIELDS = blinding.HIDDEN_STUDY_FIELDS
+BLINDED_OVERRIDE_FIELDS = blinding.HIDDEN_OVERRIDE_FIELDS
+BLINDED_ATTACHMENT_FIELDS = blinding.HIDDEN_ATTACHMENT_FIELDS
+BLINDED = blinding.BLINDED
 
 
 class AllowanceInline(NoDeleteMixin, admin.StackedInline):
@@ -55,20 +53,25 @@ class ReadOnlyAdmin(HistoryAdmin):
 
 
 class BlindedAdmin(ReadOnlyAdmin):
-    """Read-only pages that leave out `blinded_fields` while the row's study is blinded to the viewer.
+    """Read-only pages that leave out `blinded_fields` while the row is blinded to the viewer.
 
-    Uses Study.hides_conditions_from, the test the app's own pages use. The change page and the
-    history drop those fields; the list shows "blinded" in their columns; no list lookup, filter or
-    sort may use them (a count per condition would give the allocation away).
+    experiments/blinding.py decides, as for the app's own pages: managers and superusers are blinded
+    like everyone else; a trial's operator sees that trial. The change page and the history drop
+    those fields; the list shows "blinded" in their columns; no list lookup, filter or sort may use
+    them (a count per condition would give the allocation away).
     """
 
     blinded_fields: frozenset = frozenset()
 
-    def study_of(self, obj):
+    def trial_of(self, obj):
+        """The trial whose condition the row shows; None for a study (its allocation is hidden from everyone)."""
         raise NotImplementedError
 
     def hides(self, request, obj) -> bool:
-        return obj is not None and self.study_of(obj).hides_conditions_from(request.user)
+        if obj is None:
+            return False
+        trial = self.trial_of(obj)
+        return obj.is_blind if trial is None else not blinding.may_see_condition(request.user, trial)
 
     def get_fields(self, request, obj=None):
         fields = super().get_fields(request, obj)
@@ -103,8 +106,15 @@ class _BlindedHistoryHelper(HistoricalRecordContextHelper):
         return super().context_for_delta_changes(dataclasses.replace(delta, changes=kept))
 
 
+def _marked_blind(request, queryset, prefix: str = ""):
+    """Each row marked for the list columns (which Django calls with the row only), by the rule of
+    experiments/blinding.py as a filter."""
+    return queryset.annotate(blind_to_viewer=Case(When(blinding.visible_q(request.user, prefix), then=Value(False)),
+                                                  default=Value(True), output_field=BooleanField()))
+
+
 def _blindable(field: str, description: str):
-    """A list column that shows the field unless the row's study is blinded to the viewer."""
+    """A list column that shows the field unless the row is blinded to the viewer."""
     def column(self, obj):
         if obj.blind_to_viewer:
             return BLINDED
@@ -134,8 +144,8 @@ class StudyAdmin(BlindedAdmin):
     search_fields = ["code", "title"]
     blinded_fields = BLINDED_STUDY_FIELDS
 
-    def study_of(self, obj):
-        return obj
+    def trial_of(self, obj):
+        return None
 
 
 @admin.register(Trial)
@@ -149,17 +159,11 @@ class TrialAdmin(BlindedAdmin):
     kind_shown = _blindable("kind", "stimulus type")
     dose_shown = _blindable("dose_mj_cm2", "dose (mJ/cm²)")
 
-    def study_of(self, obj):
-        return obj.study
+    def trial_of(self, obj):
+        return obj
 
     def get_queryset(self, request):
-        # Marks each row for the list columns (which Django calls with the row only), by the
-        # same test as the pages: Study.hides_conditions_from. Studies are few; trials are many.
-        hidden = [s.pk for s in Study.objects.only("pk", "blinded", "unblinded_at", "owner")
-                  if s.hides_conditions_from(request.user)]
-        return super().get_queryset(request).select_related("study", "cohort").annotate(
-            blind_to_viewer=Case(When(study_id__in=hidden, then=Value(True)), default=Value(False),
-                                 output_field=BooleanField()))
+        return _marked_blind(request, super().get_queryset(request).select_related("study", "cohort"))
 
 
 @admin.register(Override)
@@ -167,10 +171,28 @@ class OverrideAdmin(BlindedAdmin):
     list_display = ["trial", "cohort", "recorded_by", "recorded_at", "deviation"]
     blinded_fields = BLINDED_OVERRIDE_FIELDS
 
-    def study_of(self, obj):
-        return obj.trial.study
+    def trial_of(self, obj):
+        return obj.trial
 
 
 @admin.register(Attachment)
-class AttachmentAdmin(ReadOnlyAdmin):
-    list_display = ["name", "trial", "kind", "sha256", "size_bytes", "uploaded_at"]
+class AttachmentAdmin(BlindedAdmin):
+    list_display = ["name_shown", "trial", "kind", "sha256", "size_bytes", "uploaded_at"]
+    blinded_fields = BLINDED_ATTACHMENT_FIELDS
+
+    def trial_of(self, obj):
+        return obj.trial
+
+    def get_queryset(self, request):
+        return _marked_blind(request, super().get_queryset(request).select_related("trial__study"), "trial__")
+
+    @admin.display(description="name")
+    def name_shown(self, obj):
+        return blinding.masked_name(obj) if obj.blind_to_viewer else obj.name
+
+
+@admin.register(SlotClaim)
+class SlotClaimAdmin(ReadOnlyAdmin):
+    """Who claimed which slot, when, and releases with their reasons (no condition: the allocation holds it)."""
+    list_display = ["study", "slot", "claimed_by", "claimed_at", "released_at", "released_by"]
+    list_filter = ["study"]

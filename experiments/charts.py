@@ -100,14 +100,16 @@ OVERLAY_MAX = 3  # more curves than this with bands become unreadable: draw one 
 
 
 def km_chart(table: pd.DataFrame, *, order: Sequence[str] | None = None, window_s: float | None = None,
-             title: str = "", labels: dict[str, str] | None = None, fmt: str = "svg") -> bytes:
+             title: str = "", labels: dict[str, str] | None = None, reference: str | None = None,
+             fmt: str = "svg") -> bytes:
     """Kaplan-Meier curves of the fraction of trials still clumped, by condition.
 
     `table` is the long form of analysis.kaplan_meier tables with a `condition` column
     (KM_TABLE_COLUMNS). Up to OVERLAY_MAX conditions share one panel; with more, each condition
-    gets its own panel with the first (reference) condition drawn in grey behind it, so that
-    bands do not pile up. `labels` adds text to a condition's legend entry or panel title (e.g.
-    its log-rank p against the reference).
+    gets its own panel with the `reference` condition drawn in grey behind it, so that bands do
+    not pile up (no grey line when the reference has no curve: never another condition instead).
+    `labels` adds text to a condition's legend entry or panel title (e.g. its log-rank p against
+    the reference).
     """
     if table.empty:
         return _empty("No scored trials yet.", fmt)
@@ -137,12 +139,11 @@ def km_chart(table: pd.DataFrame, *, order: Sequence[str] | None = None, window_
         fig = Figure(figsize=(3.3 * columns, 2.7 * rows_n + 0.6), layout="constrained")
         FigureCanvasAgg(fig)
         axes = fig.subplots(rows_n, columns, sharex=True, sharey=True, squeeze=False).ravel()
-        reference = conditions[0]
         for i, c in enumerate(conditions):
             ax = axes[i]
             ax.spines[["top", "right"]].set_visible(False)
             ax.grid(True, color="#e3e3e3", linewidth=0.6)
-            if i:
+            if reference in curves and c != reference:
                 _km_curve(ax, curves[reference], end, {"color": "#9a9a9a", "linestyle": "-"}, "", band=False,
                           linewidth=1.2)
             _km_curve(ax, curves[c], end, _style(i), "")
@@ -151,7 +152,11 @@ def km_chart(table: pd.DataFrame, *, order: Sequence[str] | None = None, window_
         for ax in axes[len(conditions):]:
             ax.axis("off")
         spare = axes[len(conditions)] if len(conditions) < len(axes) else None
-        note = KM_METHOD + f" Grey line: the reference condition, {reference}."
+        if reference in curves:
+            note = KM_METHOD + f" Grey line: the reference condition, {reference}."
+        else:
+            note = KM_METHOD + (f" The reference condition, {reference}, has no analysable trials yet." if reference
+                                else "")
         if spare is not None:
             spare.text(0.0, 0.95, textwrap.fill(note, 42), fontsize=7.5, color="#444444", va="top",
                        transform=spare.transAxes)

@@ -112,7 +112,8 @@ def load(*, seed: int, now, users: dict) -> dict:
 
     study = services.create_study(
         user=ravi, code="uv-dispersal-01", title="UV-A dose and the dispersal of blackworm clumps", protocol=main,
-        conditions=CONDITIONS, replicates=REPLICATES, method=Study.Method.BLOCK, seed=seed * 7919 + 31,
+        conditions=CONDITIONS, reference_condition=CONDITIONS[0], replicates=REPLICATES, method=Study.Method.BLOCK,
+        seed=seed * 7919 + 31,
         blinded=True, observation_window_s=WINDOW_S,
         question="Does a short UV-A pulse (365 nm) disperse clumps faster as the dose rises?",
         exclusion_criteria="Clump not formed within 15 min of acclimation; animals injured in handling.")
@@ -153,7 +154,9 @@ def load(*, seed: int, now, users: dict) -> dict:
             "clusters": _clusters(rng, None if censored else disperse_s, 10),
             "mortality_24h": 1 if rng.random() < 0.07 else 0, "note": "",
         }
-        result = services.record_trial(user=manager if reason else ravi, study=study, slot=entry["slot"],
+        operator = manager if reason else ravi
+        services.claim_slot(user=operator, study=study, slot=entry["slot"], now=run_at - timedelta(minutes=20))
+        result = services.record_trial(user=operator, study=study, slot=entry["slot"],
                                        cohort=cohort, values=values, override_reason=reason,
                                        now=min(now, run_at + timedelta(hours=25)))  # completed with the 24 h count
         overrides += bool(result.override)
@@ -175,7 +178,8 @@ def load(*, seed: int, now, users: dict) -> dict:
     # A small blinded electrical pilot, still running: two of six dishes done and scored blind.
     pilot = services.create_study(
         user=ravi, code="shock-pilot-01", title="Weak field pulses and clump dispersal (pilot)", protocol=main,
-        conditions=["sham", "field 1 V/cm", "field 2 V/cm"], replicates=2, method=Study.Method.SIMPLE,
+        conditions=["sham", "field 1 V/cm", "field 2 V/cm"], reference_condition="sham", replicates=2,
+        method=Study.Method.SIMPLE,
         seed=seed + 404, blinded=True, observation_window_s=WINDOW_S,
         question="Is a 1-2 V/cm pulse train enough to break a clump within 10 min?")
     pilot_booking = services.book(user=ravi, protocol=main, tank=tanks[4], animals=10, needed_on=today - timedelta(days=3),
@@ -193,6 +197,7 @@ def load(*, seed: int, now, users: dict) -> dict:
                           pulse_count=20, pulse_frequency_hz=2.0)
         else:
             values.update(kind=Stimulus.NONE)
+        services.claim_slot(user=ravi, study=pilot, slot=entry["slot"], now=values["run_at"] - timedelta(minutes=20))
         services.record_trial(user=ravi, study=pilot, slot=entry["slot"], cohort=pilot_cohort, values=values,
                               now=min(now, values["run_at"] + timedelta(minutes=15)))
 

@@ -1,9 +1,9 @@
 import django_filters
 from django import forms
-from django.db.models import Q
 
 from colonies.models import Tank
 
+from . import blinding
 from .models import Protocol, Stimulus, Trial
 
 
@@ -34,11 +34,7 @@ class LedgerFilter(django_filters.FilterSet):
         that picked them out would reveal the condition of a blinded study."""
         if not value:
             return queryset
-        user = getattr(self.request, "user", None)
-        visible = Q(study__blinded=False) | Q(study__unblinded_at__isnull=False)
-        if user is not None:
-            visible |= Q(study__owner_id=user.pk)
-        return queryset.filter(visible, kind=value)
+        return queryset.filter(blinding.visible_q(getattr(self.request, "user", None)), kind=value)
 
     def filter_overridden(self, queryset, name, value):
         return queryset.filter(override__isnull=False) if value else queryset

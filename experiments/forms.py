@@ -7,7 +7,7 @@ from colonies.validators import FUTURE_LEEWAY, MAX_TEXT, NamedErrorsMixin, check
 
 from . import filetypes, uploads
 from .allocation import BLOCK
-from .models import Attachment, Cohort, Protocol, Stimulus, Study, Trial
+from .models import LATE_OUTCOME_FIELDS, Attachment, Cohort, Protocol, Stimulus, Study, Trial
 from .validators import BOUNDS, MAX_BOOKING_AHEAD_DAYS, MAX_CONDITIONS, outside_message
 
 DATE = forms.DateInput(attrs={"type": "date"}, format="%Y-%m-%d")
@@ -147,7 +147,11 @@ class StudyForm(NamedErrorsMixin, forms.Form):
     protocol = forms.ModelChoiceField(queryset=Protocol.objects.none())
     question = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False, max_length=MAX_TEXT)
     conditions = forms.CharField(widget=forms.Textarea(attrs={"rows": 4}), max_length=MAX_TEXT,
-                                 help_text="One condition per line; the first is the reference (control).")
+                                 help_text="One condition per line.")
+    reference_condition = forms.CharField(
+        max_length=80, required=False, label="Reference condition",
+        help_text="The condition every other one is compared with (usually the control or sham); write it exactly "
+                  "as one of the lines above.")
     replicates = forms.IntegerField(
         min_value=1, max_value=200, initial=5, help_text="Trials (dishes) per condition.",
         error_messages={"min_value": "Replicates %(value)s is not possible: allowed range 1–200.",
@@ -164,7 +168,9 @@ class StudyForm(NamedErrorsMixin, forms.Form):
                                               label="Observation window (s)",
                                               help_text="Still clumped at the end: censored at the window.")
     exclusion_criteria = forms.CharField(widget=forms.Textarea(attrs={"rows": 2}), required=False, max_length=MAX_TEXT)
-    blinded = forms.BooleanField(required=False, initial=True, help_text="Scorers see a code, not the condition.")
+    blinded = forms.BooleanField(required=False, initial=True,
+                                 help_text="Until unblinding, only the operator of a trial sees its condition; you "
+                                           "too see codes and pooled figures.")
     scorer_not_operator = forms.BooleanField(
         required=False, initial=False, label="Scorer must not be the operator",
         help_text="The person who ran a trial knows its condition; tick to have someone else score every trial.")
@@ -190,6 +196,18 @@ class StudyForm(NamedErrorsMixin, forms.Form):
         if any(len(label) > 80 for label in labels):
             raise forms.ValidationError("Keep each condition label to 80 characters.")
         return labels
+
+    def clean(self):
+        data = super().clean()
+        labels = data.get("conditions")
+        if labels:
+            problem = Study(conditions=labels, reference_condition=(data.get("reference_condition") or "").strip()
+                            ).reference_problem()
+            if problem:
+                self.add_error("reference_condition", problem)
+            else:
+                data["reference_condition"] = (data.get("reference_condition") or "").strip()
+        return data
 
 
 def parse_clusters(text: str, animals: int | None) -> list[dict]:
@@ -294,8 +312,10 @@ class TrialForm(OutcomeFields):
     def __init__(self, *args, study: Study, slots: list[dict], cohorts, can_override: bool, **kwargs):
         super().__init__(*args, **kwargs)
         self.study = study
+        # Only the slots this operator claimed (views._open_slots): theirs to see and to record.
         self.fields["slot"].choices = [(s["slot"], f"#{s['slot']} · {s['code']} · {s['condition']} "
                                                    f"(replicate {s['replicate']})") for s in slots]
+        self.fields["slot"].help_text = "The slots you claimed; claim another open slot above to run it."
         self.fields["cohort"].queryset = cohorts
         self.fields["run_at"].initial = timezone.localtime().replace(second=0, microsecond=0)
         self.fields["kind"].widget.attrs["data-stimulus-kind"] = "1"
@@ -362,7 +382,13 @@ class TrialForm(OutcomeFields):
 
 
 class ScoreForm(OutcomeFields):
-    reason = reason_field(required=False, label="Reason for the correction", help_text="Required; kept in the history.",
+    """The outcomes of one trial; `late_only`: just the late ones (LATE_OUTCOME_FIELDS), as after unblinding.
+
+    A reason is required when a value already recorded changes (services.is_correction); entering a
+    value for the first time (the 24 h count the day after scoring) needs none.
+    """
+    reason = reason_field(required=False, label="Reason for the correction",
+                          help_text="Required when you change a value already recorded; kept in the history.",
                           error_messages={"required": "Give a reason for correcting the score."})
 
     class Meta:
@@ -370,19 +396,29 @@ class ScoreForm(OutcomeFields):
         fields = OUTCOME_FORM_FIELDS
         labels = {"censored": "Still clumped at the end of the window (censored)", "mortality_24h": "Dead at 24 h"}
 
-    def __init__(self, *args, **kwargs):
+    def __init__(self, *args, late_only: bool = False, **kwargs):
         super().__init__(*args, **kwargs)
-        self.fields["clusters_text"].initial = clusters_text(self.instance.clusters)
-        if self.instance.is_scored:
-            self.fields["reason"].required = True
+        self.late_only = late_only
+        if late_only:
+            for name in [n for n in self.fields if n not in LATE_OUTCOME_FIELDS and n != "reason"]:
+                del self.fields[name]
         else:
+            self.fields["clusters_text"].initial = clusters_text(self.instance.clusters)
+        recorded = self.instance.is_scored and not late_only or any(
+            getattr(self.instance, name) is not None for name in LATE_OUTCOME_FIELDS)
+        if not recorded:
             del self.fields["reason"]  # a first score needs no reason
 
     def clean_reason(self):
-        reason = self.cleaned_data["reason"].strip()
-        if not reason:
-            raise forms.ValidationError("Give a reason for correcting the score.")
-        return reason
+        return self.cleaned_data["reason"].strip()
+
+    def clean(self):
+        data = super().clean()
+        if "reason" in self.fields and not self.errors and not data.get("reason"):
+            from .services import is_correction, outcome_changes  # services import no forms
+            if is_correction(self.instance, outcome_changes(self.instance, self.outcome_values())):
+                self.add_error("reason", "Give a reason for correcting the score.")
+        return data
 
     def window(self) -> int:
         return self.instance.observation_window_s
@@ -395,6 +431,8 @@ class ScoreForm(OutcomeFields):
 
     def outcome_values(self) -> dict:
         data = self.cleaned_data
+        if self.late_only:
+            return {name: data.get(name) for name in LATE_OUTCOME_FIELDS}
         return {"aggregate_s": data.get("aggregate_s"), "disperse_s": data.get("disperse_s"),
                 "censored": bool(data.get("censored")), "mortality_24h": data.get("mortality_24h"),
                 "clusters": data.get("clusters") or []}

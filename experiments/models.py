@@ -7,6 +7,7 @@ history (django-simple-history); history_user comes from the request middleware 
 explicitly in services.py.
 """
 from django.conf import settings
+from django.core.exceptions import ValidationError
 from django.db import models
 from django.db.models import Q
 from django.urls import reverse
@@ -372,11 +373,14 @@ class Study(models.Model):
 
     code = models.SlugField(max_length=40, unique=True, help_text="Short name used in addresses and exports.")
     title = models.CharField(max_length=200)
-    owner = _user_fk(help_text="Holds the allocation key; the only person who may unblind.")
+    owner = _user_fk(help_text="Plans the study and unblinds it; blinded like everyone else until then.")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="studies")
     question = models.TextField(max_length=MAX_TEXT, blank=True, help_text="What the study asks; written before allocation.")
-    conditions = models.JSONField(default=list, help_text="Condition labels in order; the first is the reference "
-                                                          "(control) for the log-rank comparisons.")
+    conditions = models.JSONField(default=list, help_text="Condition labels in order.")
+    reference_condition = models.CharField(
+        max_length=80, blank=True,
+        help_text="The condition every other one is compared with (log-rank); one of the conditions. Required "
+                  "with two or more conditions.")
     replicates = models.PositiveIntegerField(default=DEFAULT_REPLICATES, validators=[Within("replicates")],
                                              help_text="Trials (dishes) per condition; the dish is the unit.")
     primary_outcome = models.CharField(max_length=200, default="Time to disperse (s), right-censored at the window")
@@ -389,7 +393,8 @@ class Study(models.Model):
     allocated_at = models.DateTimeField(null=True, blank=True)
     allocation = models.JSONField(default=list, blank=True,
                                   help_text="The realised allocation: slot, code, condition, replicate.")
-    blinded = models.BooleanField(default=True, help_text="Scorers see a code, not the condition, until unblinding.")
+    blinded = models.BooleanField(default=True, help_text="Until unblinding, everyone but a trial's operator sees a code, "
+                                                          "not its condition; the owner too.")
     scorer_not_operator = models.BooleanField(
         default=False, verbose_name="Scorer must not be the operator",
         help_text="The person who ran a trial (and so knows its condition) may not score it; another person does.")
@@ -414,13 +419,34 @@ class Study(models.Model):
     def get_absolute_url(self):
         return reverse("experiments:study-detail", args=[self.code])
 
+    def clean(self):
+        reference_problem = self.reference_problem()
+        if reference_problem:
+            raise ValidationError({"reference_condition": reference_problem})
+
+    def reference_problem(self) -> str:
+        """Why the reference condition is not valid for these conditions; "" when it is."""
+        labels = list(self.conditions or [])
+        if len(labels) < 2:
+            return ""
+        allowed = ", ".join(f"'{c}'" for c in labels)
+        if not self.reference_condition:
+            return f"Reference condition: required with {len(labels)} conditions; allowed values: {allowed}."
+        if self.reference_condition not in labels:
+            return (f"Reference condition '{self.reference_condition}' is not one of the study's conditions; "
+                    f"allowed values: {allowed}.")
+        return ""
+
     @property
     def is_blind(self) -> bool:
-        """True while condition labels are hidden from everyone but the owner."""
+        """True while the allocation is hidden (experiments/blinding.py says from whom: everyone but each trial's
+        operator, who sees only the trials they ran)."""
         return self.blinded and self.unblinded_at is None
 
     def hides_conditions_from(self, user) -> bool:
-        return self.is_blind and user.pk != self.owner_id
+        """Study-level: the allocation, the labels and analyses by condition; the same for every user, the
+        owner included. For one trial ask experiments.blinding.may_see_condition(user, trial)."""
+        return self.is_blind
 
     @property
     def is_locked(self) -> bool:
@@ -441,6 +467,11 @@ class TrialQuerySet(models.QuerySet):
     def analysable(self):
         return self.counting().filter(excluded_at__isnull=True, disperse_s__isnull=False)
 
+
+# Outcomes known only some time after the trial (the count of dead animals at 24 h). They stay recordable
+# once the study is unblinded and its other outcomes are locked; each has <name>_entered_at and
+# <name>_after_unblinding beside it, so that a value entered by someone who could know the condition is marked.
+LATE_OUTCOME_FIELDS = {"mortality_24h": "Dead at 24 h"}  # field -> label
 
 # Stimulus settings recorded on a trial: field -> the stimulus kinds it belongs to.
 SETTING_FIELDS = {
@@ -516,6 +547,11 @@ class Trial(Voidable):
                                 help_text="Cluster count and largest-cluster fraction at recorded times.")
     mortality_24h = models.PositiveIntegerField(null=True, blank=True, validators=[Within("mortality_24h")],
                                                 help_text="Dead animals 24 h after the trial.")
+    mortality_24h_entered_at = models.DateTimeField(null=True, blank=True, editable=False,
+                                                    help_text="When the 24 h count was entered.")
+    mortality_24h_after_unblinding = models.BooleanField(
+        default=False, editable=False,
+        help_text="The 24 h count was entered after the study was unblinded, by someone who could know the condition.")
     scored_at = models.DateTimeField(null=True, blank=True)
     scored_by = _user_fk(null=True, blank=True)
     excluded_at = models.DateTimeField(null=True, blank=True)
@@ -542,6 +578,8 @@ class Trial(Voidable):
                                    name="trial_mortality_not_above_animals"),
             models.CheckConstraint(condition=Q(excluded_at__isnull=True) | ~Q(exclusion_reason=""),
                                    name="trial_exclusion_has_reason"),
+            models.CheckConstraint(condition=Q(mortality_24h_after_unblinding=False)
+                                   | Q(mortality_24h_entered_at__isnull=False), name="trial_late_entry_has_time"),
             *[models.CheckConstraint(condition=within_q(f), name=f"trial_{f}_bounds") for f in BOUNDED_TRIAL_FIELDS],
         ]
         indexes = [
@@ -601,6 +639,48 @@ class Trial(Voidable):
         return f"{self.get_kind_display()}: " + " ".join(p for p in parts if p) if parts else self.get_kind_display()
 
 
+class SlotClaimQuerySet(models.QuerySet):
+    def active(self):
+        return self.filter(released_at__isnull=True)
+
+
+class SlotClaim(models.Model):
+    """An operator's "I will run slot N": only the claimant sees the slot's condition (to apply it) and
+    records its trial. A manager (or the claimant) releases a claim with a reason; the slot is open again."""
+
+    study = models.ForeignKey(Study, on_delete=models.PROTECT, related_name="claims")
+    slot = models.PositiveIntegerField(help_text="Position in the randomised run order.")
+    claimed_by = _user_fk()
+    claimed_at = models.DateTimeField(default=timezone.now)
+    released_at = models.DateTimeField(null=True, blank=True)
+    released_by = _user_fk(null=True, blank=True)
+    release_reason = models.TextField(max_length=MAX_TEXT, blank=True)
+    history = HistoricalRecords()
+
+    objects = SlotClaimQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["study_id", "slot", "claimed_at"]
+        constraints = [
+            # Two operators claiming the same slot at once: the second insert fails here (services.claim_slot).
+            models.UniqueConstraint(fields=["study", "slot"], condition=Q(released_at__isnull=True),
+                                    name="claim_one_active_per_slot"),
+            models.CheckConstraint(condition=Q(slot__gte=1), name="claim_slot_positive"),
+            models.CheckConstraint(condition=Q(released_at__isnull=True) | ~Q(release_reason=""),
+                                   name="claim_release_has_reason"),
+        ]
+
+    def __str__(self):
+        return f"Slot {self.slot} of {self.study.code} claimed by {self.claimed_by.get_username()}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:trial-new", args=[self.study.code])
+
+    @property
+    def is_active(self) -> bool:
+        return self.released_at is None
+
+
 class Override(models.Model):
     """A manager's decision to let a trial go beyond a protocol limit, with the reason; opens a deviation."""
 
@@ -647,7 +727,8 @@ class Attachment(Voidable):
         ordering = ["uploaded_at"]
 
     def __str__(self):
-        return f"{self.name} ({self.sha256[:12]}…)"
+        # Not the file's name: the operator's name may name the condition, and titles and histories show this.
+        return f"File {self.pk} ({self.sha256[:12]}…)"
 
     def get_absolute_url(self):
         return reverse("experiments:attachment", args=[self.pk])

@@ -16,9 +16,9 @@ from django.utils import timezone
 
 from colonies import exports
 
-from . import analysis, dose_response
+from . import analysis, blinding, dose_response
 from .charts import KM_TABLE_COLUMNS
-from .models import Trial
+from .models import LATE_OUTCOME_FIELDS, Trial
 
 # Tidy export: one row per trial, every setting, derived value and outcome. Units in the names.
 TIDY_COLUMNS = [
@@ -28,8 +28,10 @@ TIDY_COLUMNS = [
     "voltage_v", "electrode_gap_cm", "field_v_cm", "pulse_width_ms", "pulse_count", "pulse_frequency_hz",
     "pulse_on_s", "train_s", "temp_step_c", "temp_rate_c_min", "substance", "concentration_um", "mechanical_note",
     "aggregate_s", "observation_window_s", "disperse_s", "censored", "dispersed", "clusters", "mortality_24h",
-    "scored_by", "scored_at", "override_reason",
+    "mortality_24h_entered_at", "mortality_24h_after_unblinding", "scored_by", "scored_at", "override_reason",
 ]
+# What a row of a trial whose condition the reader may not see leaves out (experiments/blinding.py).
+BLINDED_COLUMNS = [c for c in TIDY_COLUMNS if c in blinding.HIDDEN_TRIAL_FIELDS or c in ("stimulus", "override_reason")]
 NUMERIC = ("arena_diameter_mm", "water_volume_ml", "water_temp_c", "light_lux", "acclimation_min", "wavelength_nm",
            "irradiance_mw_cm2", "duration_s", "dose_mj_cm2", "voltage_v", "electrode_gap_cm", "field_v_cm",
            "pulse_width_ms", "pulse_count", "pulse_frequency_hz", "pulse_on_s", "train_s", "temp_step_c",
@@ -48,9 +50,13 @@ def trial_status(t: Trial) -> str:
     return "scored" if t.is_scored else "awaiting score"
 
 
-def tidy_frame(trials: list[Trial]) -> pd.DataFrame:
+def tidy_frame(trials: list[Trial], user=None) -> pd.DataFrame:
     """One row per trial; trials need study, cohort__origin_tank, protocol, run_by, scored_by and
-    override loaded (select_related) so that this runs no query."""
+    override loaded (select_related) so that this runs no query.
+
+    With `user`, a trial whose condition that user may not see has BLINDED_COLUMNS blanked (the
+    condition and stimulus columns say "blinded"): the table as that person may read it.
+    """
     rows = []
     for t in trials:
         override = getattr(t, "override", None) if _has_override(t) else None
@@ -67,6 +73,12 @@ def tidy_frame(trials: list[Trial]) -> pd.DataFrame:
             "override_reason": override.reason if override else "",
         }
         row.update({name: getattr(t, name) for name in NUMERIC})
+        for name in LATE_OUTCOME_FIELDS:
+            row[f"{name}_entered_at"] = _when(getattr(t, f"{name}_entered_at"))
+            row[f"{name}_after_unblinding"] = getattr(t, f"{name}_after_unblinding")
+        if user is not None and not blinding.may_see_condition(user, t):
+            row.update({column: None for column in BLINDED_COLUMNS},
+                       condition=blinding.BLINDED, stimulus=blinding.BLINDED)
         rows.append(row)
     return pd.DataFrame(rows, columns=TIDY_COLUMNS)
 
@@ -96,6 +108,7 @@ class StudyAnalysis:
     conditions: list[ConditionRow]
     reference: str
     km_table: pd.DataFrame
+    no_comparison: str = ""  # why there is no comparison with the reference (it has no analysable trials)
     dose_groups: pd.DataFrame | None = None
     dose_fit: dose_response.DoseResponseFit | None = None
     dose_curve: pd.DataFrame | None = None
@@ -122,12 +135,21 @@ def km_table(frame: pd.DataFrame, order: list[str]) -> pd.DataFrame:
     return pd.concat(parts, ignore_index=True)
 
 
-def analyse(frame: pd.DataFrame, conditions: list[str]) -> StudyAnalysis:
+def analyse(frame: pd.DataFrame, conditions: list[str], *, reference: str) -> StudyAnalysis:
+    """Summaries by condition, each compared with `reference` (the study's explicit reference condition).
+
+    When the reference has no analysable trial there is no comparison, and `no_comparison` says
+    so; the comparison never moves to another condition.
+    """
     data = analysable(frame)
-    order = [c for c in conditions if c in set(data["condition"])] + \
-        [c for c in dict.fromkeys(data["condition"]) if c not in conditions]
-    reference = order[0] if order else (conditions[0] if conditions else "")
+    seen = set(data["condition"])
+    order = [reference] if reference in seen else []
+    order += [c for c in conditions if c in seen and c != reference] + \
+        [c for c in dict.fromkeys(data["condition"]) if c not in conditions and c != reference]
     ref_rows = data[data["condition"] == reference]
+    no_comparison = ""
+    if reference and ref_rows.empty and len(seen - {reference}):
+        no_comparison = f"reference condition '{reference}' has no analysable trials yet; no comparison"
     rows = []
     for condition in conditions + [c for c in order if c not in conditions]:
         sub = data[data["condition"] == condition]
@@ -142,9 +164,35 @@ def analyse(frame: pd.DataFrame, conditions: list[str]) -> StudyAnalysis:
             except ValueError as error:
                 row.logrank = {"error": str(error)}
         rows.append(row)
-    result = StudyAnalysis(rows, reference, km_table(data, order))
+    result = StudyAnalysis(rows, reference, km_table(data, order), no_comparison=no_comparison)
     _dose_response(data, result)
     return result
+
+
+POOLED = "all trials (pooled)"
+
+
+@dataclass
+class PooledPreview:
+    """What a blinded study shows before unblinding: counts and one Kaplan-Meier curve over every
+    analysable trial, conditions pooled, so nothing depends on which trial had which condition."""
+    n_recorded: int
+    n_voided: int
+    n_excluded: int
+    n_awaiting: int
+    summary: dict
+    km_table: pd.DataFrame
+
+
+def pooled_preview(frame: pd.DataFrame) -> PooledPreview:
+    data = analysable(frame)
+    status = frame["status"]
+    summary = analysis.condition_summary(data["disperse_s"].astype(float).to_numpy(),
+                                         data["dispersed"].astype(bool).to_numpy())
+    table = km_table(data.assign(condition=POOLED), [POOLED])
+    return PooledPreview(n_recorded=int((status != "voided").sum()), n_voided=int((status == "voided").sum()),
+                         n_excluded=int((status == "excluded").sum()), n_awaiting=int((status == "awaiting score").sum()),
+                         summary=dict(summary), km_table=table)
 
 
 def dose_groups(data: pd.DataFrame) -> pd.DataFrame:
@@ -223,11 +271,12 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
 
     `every` holds every counting trial of the cohorts in `shown` (so a date filter does not
     restart the count); both need study loaded, `shown` also cohort, protocol and override.
-    A trial of a study blinded to `user` shows its code, not its stimulus, settings, dose or
-    override reason; its cohort's cumulative dose is hidden too, since differences of running
-    totals (or the total less the visible doses) would give the hidden dose back.
+    A trial whose condition `user` may not see (experiments/blinding.py) shows its code, not its
+    stimulus, settings, dose or override reason; its cohort's cumulative dose is hidden too, since
+    differences of running totals (or the total less the visible doses) would give the hidden
+    dose back.
     """
-    blind = {t.pk for t in [*every, *shown] if t.study.hides_conditions_from(user)}
+    blind = {t.pk for t in [*every, *shown] if not blinding.may_see_condition(user, t)}
     blind_cohorts = {t.cohort_id for t in [*every, *shown] if t.pk in blind}
     running: dict[int, dict] = {}
     by_trial: dict[int, dict] = {}
@@ -277,17 +326,18 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
 CSV_OPTIONS = {"quoting": csv.QUOTE_MINIMAL, "float_format": "%.6g"}
 
 
-def tidy_csv(trials) -> Iterator[str]:
-    """The tidy table of a queryset of trials (ordered; TRIAL_RELATED loaded), CHUNK trials at a time."""
-    frames = (tidy_frame(chunk) for chunk in exports.batches(trials.iterator(chunk_size=exports.CHUNK)))
+def tidy_csv(trials, user) -> Iterator[str]:
+    """The tidy table of a queryset of trials (ordered; TRIAL_RELATED loaded), CHUNK trials at a time, as
+    `user` may read it (tidy_frame)."""
+    frames = (tidy_frame(chunk, user) for chunk in exports.batches(trials.iterator(chunk_size=exports.CHUNK)))
     return exports.frames_text(frames, TIDY_COLUMNS, **CSV_OPTIONS)
 
 
 def every_exposure(cohort_ids) -> list[Trial]:
     """Every counting trial of the cohorts, as `ledger_rows` needs them for running totals."""
     return list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).select_related("study")
-                .only("pk", "cohort_id", "run_at", "dose_mj_cm2", "study__blinded", "study__unblinded_at",
-                      "study__owner"))
+                .only("pk", "cohort_id", "run_at", "run_by_id", "dose_mj_cm2", "study__blinded",
+                      "study__unblinded_at"))
 
 
 def ledger_csv(shown, user) -> Iterator[str]:

@@ -16,7 +16,10 @@ Races
     Under PostgreSQL's READ COMMITTED each statement after the lock sees the other's committed
     rows. SQLite has no row locks but serialises writers, and is not the multi-user database.
     `record_trial` locks the cohort row the same way, so two trials cannot both take its last
-    permitted exposure.
+    permitted exposure. `claim_slot` locks the study row (FOR NO KEY UPDATE, which does not hold
+    up trials being saved), so of two operators claiming the same slot at once one wins and the
+    other is told to claim another; a partial unique constraint (one active claim per slot) backs
+    it up. `record_trial` locks the slot's claim, so a manager releasing it waits for the trial.
 """
 from __future__ import annotations
 
@@ -26,7 +29,7 @@ from datetime import date, datetime, timedelta
 from datetime import timezone as dt_timezone
 
 from django.core.exceptions import PermissionDenied, ValidationError
-from django.db import transaction
+from django.db import IntegrityError, transaction
 from django.db.models import DateTimeField, FloatField, IntegerField, OuterRef, Subquery, Sum, Value
 from django.db.models.functions import Cast, Coalesce, Greatest
 from django.utils import timezone
@@ -38,9 +41,9 @@ from colonies.roles import MANAGER, has_role
 from colonies.validators import FUTURE_LEEWAY
 from vermilog.lab_time import lab_date, lab_moment
 
-from . import allocation, limits, stimulus
-from .models import (LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort, Override, Protocol,
-                     Stimulus, Study, Trial)
+from . import allocation, blinding, limits, stimulus
+from .models import (LATE_OUTCOME_FIELDS, LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort,
+                     Override, Protocol, SlotClaim, Stimulus, Study, Trial)
 
 
 class Refused(Exception):
@@ -323,23 +326,38 @@ def require_study_owner(user, study: Study, action: str) -> None:
 
 
 def create_study(*, user, code: str, title: str, protocol: Protocol, conditions: list[str], replicates: int,
-                 method: str, seed: int, blinded: bool = True, observation_window_s: int = 600, question: str = "",
-                 exclusion_criteria: str = "", scorer_not_operator: bool = False) -> Study:
-    """The study and its realised allocation, written together."""
+                 method: str, seed: int, reference_condition: str = "", blinded: bool = True,
+                 observation_window_s: int = 600, question: str = "", exclusion_criteria: str = "",
+                 scorer_not_operator: bool = False) -> Study:
+    """The study and its realised allocation, written together.
+
+    With two or more conditions the reference condition (the one the others are compared with) is
+    required and must be one of them: ValidationError naming the field and the allowed values.
+    """
     plan = allocation.allocate(conditions, replicates, method, seed)
     study = Study(code=code, title=title, owner=user, protocol=protocol, conditions=[c.strip() for c in conditions],
+                  reference_condition=(reference_condition or "").strip(),
                   replicates=replicates, method=method, seed=seed, generator=allocation.GENERATOR,
                   allocated_at=timezone.now(), allocation=plan, blinded=blinded, scorer_not_operator=scorer_not_operator,
                   observation_window_s=observation_window_s, question=question, exclusion_criteria=exclusion_criteria)
+    problem = study.reference_problem()
+    if problem:
+        raise ValidationError({"reference_condition": problem})
     with transaction.atomic():
         return _save(study, user, "Study created and allocation generated")
 
 
+def may_unblind(user, study: Study) -> bool:
+    """The owner, when the trials are done; a manager who must see (a welfare question, say), with a reason."""
+    return user.pk == study.owner_id or has_role(user, MANAGER)
+
+
 def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> Study:
-    """Only the owner unblinds; outcomes are locked first (unblinding never precedes the lock)."""
+    """The owner or a manager unblinds, with a reason kept in the history; outcomes are locked first
+    (unblinding never precedes the lock), except the late ones (LATE_OUTCOME_FIELDS)."""
     reason = (reason or "").strip()
-    if user.pk != study.owner_id:
-        raise PermissionDenied("Only the study's owner may unblind it.")
+    if not may_unblind(user, study):
+        raise PermissionDenied("Only the study's owner or a manager may unblind it.")
     if not reason:
         raise Refused("Reason: a reason is required to unblind a study.")
     with transaction.atomic():
@@ -353,9 +371,81 @@ def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> S
 
 
 # ---------------------------------------------------------------------------------------------
+# Claims: "I will run slot N"
+# ---------------------------------------------------------------------------------------------
+def _slot_name(study: Study, slot: int) -> str:
+    entry = study.slot(slot)
+    return f"Slot {slot} ({entry['code']})" if entry else f"Slot {slot}"
+
+
+def claim_slot(*, user, study: Study, slot: int, now: datetime | None = None) -> SlotClaim:
+    """`user` will run `slot`: from now on only they see its condition and may record its trial.
+
+    Claiming a slot one already holds returns that claim. Refused when the slot does not exist,
+    has its trial, or is held by someone else (claim another open slot).
+    """
+    require_study_owner(user, study, "claim slots")
+    now = now or timezone.now()
+    with transaction.atomic():
+        # Serialises claims on this study. NO KEY UPDATE (PostgreSQL): trials being saved meanwhile take a key-share
+        # lock on the study for their foreign key, which this does not block.
+        study = Study.objects.select_for_update(no_key=True).get(pk=study.pk)
+        if study.slot(slot) is None:
+            raise Refused(f"Slot {slot} is not in the allocation of study {study.code} (1–{len(study.allocation)}).")
+        if study.is_locked:
+            raise Refused(f"Study {study.code} has locked outcomes; no more trials can be run.")
+        if study.trials.counting().filter(slot=slot).exists():
+            raise Refused(f"{_slot_name(study, slot)} of study {study.code} already has a trial.")
+        held = SlotClaim.objects.active().filter(study=study, slot=slot).select_related("claimed_by").first()
+        if held is not None and held.claimed_by_id == user.pk:
+            return held
+        if held is not None:
+            raise _claimed_by_another(study, held)
+        claim = SlotClaim(study=study, slot=slot, claimed_by=user, claimed_at=now)
+        try:
+            with transaction.atomic():
+                _save(claim, user, "Slot claimed")
+        except IntegrityError:  # the constraint caught a claim the lock did not (a database without row locks)
+            held = SlotClaim.objects.active().filter(study=study, slot=slot).select_related("claimed_by").first()
+            raise _claimed_by_another(study, held) from None
+        return claim
+
+
+def _claimed_by_another(study: Study, held: SlotClaim | None) -> Refused:
+    who = f"by {held.claimed_by.get_username()} at {lab_moment(held.claimed_at)}" if held else "by someone else"
+    return Refused(f"{_slot_name(study, held.slot if held else 0)} of study {study.code} was claimed {who}; "
+                   "claim another open slot.")
+
+
+def may_release_claim(user, claim: SlotClaim) -> bool:
+    return claim.claimed_by_id == user.pk or has_role(user, MANAGER)
+
+
+def release_claim(*, user, claim: SlotClaim, reason: str, now: datetime | None = None) -> SlotClaim:
+    """A stale claim (the operator is away, the dish could not be run) is released with a reason; the slot is open
+    again. A claim whose trial has been recorded stays: it is the record of who ran the slot."""
+    reason = (reason or "").strip()
+    if not may_release_claim(user, claim):
+        raise PermissionDenied("Only a manager or the operator who claimed the slot may release the claim.")
+    if not reason:
+        raise Refused("Reason: a reason is required to release a claim.")
+    with transaction.atomic():
+        study = Study.objects.select_for_update(no_key=True).get(pk=claim.study_id)
+        claim = SlotClaim.objects.select_for_update().get(pk=claim.pk)
+        if not claim.is_active:
+            raise Refused(f"{_slot_name(study, claim.slot)} of study {study.code} is not claimed any more.")
+        if study.trials.counting().filter(slot=claim.slot).exists():
+            raise Refused(f"{_slot_name(study, claim.slot)} of study {study.code} has its trial; the claim stays as "
+                          "the record of who ran it.")
+        claim.released_at, claim.released_by, claim.release_reason = now or timezone.now(), user, reason
+        return _save(claim, user, f"Claim released: {reason}")
+
+
+# ---------------------------------------------------------------------------------------------
 # Trials
 # ---------------------------------------------------------------------------------------------
 OUTCOME_FIELDS = ("aggregate_s", "disperse_s", "censored", "clusters", "mortality_24h")
+MAIN_OUTCOME_FIELDS = tuple(name for name in OUTCOME_FIELDS if name not in LATE_OUTCOME_FIELDS)
 
 
 def derive(trial: Trial) -> Trial:
@@ -436,6 +526,7 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
             raise Refused(f"Slot {slot} ({entry['code']}) of study {study.code} already has a trial.")
         if study.is_locked:
             raise Refused(f"Study {study.code} has locked outcomes; no more trials can be added.")
+        _require_claim(user, study, slot)
         trial = Trial(study=study, slot=slot, code=entry["code"], condition=entry["condition"],
                       replicate=entry["replicate"], cohort=cohort, protocol=protocol, run_by=user,
                       observation_window_s=study.observation_window_s, **values)
@@ -444,6 +535,9 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
         normalise_outcome(trial)
         if trial.disperse_s is not None:
             trial.scored_at, trial.scored_by = now, user
+        for name in LATE_OUTCOME_FIELDS:
+            if getattr(trial, name) is not None:
+                setattr(trial, f"{name}_entered_at", now)
         _check_order(trial, cohort, now)
         trial.full_clean()
         proposal = limits.Proposal(at=trial.run_at, animals=trial.animals, kind=trial.kind,
@@ -466,6 +560,16 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
         return TrialResult(trial, override, deviation)
 
 
+def _require_claim(user, study: Study, slot: int) -> None:
+    """The slot is `user`'s; the claim row stays locked to the end of the transaction, so a release waits."""
+    claim = SlotClaim.objects.select_for_update().active().filter(study=study, slot=slot).first()
+    if claim is None:
+        raise Refused(f"{_slot_name(study, slot)} of study {study.code} is not claimed: claim it first (\"I will run "
+                      f"slot {slot}\"); its condition is shown to the operator who claims it.")
+    if claim.claimed_by_id != user.pk:
+        raise _claimed_by_another(study, claim)
+
+
 def _open_deviation(override: Override, breaches: list[limits.Breach], now: datetime, user) -> Deviation:
     cohort = override.cohort
     severity = Deviation.Severity.MODERATE
@@ -479,13 +583,16 @@ def _open_deviation(override: Override, breaches: list[limits.Breach], now: date
     study = override.trial.study
     if study.is_blind:
         # Deviations are read by every role; values such as a dose would reveal the blinded condition.
-        details = [f"{b.limit} (values hidden while study {study.code} is blinded)" for b in breaches]
+        # The limit's name too, unless it holds for any stimulus (rest, exposures): a dose limit says "light".
+        details = [f"{blinding.neutral_limit(b.limit)} (values hidden while study {study.code} is blinded)"
+                   for b in breaches]
         reason = f"hidden while study {study.code} is blinded; see the trial after unblinding"
     summary = f"Protocol {override.protocol.reference} limit overridden for cohort {cohort.label}: " + "; ".join(details)
     finding = Finding(
         tank_id=cohort.origin_tank_id, rule=Deviation.Rule.PROTOCOL_LIMIT, severity=severity, summary=summary,
         evidence={"ref": f"trial:{override.trial_id}", "trial": override.trial_id, "override": override.pk,
-                  "protocol": override.protocol.reference, "limits": [b.limit for b in breaches],
+                  "protocol": override.protocol.reference,
+                  "limits": [blinding.neutral_limit(b.limit) if study.is_blind else b.limit for b in breaches],
                   "breaches": details, "reason": reason,
                   "manager": user.get_username(), "at": timezone.localtime(now).strftime("%Y-%m-%d %H:%M")},
         at=now, subject=cohort.subject,
@@ -495,32 +602,84 @@ def _open_deviation(override: Override, breaches: list[limits.Breach], now: date
                                               parameter="", subject=cohort.subject)
 
 
+@dataclass
+class OutcomeChanges:
+    """What a scoring would change: main outcomes, late outcomes entered for the first time, late ones corrected."""
+    main: list[str]
+    late_new: list[str]
+    late_changed: list[str]
+
+    @property
+    def late_only(self) -> bool:
+        """Only late outcomes change (the 24 h count entered the day after scoring, or after unblinding)."""
+        return not self.main and bool(self.late_new or self.late_changed)
+
+
+def outcome_changes(trial: Trial, values: dict) -> OutcomeChanges:
+    after = {name: values[name] for name in OUTCOME_FIELDS if name in values}
+    if after.get("censored"):
+        after["disperse_s"] = float(trial.observation_window_s)  # as normalise_outcome will
+    main = [n for n in MAIN_OUTCOME_FIELDS if n in after and after[n] != getattr(trial, n)]
+    late_new = [n for n in LATE_OUTCOME_FIELDS if after.get(n) is not None and getattr(trial, n) is None]
+    late_changed = [n for n in LATE_OUTCOME_FIELDS
+                    if n in after and getattr(trial, n) is not None and after[n] != getattr(trial, n)]
+    return OutcomeChanges(main, late_new, late_changed)
+
+
+def is_correction(trial: Trial, changes: OutcomeChanges) -> bool:
+    """Resubmitting a scored trial or changing a late count already recorded needs a reason; entering a late
+    count for the first time (the 24 h count the day after scoring) does not."""
+    first_late_entry = changes.late_new and not changes.main and not changes.late_changed
+    return bool((trial.is_scored and not first_late_entry) or changes.late_changed)
+
+
 def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None) -> Trial:
-    """Enter or correct the outcomes (blinded scorers see only the code); a correction needs a reason."""
+    """Enter or correct the outcomes (blinded scorers see only the code); a correction needs a reason.
+
+    Once the study is unblinded its outcomes are locked, except the late ones (LATE_OUTCOME_FIELDS,
+    the 24 h count): they stay recordable, and each one entered then is marked as entered after
+    unblinding, with its time.
+    """
     now = now or timezone.now()
     reason = (reason or "").strip()
     with transaction.atomic():
-        trial = Trial.objects.select_for_update().select_related("study", "cohort").get(pk=trial.pk)
+        # Only the trial row is locked (of=self): locking its study and cohort too could deadlock with a trial
+        # being recorded on the same cohort (record_trial holds the cohort and needs a key-share lock on the study).
+        trial = Trial.objects.select_for_update(of=("self",)).select_related("study", "cohort").get(pk=trial.pk)
+        study = trial.study
         if trial.is_voided:
             raise Refused(f"{trial} is voided.")
-        if trial.study.is_locked:
-            raise Refused(f"Study {trial.study.code} has locked outcomes; scores can no longer change.")
-        if trial.study.scorer_not_operator and trial.run_by_id == user.pk:
-            raise PermissionDenied(f"Scorer: you ran {trial.code}, and study {trial.study.code} requires that the "
+        changes = outcome_changes(trial, values)
+        if study.is_locked and not changes.late_only:
+            raise Refused(f"Study {study.code} has locked outcomes; scores can no longer change. Only late outcomes "
+                          f"({late_outcome_labels()}) can still be entered, marked as entered after unblinding.")
+        if study.scorer_not_operator and trial.run_by_id == user.pk:
+            raise PermissionDenied(f"Scorer: you ran {trial.code}, and study {study.code} requires that the "
                                    "scorer is not the operator; another person scores it.")
-        correcting = trial.is_scored
-        if correcting:
-            require_study_owner(user, trial.study, "correct scores")
+        correcting = is_correction(trial, changes)
+        if correcting or trial.is_scored:
+            require_study_owner(user, study, "correct scores")
         if correcting and not reason:
             raise Refused(f"{trial} is already scored: give a reason to correct the score.")
-        for name in OUTCOME_FIELDS:
-            if name in values:
-                setattr(trial, name, values[name])
+        for name in changes.main + changes.late_new + changes.late_changed:
+            setattr(trial, name, values[name])
         normalise_outcome(trial)
         _check_order(trial, trial.cohort, now)
         trial.full_clean()
-        trial.scored_at, trial.scored_by = now, user
-        return _save(trial, user, f"Outcome corrected: {reason}" if correcting else "Outcome scored")
+        if not changes.late_only:
+            trial.scored_at, trial.scored_by = now, user
+        after_unblinding = study.unblinded_at is not None
+        for name in changes.late_new + changes.late_changed:
+            setattr(trial, f"{name}_entered_at", now)
+            setattr(trial, f"{name}_after_unblinding", after_unblinding)
+        what = "Outcome corrected" if correcting else ("Late outcome entered" if changes.late_only else "Outcome scored")
+        if after_unblinding and (changes.late_new or changes.late_changed):
+            what += " after unblinding"
+        return _save(trial, user, f"{what}: {reason}" if reason else what)
+
+
+def late_outcome_labels() -> str:
+    return ", ".join(label.lower() for label in LATE_OUTCOME_FIELDS.values())
 
 
 def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:

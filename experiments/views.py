@@ -11,20 +11,21 @@ from django.core.exceptions import PermissionDenied, ValidationError
 from django.db.models import Count, Q
 from django.http import FileResponse, Http404, HttpResponse
 from django.shortcuts import get_object_or_404, redirect, render
+from django.urls import reverse
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
 from colonies.export_stream import csv_response
 from colonies.exports import frame_chunks
-from colonies.models import Room
+from colonies.models import REASON_MAX_CHARS, Room
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
-from . import charts, filetypes, reports, services
+from . import blinding, charts, filetypes, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
                     ScoreForm, StudyForm, TrialForm, errors_text)
-from .models import Attachment, Booking, Cohort, Protocol, Stimulus, Study, Trial, cautions_for
+from .models import Attachment, Booking, Cohort, Protocol, SlotClaim, Stimulus, Study, Trial, cautions_for
 
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
@@ -299,7 +300,8 @@ def study_new(request):
         seed = d["seed"] if d["seed"] is not None else random.SystemRandom().randrange(2**31)
         study = services.create_study(
             user=request.user, code=d["code"], title=d["title"], protocol=d["protocol"], conditions=d["conditions"],
-            replicates=d["replicates"], method=d["method"], seed=seed, blinded=d["blinded"],
+            reference_condition=d["reference_condition"], replicates=d["replicates"], method=d["method"], seed=seed,
+            blinded=d["blinded"],
             observation_window_s=d["observation_window_s"], question=d["question"],
             exclusion_criteria=d["exclusion_criteria"], scorer_not_operator=d["scorer_not_operator"])
         messages.success(request, f"Study {study.code} created: {len(study.allocation)} trials allocated "
@@ -315,16 +317,24 @@ def _study_trials(study):
 @require_GET
 @role_required(*READ)
 def study_detail(request, code):
+    """While the study is blind: trial codes, each trial's condition to its operator only, and pooled
+    figures (experiments/blinding.py); analyses by condition after unblinding."""
     study = _get_study(code)
     trials = _study_trials(study)
-    blind = study.hides_conditions_from(request.user)
-    ctx = {"study": study, "trials": trials, "blind": blind, "is_owner": request.user.pk == study.owner_id,
+    blind = study.is_blind
+    for t in trials:
+        t.shown = blinding.may_see_condition(request.user, t)
+    ctx = {"study": study, "trials": trials, "blind": blind, "any_shown": any(t.shown for t in trials),
+           "may_unblind": blind and has_role(request.user, *RUN) and services.may_unblind(request.user, study),
+           "is_owner": request.user.pk == study.owner_id,
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
            "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
            "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided)}
-    if not blind:
-        frame = reports.tidy_frame(trials)
-        result = reports.analyse(frame, study.conditions)
+    frame = reports.tidy_frame(trials)
+    if blind:
+        ctx["preview"] = reports.pooled_preview(frame)
+    else:
+        result = reports.analyse(frame, study.conditions, reference=study.reference_condition)
         ctx.update(result=result, n_analysed=len(reports.analysable(frame)),
                    allocation=study.allocation)
     return render(request, "experiments/study_detail.html", ctx)
@@ -347,13 +357,17 @@ def study_unblind(request, code):
     return redirect(study)
 
 
+BLINDED_ANALYSIS = "The study is blinded: analyses by condition appear after it is unblinded."
+
+
 def _analysis_for(request, code):
+    """The study, its tidy frame and its analysis by condition; no analysis (None) while the study is blind."""
     study = _get_study(code)
-    if study.hides_conditions_from(request.user):
-        raise PermissionDenied("The study is blinded: analyses by condition appear after its owner unblinds it.")
     trials = _study_trials(study)
     frame = reports.tidy_frame(trials)
-    return study, frame, reports.analyse(frame, study.conditions)
+    if study.is_blind:
+        return study, frame, None
+    return study, frame, reports.analyse(frame, study.conditions, reference=study.reference_condition)
 
 
 def _csv_response(frame, filename: str):
@@ -364,12 +378,11 @@ def _csv_response(frame, filename: str):
 @require_GET
 @role_required(*READ)
 def study_csv(request, code):
-    """One row per trial, read and sent a chunk of trials at a time."""
+    """One row per trial, read and sent a chunk of trials at a time; while the study is blind a trial's
+    condition and stimulus only on the rows of trials the reader ran."""
     study = _get_study(code)
-    if study.hides_conditions_from(request.user):
-        raise PermissionDenied("The study is blinded: analyses by condition appear after its owner unblinds it.")
     trials = study.trials.select_related(*TRIAL_RELATED).order_by("slot", "pk")
-    return csv_response(reports.tidy_csv(trials), f"{study.code}-trials.csv")
+    return csv_response(reports.tidy_csv(trials, request.user), f"{study.code}-trials.csv")
 
 
 CHARTS = ("km", "dose")
@@ -381,12 +394,20 @@ def study_chart(request, code, kind, fmt):
     if kind not in CHARTS or fmt not in charts.FORMATS:
         raise Http404("Unknown chart.")
     study, frame, result = _analysis_for(request, code)
-    if kind == "km":
+    if result is None and kind != "km":
+        raise PermissionDenied(BLINDED_ANALYSIS)
+    if result is None:
+        body = charts.km_chart(reports.pooled_preview(frame).km_table, order=[reports.POOLED],
+                               window_s=study.observation_window_s, fmt=fmt,
+                               title=f"Clump dispersal, all trials pooled · {study.code} (blinded)")
+    elif kind == "km":
         labels = {r.condition: f"log-rank p = {r.logrank['p']:.2g}" for r in result.conditions
                   if r.logrank and "p" in r.logrank}
+        versus = f"no comparison: {result.no_comparison.split(';')[0]}" if result.no_comparison else \
+            f"log-rank vs {result.reference}"
         body = charts.km_chart(result.km_table, order=[c.condition for c in result.conditions],
-                               window_s=study.observation_window_s, labels=labels, fmt=fmt,
-                               title=f"Clump dispersal by condition · {study.code} (log-rank vs {result.reference})")
+                               window_s=study.observation_window_s, labels=labels, reference=result.reference,
+                               fmt=fmt, title=f"Clump dispersal by condition · {study.code} ({versus})")
     else:
         if not result.varies_dose:
             raise Http404("This study does not vary the light dose.")
@@ -415,6 +436,10 @@ def study_chart_csv(request, code, kind):
     if kind not in CHARTS:
         raise Http404("Unknown chart.")
     study, frame, result = _analysis_for(request, code)
+    if result is None and kind != "km":
+        raise PermissionDenied(BLINDED_ANALYSIS)
+    if result is None:
+        return _csv_response(reports.pooled_preview(frame).km_table, f"{study.code}-km-pooled.csv")
     if kind == "km":
         return _csv_response(result.km_table, f"{study.code}-km.csv")
     if not result.varies_dose:
@@ -425,13 +450,27 @@ def study_chart_csv(request, code, kind):
 # ---------------------------------------------------------------------------------------------
 # Trials
 # ---------------------------------------------------------------------------------------------
-def _open_slots(study) -> list[dict]:
+def _open_slots(study, user) -> list[dict]:
+    """Every slot without a trial, in run order, with its active claim; its condition and replicate only
+    where `user` may see them (blinding.may_see_slot: the claimant, or an unblinded study). Two queries."""
     taken = set(study.trials.counting().values_list("slot", flat=True))
-    return [s for s in study.allocation if s["slot"] not in taken]
+    claims = {c.slot: c for c in study.claims.active().select_related("claimed_by")}
+    rows = []
+    for entry in study.allocation:
+        if entry["slot"] in taken:
+            continue
+        claim = claims.get(entry["slot"])
+        shown = blinding.may_see_slot(user, study, claim)
+        rows.append({"slot": entry["slot"], "code": entry["code"], "claim": claim,
+                     "mine": claim is not None and claim.claimed_by_id == user.pk,
+                     "condition": entry["condition"] if shown else None,
+                     "replicate": entry["replicate"] if shown else None})
+    return rows
 
 
-def _trial_page(request, study, form, status=200, refusal=None):
-    ctx = {"study": study, "form": form, "groups": form.groups(), "refusal": refusal,
+def _trial_page(request, study, form, slots, status=200, refusal=None):
+    ctx = {"study": study, "form": form, "groups": form.groups() if form else None, "refusal": refusal,
+           "slots": slots, "reason_max": REASON_MAX_CHARS,
            "caution_uv": cautions_for(Stimulus.UV), "caution_electrical": cautions_for(Stimulus.ELECTRICAL),
            "protocol_cautions": study.protocol.cautions(),
            "allowances": study.protocol.allowances.all(), "is_manager": has_role(request.user, MANAGER)}
@@ -442,27 +481,35 @@ def _trial_page(request, study, form, status=200, refusal=None):
 @role_required(*RUN)
 @once_per_submission
 def trial_new(request, code):
+    """Open slots by number and code; an operator claims one ("I will run slot N") and only then sees its
+    condition and the form to record it. Only the claimant records a slot."""
     study = _get_study(code)
     services.require_study_owner(request.user, study, "add trials")
-    slots = _open_slots(study)
+    slots = _open_slots(study, request.user)
     if not slots or study.is_locked:
         messages.info(request, f"Study {study.code} has no open slots.")
         return redirect(study)
+    mine = [s for s in slots if s["mine"]]
+    if not mine and request.method != "POST":
+        return _trial_page(request, study, None, slots)
     cohorts = Cohort.objects.filter(end="", protocol=study.protocol).select_related("origin_tank")
-    form = TrialForm(request.POST or None, study=study, slots=slots, cohorts=cohorts,
-                     can_override=has_role(request.user, MANAGER), initial={"kind": request.GET.get("kind")})
+    initial = {"kind": request.GET.get("kind")}
+    if request.GET.get("slot", "").isdigit():
+        initial["slot"] = int(request.GET["slot"])
+    form = TrialForm(request.POST or None, study=study, slots=mine, cohorts=cohorts,
+                     can_override=has_role(request.user, MANAGER), initial=initial)
     if request.method != "POST":
-        return _trial_page(request, study, form)
+        return _trial_page(request, study, form, slots)
     if not form.is_valid():
         messages.error(request, "Nothing was saved. Correct the fields marked below.")
-        return _trial_page(request, study, form, status=400)
+        return _trial_page(request, study, form, slots, status=400)
     try:
         result = services.record_trial(user=request.user, study=study, slot=form.cleaned_data["slot"],
                                        cohort=form.cleaned_data["cohort"], values=form.trial_values(),
                                        override_reason=form.cleaned_data.get("override_reason", ""))
     except services.LimitRefused as refusal:
         messages.error(request, "Nothing was saved: a protocol limit stands in the way.")
-        return _trial_page(request, study, form, status=409, refusal=refusal)
+        return _trial_page(request, study, form, slots, status=409, refusal=refusal)
     except (services.Refused, ValidationError) as error:
         if isinstance(error, ValidationError) and hasattr(error, "error_dict"):
             for field, errors in error.message_dict.items():
@@ -470,7 +517,7 @@ def trial_new(request, code):
         else:
             messages.error(request, _error_text(error))
         messages.error(request, "Nothing was saved.")
-        return _trial_page(request, study, form, status=400)
+        return _trial_page(request, study, form, slots, status=400)
     trial = result.trial
     if result.override:
         messages.warning(request, f"Trial {trial.code} saved with your override; deviation #{result.deviation.pk} "
@@ -480,6 +527,40 @@ def trial_new(request, code):
     return redirect(trial)
 
 
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def slot_claim(request, code, slot):
+    study = _get_study(code)
+    try:
+        services.claim_slot(user=request.user, study=study, slot=slot)
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+        return redirect("experiments:trial-new", study.code)
+    messages.success(request, f"You claimed slot {slot}: its condition is shown to you, and only you record it.")
+    return redirect(f"{reverse('experiments:trial-new', args=[study.code])}?slot={slot}")
+
+
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def slot_release(request, code, slot):
+    study = _get_study(code)
+    claim = get_object_or_404(SlotClaim.objects.active().select_related("study", "claimed_by"), study=study, slot=slot)
+    if not services.may_release_claim(request.user, claim):
+        raise PermissionDenied("Only a manager or the operator who claimed the slot may release the claim.")
+    form = ReasonForm(request.POST)
+    if not form.is_valid():
+        messages.error(request, _reason_problem(form, "Reason: give a reason to release the claim; nothing was changed."))
+        return redirect("experiments:trial-new", study.code)
+    try:
+        services.release_claim(user=request.user, claim=claim, reason=form.cleaned_data["reason"])
+        messages.success(request, f"Claim on slot {slot} released; the slot is open again.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    return redirect("experiments:trial-new", study.code)
+
+
 @require_GET
 @role_required(*READ)
 def trial_detail(request, pk):
@@ -487,15 +568,28 @@ def trial_detail(request, pk):
 
 
 def _trial_detail_page(request, trial, attachment_form=None, status=200):
-    blind = trial.study.hides_conditions_from(request.user)
-    ctx = {"trial": trial, "blind": blind, "attachments": trial.attachments.current().select_related("uploaded_by"),
+    blind = not blinding.may_see_condition(request.user, trial)
+    attachments = list(trial.attachments.current().select_related("uploaded_by"))
+    for a in attachments:
+        a.trial = trial
+        a.shown_name = blinding.masked_name(a) if blind else a.name
+    ctx = {"trial": trial, "blind": blind, "attachments": attachments, "late_mode": _score_mode(request.user, trial),
            "attachment_form": attachment_form or AttachmentForm(), "reason_form": ReasonForm(), "can_run": has_role(request.user, *RUN),
            "may_set_aside": has_role(request.user, *RUN) and _may_set_aside(request.user, trial),
            "may_attach": has_role(request.user, *RUN) and services.may_change_study(request.user, trial.study),
-           "may_score": has_role(request.user, *RUN) and _score_refusal(request.user, trial) is None,
+           "may_score": has_role(request.user, *RUN) and _score_refusal(request.user, trial) is None
+                        and _score_mode(request.user, trial) is not None,
            "cautions": [] if blind else trial.cautions(),
            "override": trial.override if reports._has_override(trial) else None}
     return render(request, "experiments/trial_detail.html", ctx, status=status)
+
+
+def _score_mode(user, trial) -> str | None:
+    """What the score page lets `user` enter: "all" outcomes, only the "late" ones (the 24 h count, once the
+    study is unblinded and its other outcomes locked), or None. A scored trial is the owner's or a manager's."""
+    if trial.is_voided or (trial.is_scored and not services.may_change_study(user, trial.study)):
+        return None
+    return "late" if trial.study.is_locked else "all"
 
 
 def _score_refusal(user, trial) -> str | None:
@@ -517,7 +611,7 @@ def trial_score(request, pk):
     refusal = _score_refusal(request.user, trial)
     if refusal:
         raise PermissionDenied(refusal)
-    form = ScoreForm(request.POST or None, instance=trial)
+    form = ScoreForm(request.POST or None, instance=trial, late_only=_score_mode(request.user, trial) == "late")
     if request.method == "POST" and form.is_valid():
         try:
             services.score_trial(user=request.user, trial=trial, values=form.outcome_values(),
@@ -525,7 +619,8 @@ def trial_score(request, pk):
         except (services.Refused, ValidationError) as error:
             messages.error(request, "Nothing was saved: " + _error_text(error))
             return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=400)
-        messages.success(request, f"Score for {trial.code} saved.")
+        messages.success(request, f"Score for {trial.code} saved." if not trial.study.is_locked else
+                         f"Late outcome for {trial.code} saved, marked as entered after unblinding.")
         return redirect(trial)
     status = 400 if request.method == "POST" else 200
     return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=status)
@@ -582,13 +677,15 @@ def attachment_add(request, pk):
 @role_required(*READ)
 def attachment(request, pk):
     # Photos and videos carry the code, not the condition: blinded scorers need them.
-    item = get_object_or_404(Attachment.objects.current(), pk=pk)
+    item = get_object_or_404(Attachment.objects.current().select_related("trial__study"), pk=pk)
+    # ... but the operator's file name may name the condition: others get the code and the file's number.
+    name = item.name if blinding.may_see_condition(request.user, item.trial) else blinding.masked_name(item)
     handle = item.file.open("rb")
     file_type = filetypes.sniff(handle.read(filetypes.SNIFF_BYTES))
     handle.seek(0)
     # Served as the type its content shows (never as HTML or script), always as a download.
     content_type = filetypes.TYPES[file_type][1] if file_type else "application/octet-stream"
-    return FileResponse(handle, as_attachment=True, filename=item.name, content_type=content_type)
+    return FileResponse(handle, as_attachment=True, filename=name, content_type=content_type)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -36,8 +36,8 @@ def lab(transactional_db):
     Allowance.objects.create(protocol=protocol, kind=Stimulus.UV, wavelength_min_nm=350, wavelength_max_nm=400,
                              max_irradiance_mw_cm2=5, max_duration_s=60, max_dose_mj_cm2=100)
     study = services.create_study(user=researcher, code="browser-uv", title="Browser UV study", protocol=protocol,
-                                  conditions=["sham", "UV 20 mJ/cm²"], replicates=2, method="block", seed=11,
-                                  blinded=False)
+                                  conditions=["sham", "UV 20 mJ/cm²"], reference_condition="sham", replicates=2,
+                                  method="block", seed=11, blinded=False)
     return {"tank": tank, "study": study, "researcher": researcher}
 
 
@@ -68,6 +68,8 @@ def test_researcher_books_draws_records_a_trial_and_sees_it_on_the_study_page(pa
     page.goto(f"{live_server.url}/experiments/studies/browser-uv/")
     page.get_by_role("link", name="Record the next trial").click()
     uv_slot = next(s for s in lab["study"].allocation if s["condition"].startswith("UV"))
+    page.get_by_role("button", name=f"I will run slot {uv_slot['slot']}", exact=True).click()
+    expect(page.locator(".msg-success")).to_contain_text(f"You claimed slot {uv_slot['slot']}")
     page.get_by_label("Slot").select_option(str(uv_slot["slot"]))
     page.get_by_label("Cohort").select_option(label=cohort.label)
     page.get_by_label("Animals *").fill("10")

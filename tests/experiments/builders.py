@@ -61,7 +61,7 @@ def make_cohort(*, user, protocol=None, tank=None, animals: int = 10, at=None):
 def make_study(*, user, protocol, conditions=("sham", "UV low", "UV high"), replicates: int = 2, blinded=False,
                **overrides):
     fields = {"code": f"study-{next(_numbers)}", "title": "Test study", "method": "block", "seed": 20260101,
-              "observation_window_s": 600}
+              "observation_window_s": 600, "reference_condition": conditions[0] if len(conditions) > 1 else ""}
     fields.update(overrides)
     return services.create_study(user=user, protocol=protocol, conditions=list(conditions), replicates=replicates,
                                  blinded=blinded, **fields)
@@ -77,9 +77,12 @@ def uv_values(*, irradiance=2.0, duration=10.0, wavelength=365.0, at=None, **ove
     return values
 
 
-def record(study, cohort, user, *, slot=None, override_reason="", now=None, **values):
+def record(study, cohort, user, *, slot=None, override_reason="", now=None, claim=True, **values):
+    """Record a trial in `slot` (default: the first open one), claimed first by `user` unless `claim=False`."""
     taken = set(study.trials.counting().values_list("slot", flat=True))
     slot = slot or next(s["slot"] for s in study.allocation if s["slot"] not in taken)
+    if claim:
+        services.claim_slot(user=user, study=study, slot=slot)
     return services.record_trial(user=user, study=study, slot=slot, cohort=cohort, values=uv_values(**values),
                                  override_reason=override_reason, now=now)
 

@@ -31,8 +31,20 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     trial = record(study, cohort, researcher, at=days_ago(4)).trial
     attachment = services.add_attachment(user=researcher, trial=trial, kind="photo",
                                          upload=SimpleUploadedFile("a.png", PNG + b"png bytes"))
+    # Slot 2 claimed by the owner to record it (trial-new); slot 3 claimed, to be released; slot 4 open, to claim.
+    claims = {slot: services.claim_slot(user=researcher, study=study, slot=slot) for slot in (2, 3)}
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
-                           attachment=attachment)
+                           attachment=attachment, claims=claims)
+
+
+def _hand_over_slot_2(w, user):
+    """Only the claimant records a slot: a manager recording slot 2 takes the claim over first."""
+    from experiments import services
+    services.release_claim(user=user, claim=w.claims[2], reason="Handed over")
+    services.claim_slot(user=user, study=w.study, slot=2)
+
+
+PREPARE = {("experiments:trial-new", "post", "manager"): _hand_over_slot_2}
 
 
 URLS = {
@@ -52,6 +64,8 @@ URLS = {
     "experiments:study-chart": lambda w: reverse("experiments:study-chart", args=[w.study.code, "km", "svg"]),
     "experiments:study-chart-csv": lambda w: reverse("experiments:study-chart-csv", args=[w.study.code, "km"]),
     "experiments:trial-new": lambda w: reverse("experiments:trial-new", args=[w.study.code]),
+    "experiments:slot-claim": lambda w: reverse("experiments:slot-claim", args=[w.study.code, 4]),
+    "experiments:slot-release": lambda w: reverse("experiments:slot-release", args=[w.study.code, 3]),
     "experiments:trial-detail": lambda w: reverse("experiments:trial-detail", args=[w.trial.pk]),
     "experiments:trial-score": lambda w: reverse("experiments:trial-score", args=[w.trial.pk]),
     "experiments:trial-set-aside": lambda w: reverse("experiments:trial-set-aside", args=[w.trial.pk, "exclude"]),
@@ -75,10 +89,13 @@ POST_DATA = {
     "experiments:booking-draw": lambda w: {"count": 10},
     "experiments:cohort-end": lambda w: {"end": Cohort.End.DIED, "note": "found dead"},
     "experiments:study-new": lambda w: {"code": "new-study", "title": "New", "protocol": w.protocol.pk,
-                                        "conditions": "a\nb", "replicates": 2, "method": "block",
+                                        "conditions": "a\nb", "reference_condition": "a", "replicates": 2,
+                                        "method": "block",
                                         "observation_window_s": 600, "blinded": "on"},
     "experiments:study-unblind": lambda w: {"reason": "All scored"},
     "experiments:trial-new": _trial_post,
+    "experiments:slot-claim": lambda w: {},
+    "experiments:slot-release": lambda w: {"reason": "Operator away this week"},
     "experiments:trial-score": lambda w: {"disperse_s": "150", "aggregate_s": "200", "reason": "Misread the timer"},
     "experiments:trial-set-aside": lambda w: {"reason": "Clump never formed"},
     "experiments:attachment-add": lambda w: {"file": SimpleUploadedFile("b.png", PNG + b"more bytes"), "kind": "photo"},
@@ -98,12 +115,14 @@ ACCESS = [
     ("experiments:study-new", "get", RUN),
     ("experiments:study-new", "post", RUN),
     ("experiments:study-detail", "get", READ),
-    ("experiments:study-unblind", "post", OWNER),
-    ("experiments:study-csv", "get", OWNER),  # blinded: only the owner sees conditions
-    ("experiments:study-chart", "get", OWNER),
-    ("experiments:study-chart-csv", "get", OWNER),
+    ("experiments:study-unblind", "post", RUN),  # the owner, or a manager who must see
+    ("experiments:study-csv", "get", READ),  # blinded: conditions only on the reader's own trials
+    ("experiments:study-chart", "get", READ),  # blinded: pooled
+    ("experiments:study-chart-csv", "get", READ),
     ("experiments:trial-new", "get", RUN),
     ("experiments:trial-new", "post", RUN),
+    ("experiments:slot-claim", "post", RUN),
+    ("experiments:slot-release", "post", RUN),  # the claimant (here the owner) or a manager
     ("experiments:trial-detail", "get", READ),
     ("experiments:trial-score", "get", RUN),
     ("experiments:trial-score", "post", RUN),
@@ -120,7 +139,8 @@ WRONG_METHODS = [
     ("experiments:booking-draw", "get"), ("experiments:cohort-detail", "post"), ("experiments:cohort-end", "get"),
     ("experiments:study-new", "put"), ("experiments:study-detail", "post"), ("experiments:study-unblind", "get"),
     ("experiments:study-csv", "post"), ("experiments:study-chart", "post"), ("experiments:study-chart-csv", "post"),
-    ("experiments:trial-new", "delete"), ("experiments:trial-detail", "post"), ("experiments:trial-score", "put"),
+    ("experiments:trial-new", "delete"), ("experiments:slot-claim", "get"), ("experiments:slot-release", "get"),
+    ("experiments:trial-detail", "post"), ("experiments:trial-score", "put"),
     ("experiments:trial-set-aside", "get"), ("experiments:attachment-add", "get"), ("experiments:attachment", "post"),
     ("experiments:ledger", "post"), ("experiments:ledger-csv", "post"),
 ]
@@ -129,7 +149,7 @@ WRONG_METHODS = [
 def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
     return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Study, models.Trial,
-                                             models.Override, models.Attachment))
+                                             models.Override, models.Attachment, models.SlotClaim))
 
 
 def _request(client, world, name, method):
@@ -159,7 +179,10 @@ def test_anonymous_is_redirected_to_login_and_nothing_is_saved(client, world, na
 @pytest.mark.parametrize("persona", PERSONAS)
 @pytest.mark.parametrize("name,method,allowed", ACCESS, ids=[f"{n}-{m}" for n, m, _ in ACCESS])
 def test_role_is_allowed_or_forbidden(client, request, world, persona, name, method, allowed):
-    client.force_login(request.getfixturevalue(persona))
+    user = request.getfixturevalue(persona)
+    client.force_login(user)
+    if (name, method, persona) in PREPARE:
+        PREPARE[name, method, persona](world, user)
     before = _state()
     response = _request(client, world, name, method)
     if persona not in allowed:

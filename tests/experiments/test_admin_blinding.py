@@ -1,5 +1,6 @@
 """The back office keeps a blinded study blind: a manager reading trials, overrides and studies there
-sees no condition, stimulus or allocation until the owner unblinds, as on the app's own pages."""
+sees no condition, stimulus or allocation until the study is unblinded, as on the app's own pages; the
+manager who ran a trial sees that trial (experiments/blinding.py)."""
 import pytest
 from django.urls import reverse
 
@@ -20,14 +21,20 @@ def staff_manager(db):
 
 
 @pytest.fixture
-def blinded(researcher, staff_manager, protocol):
+def operator_manager(db):
+    """The manager who runs the second trial (with an override) and so knows its condition."""
+    return make_user("omar", role=MANAGER, is_staff=True)
+
+
+@pytest.fixture
+def blinded(researcher, operator_manager, protocol):
     cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
     study = make_study(user=researcher, protocol=protocol, conditions=CONDITIONS, replicates=2, blinded=True)
     first = record(study, cohort, researcher, at=days_ago(9), irradiance=2.0).trial
     # A settings correction made outside the app (the shell): the history's list of changes would show it.
     first.irradiance_mw_cm2, first._change_reason = SECRET_IRRADIANCE, "Meter recalibrated"
     first.save()
-    second = record(study, cohort, staff_manager, at=days_ago(8.9), irradiance=SECRET_IRRADIANCE,
+    second = record(study, cohort, operator_manager, at=days_ago(8.9), irradiance=SECRET_IRRADIANCE,
                     override_reason=OVERRIDE_REASON).trial  # too soon after the first: an override
     services.score_trial(user=researcher, trial=first, values={"disperse_s": 200, "censored": False},
                          reason="Re-read the video")  # a second version, so the history has changes
@@ -61,6 +68,17 @@ def test_manager_sees_no_condition_stimulus_or_allocation_of_a_blinded_study(cli
         assert _leaks(response.content.decode()) == [], url
     listing = client.get(_url("trial", "changelist")).content.decode()
     assert "blinded" in listing and trial.code in listing
+
+
+def test_the_operator_sees_the_trial_they_ran_and_no_other(client, operator_manager, blinded):
+    study, first, second = blinded
+    client.force_login(operator_manager)
+    own = client.get(_url("trial", "change", second.pk)).content.decode()
+    assert second.condition in own and "2.345" in own
+    other = client.get(_url("trial", "change", first.pk)).content.decode()
+    assert _leaks(other) == []
+    listing = client.get(_url("trial", "changelist")).content.decode()
+    assert listing.count(second.condition) == 1 and "blinded" in listing
 
 
 def test_the_same_pages_show_them_once_the_owner_unblinds(client, researcher, staff_manager, blinded):

@@ -1,4 +1,6 @@
 """Chart functions (experiments/charts.py): pure, tables in, SVG/PNG bytes out."""
+import re
+
 import pandas as pd
 import pytest
 
@@ -28,9 +30,19 @@ def test_km_chart_svg_has_axis_labels_with_units_and_okabe_ito_colours():
 
 
 def test_km_chart_with_many_conditions_uses_one_panel_each():
-    svg = charts.km_chart(FIVE, window_s=600, fmt="svg").decode()
+    svg = charts.km_chart(FIVE, window_s=600, reference="c0", fmt="svg").decode()
     assert svg.count("Fraction still clumped") == 2  # the left column of a 2 × 3 grid
     assert "Grey line: the reference condition, c0." in svg.replace("\n", " ") or "reference" in svg
+
+
+def test_km_panels_without_the_reference_draw_no_other_condition_in_its_place():
+    # The reference has no curve: no grey line at all (never c0 standing in for it), and the note says why.
+    with_reference = charts.km_chart(FIVE, window_s=600, reference="c0", fmt="svg").decode()
+    without = charts.km_chart(FIVE[FIVE["condition"] != "c9"], window_s=600, reference="c9", fmt="svg").decode()
+    assert with_reference.count("#9a9a9a") >= 4  # the grey reference line in each of the other four panels
+    assert "#9a9a9a" not in without
+    text = " ".join(re.findall(r"<!-- (.*?) -->", without))  # matplotlib writes each line of text as a comment
+    assert "The reference condition, c9, has no analysable trials yet." in text
 
 
 def test_charts_are_deterministic_and_png_is_png():

@@ -34,7 +34,7 @@ def test_demo_builds_a_meaningful_study(facility, seed):
     assert study.trials.count() == 30 and not study.is_blind
     trials = list(study.trials.select_related("study", "cohort__origin_tank", "protocol", "run_by", "scored_by",
                                               "override__recorded_by"))
-    result = reports.analyse(reports.tidy_frame(trials), study.conditions)
+    result = reports.analyse(reports.tidy_frame(trials), study.conditions, reference=study.reference_condition)
     assert result.dose_fit is not None and result.dose_fit.interval_method == "fieller"
     assert 3 < result.dose_fit.ec50 < 40
     assert all(r.logrank for r in result.conditions[1:])

@@ -27,6 +27,8 @@ FORMS = {
     "experiments:study-new": False,  # the study code is taken by the first
     "experiments:study-unblind": False,
     "experiments:trial-new": False,  # the slot is taken by the first
+    "experiments:slot-claim": False,  # claiming a slot one holds changes nothing
+    "experiments:slot-release": False,  # the claim is released by the first
     "experiments:trial-score": True,  # a second correction is a second history entry
     "experiments:trial-set-aside": False,
     "experiments:attachment-add": True,
@@ -107,7 +109,8 @@ PAGES = {
     "experiments:cohort-detail": (lambda w: w.cohort.get_absolute_url(), 1),
     "experiments:study-new": (lambda w: reverse("experiments:study-new"), 1),
     "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 1),
-    "experiments:trial-new": (lambda w: reverse("experiments:trial-new", args=[w.study.code]), 1),
+    # three open slots to claim, two claims to release, the trial form for the slots claimed
+    "experiments:trial-new": (lambda w: reverse("experiments:trial-new", args=[w.study.code]), 6),
     "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 3),
     "experiments:trial-score": (lambda w: reverse("experiments:trial-score", args=[w.trial.pk]), 1),
 }

@@ -11,12 +11,16 @@ from experiments.models import Booking, Cohort, Override, Stimulus, Trial
 from experiments.models import CAUTION_ELECTRICAL, CAUTION_UV
 from experiments.reports import LEDGER_COLUMNS, TIDY_COLUMNS
 from tests.experiments.builders import days_ago, make_cohort, make_stocked_tank, make_study, record, today
-from tests.factories import page_text
+from colonies.roles import MANAGER
+from tests.factories import make_user, page_text
 
 
 def _post_trial(client, study, cohort, **overrides):
-    data = {"slot": str(next(s["slot"] for s in study.allocation
-                             if not Trial.objects.counting().filter(study=study, slot=s["slot"]).exists())),
+    """Claim the first open slot ("I will run slot N"; nothing new if the client's user holds it) and record it."""
+    slot = next(s["slot"] for s in study.allocation
+                if not Trial.objects.counting().filter(study=study, slot=s["slot"]).exists())
+    client.post(reverse("experiments:slot-claim", args=[study.code, slot]))
+    data = {"slot": str(slot),
             "cohort": str(cohort.pk), "run_at": days_ago(2).strftime("%Y-%m-%dT%H:%M"), "vessel": "glass Petri dish",
             "animals": "10", "kind": "uv", "wavelength_nm": "365", "irradiance_mw_cm2": "2", "duration_s": "10",
             "aggregate_s": "240", "disperse_s": "130", "clusters_text": "60 2 0.8\n300 7 0.2"}
@@ -130,6 +134,10 @@ def test_limit_refusal_lists_the_breach_and_a_manager_overrides_it(client, resea
     assert "Rest since the last exposure of cohort" in text and "Only a manager may record an override" in text
     assert Trial.objects.count() == 1
     client.force_login(manager)
+    slot = 2  # the slot the researcher claimed and could not run (slot 1 has its trial)
+    released = client.post(reverse("experiments:slot-release", args=[study.code, slot]),
+                           {"reason": "Needs a manager's override; I run it"})
+    assert released.status_code == 302
     response = _post_trial(client, study, cohort, run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"),
                            override_reason="Second dish of the same pair; agreed with the welfare officer")
     assert response.status_code == 302
@@ -250,21 +258,26 @@ def test_tidy_csv_has_one_row_per_trial_with_settings_derived_values_and_outcome
     assert km.splitlines()[0] == "condition,time,at_risk,events,censored,survival,lower,upper"
 
 
-def test_blinded_study_shows_codes_not_conditions_to_others_until_unblinded(client, researcher, manager, bench):
+def test_blinded_study_shows_codes_not_conditions_to_all_but_the_operator_until_unblinded(
+        client, researcher, manager, bench):
+    # The owner (researcher) is blinded too; the manager ran the trial and sees its condition.
     cohort, study = bench
     study.blinded = True
     study.save()
-    trial = record(study, cohort, researcher, at=days_ago(9)).trial
-    client.force_login(manager)
+    trial = record(study, cohort, manager, at=days_ago(9)).trial
+    client.force_login(researcher)
     page = page_text(client.get(study.get_absolute_url()))
-    assert trial.code in page and trial.condition not in page
+    assert trial.code in page and trial.condition not in page and "all trials pooled" in page
     assert trial.condition not in page_text(client.get(trial.get_absolute_url()))
-    assert client.get(reverse("experiments:study-csv", args=[study.code])).status_code == 403
+    rows = list(csv.DictReader(io.StringIO(_streamed(client.get(reverse("experiments:study-csv", args=[study.code]))))))
+    assert (rows[0]["code"], rows[0]["condition"], rows[0]["stimulus"], rows[0]["dose_mj_cm2"]) == \
+        (trial.code, "blinded", "blinded", "")
     score = page_text(client.get(reverse("experiments:trial-score", args=[trial.pk])))
     assert trial.code in score and trial.condition not in score
+    client.force_login(manager)
+    assert trial.condition in page_text(client.get(trial.get_absolute_url()))
     client.force_login(researcher)
     client.post(reverse("experiments:study-unblind", args=[study.code]), {"reason": "All dishes scored"})
-    client.force_login(manager)
     assert trial.condition in page_text(client.get(study.get_absolute_url()))
 
 
@@ -326,6 +339,26 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
             b"".join(response.streaming_content) if response.streaming else response.content  # a CSV reads as it streams
 
 
+@pytest.mark.parametrize("n", [1, 4])
+def test_blinded_page_query_counts_do_not_grow_with_the_data(client, manager, researcher, protocol, technician,
+                                                             django_assert_max_num_queries, n):
+    # The pooled preview, the masked CSV and the pooled chart ask the blinding rule per trial without a query.
+    tank = make_stocked_tank(estimate=5000, reserve=0, user=technician)
+    study = _filled_study(researcher, protocol, tank, n, code=f"qb-{n}")
+    study.blinded = True
+    study.save()
+    client.force_login(manager)
+    pages = {study.get_absolute_url(): 5, reverse("experiments:study-csv", args=[study.code]): 5,
+             reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
+             reverse("experiments:study-chart-csv", args=[study.code, "km"]): 5,
+             Trial.objects.filter(study=study).first().get_absolute_url(): 7}
+    for url, limit in pages.items():
+        with django_assert_max_num_queries(limit):
+            response = client.get(url)
+            assert response.status_code == 200, url
+            b"".join(response.streaming_content) if response.streaming else response.content
+
+
 def test_booking_form_names_an_impossible_number(client, researcher, protocol, tank):
     client.force_login(researcher)
     response = client.post(reverse("experiments:booking-new"), {
@@ -354,7 +387,8 @@ def test_cohort_page_ledger_and_trial_page_hide_blinded_settings_doses_and_overr
     trial = record(study, cohort, manager, at=days_ago(9), irradiance=6, duration=5,
                    override_reason="Higher irradiance for the UV arm").trial
     settings = trial.stimulus_text()  # "Ultraviolet light: 365 nm 6 mW/cm² × 5 s = 30 mJ/cm²"
-    for user in (technician, manager):  # managers are not the owner: the blinding rule hides conditions from them
+    other_manager = make_user("mara", role=MANAGER)
+    for user in (technician, researcher, other_manager):  # the owner too: only the operator (manager) sees
         client.force_login(user)
         page = page_text(client.get(cohort.get_absolute_url()))
         assert trial.code in page and "blinded" in page
@@ -368,16 +402,16 @@ def test_cohort_page_ledger_and_trial_page_hide_blinded_settings_doses_and_overr
     assert (row["stimulus"], row["settings"], row["dose_mj_cm2"], row["cumulative_dose_mj_cm2"]) == \
         ("blinded", f"blinded: code {trial.code}", "", "")
     assert row["exposure_number"] == "1" and row["over_limit"] == ""
-    client.force_login(researcher)  # the owner sees everything
+    client.force_login(manager)  # the operator sees the trial they ran
     page = page_text(client.get(cohort.get_absolute_url()))
     assert settings in page and "Higher irradiance" in page and "<strong>30</strong>" in page
 
 
-def test_ledger_stimulus_filter_does_not_pick_out_blinded_trials(client, manager, bench):
+def test_ledger_stimulus_filter_does_not_pick_out_blinded_trials(client, researcher, manager, bench):
     cohort, study = bench
     study.blinded = True
     study.save()
-    trial = record(study, cohort, manager, at=days_ago(9)).trial  # an ultraviolet exposure
+    trial = record(study, cohort, researcher, at=days_ago(9)).trial  # an ultraviolet exposure the manager did not run
     client.force_login(manager)
     everything = client.get(reverse("experiments:ledger"))
     assert [r["trial"] for r in everything.context["rows"]] == [trial]  # the exposure is in the ledger...

@@ -28,9 +28,9 @@ def test_tidy_csv_in_chunks_equals_the_whole_table(exposures, monkeypatch):
     monkeypatch.setattr(exports, "CHUNK", 2)
     trials = exposures.trials.select_related(*TRIAL_RELATED).order_by("slot", "pk")
 
-    text = "".join(reports.tidy_csv(trials))
+    text = "".join(reports.tidy_csv(trials, exposures.owner))
 
-    assert text == frame_csv(reports.tidy_frame(list(trials)), **reports.CSV_OPTIONS)
+    assert text == frame_csv(reports.tidy_frame(list(trials), exposures.owner), **reports.CSV_OPTIONS)
     assert text.count("\r\n") == 1 + 6
 
 
@@ -49,5 +49,5 @@ def test_ledger_csv_in_chunks_keeps_each_cohort_s_running_totals(exposures, mana
 
 
 def test_csv_of_no_trials_is_the_header(db, manager):
-    assert "".join(reports.tidy_csv(Trial.objects.none())) == ",".join(reports.TIDY_COLUMNS) + "\r\n"
+    assert "".join(reports.tidy_csv(Trial.objects.none(), manager)) == ",".join(reports.TIDY_COLUMNS) + "\r\n"
     assert "".join(reports.ledger_csv(Trial.objects.none(), manager)) == ",".join(reports.LEDGER_COLUMNS) + "\r\n"

@@ -57,8 +57,10 @@ def test_another_researcher_cannot_open_or_post_the_trial_form(client, world, ot
 
 def test_the_service_refuses_a_trial_from_another_researcher(world, other):
     cohort, study = world
-    with pytest.raises(PermissionDenied, match="may add trials in study"):
+    with pytest.raises(PermissionDenied, match="may claim slots in study"):
         record(study, cohort, other, at=days_ago(8))
+    with pytest.raises(PermissionDenied, match="may add trials in study"):
+        record(study, cohort, other, at=days_ago(8), claim=False)
     assert not Trial.objects.exists()
 
 
@@ -66,7 +68,9 @@ def test_the_service_refuses_a_trial_from_another_researcher(world, other):
 def test_the_owner_and_a_manager_add_trials(client, request, world, who):
     cohort, study = world
     client.force_login(request.getfixturevalue(who))
-    response = client.post(reverse("experiments:trial-new", args=[study.code]), _trial_post(study, cohort))
+    data = _trial_post(study, cohort)
+    assert client.post(reverse("experiments:slot-claim", args=[study.code, data["slot"]])).status_code == 302
+    response = client.post(reverse("experiments:trial-new", args=[study.code]), data)
     assert response.status_code == 302, response.content.decode()[:2000]
     assert Trial.objects.get().run_by == request.getfixturevalue(who)
 
@@ -126,6 +130,7 @@ def test_the_new_study_form_sets_scorer_not_operator(client, researcher, protoco
     client.force_login(researcher)
     response = client.post(reverse("experiments:study-new"), {
         "code": "sno-study", "title": "Scored by another", "protocol": protocol.pk, "conditions": "a\nb",
+        "reference_condition": "a",
         "replicates": 2, "method": "block", "observation_window_s": 600, "blinded": "on",
         "scorer_not_operator": "on"})
     assert response.status_code == 302

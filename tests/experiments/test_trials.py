@@ -158,6 +158,18 @@ def test_override_deviation_of_a_blinded_study_names_the_limit_but_not_the_value
     assert deviation.evidence[0]["reason"].startswith("hidden while study")
 
 
+def test_override_deviation_of_a_blinded_study_does_not_name_a_stimulus_limit(researcher, manager, protocol):
+    # A dose or irradiance limit would tell every reader of the deviation that the trial was a light condition.
+    cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
+    study = make_study(user=researcher, protocol=protocol, replicates=3, blinded=True)
+    record(study, cohort, manager, at=days_ago(9), irradiance=5.0, duration=30,  # 150 mJ/cm² > 100 per exposure
+           override_reason="Dose step agreed with the welfare officer")
+    deviation = Deviation.objects.get()
+    assert "a stimulus limit (values hidden while study" in deviation.summary
+    assert "dose" not in deviation.summary.lower() and "dose" not in str(deviation.evidence).lower()
+    assert deviation.evidence[0]["limits"] == ["a stimulus limit"]
+
+
 def test_a_second_override_on_the_same_cohort_adds_evidence_to_the_open_deviation(researcher, manager, protocol):
     cohort = make_cohort(user=researcher, protocol=protocol, at=days_ago(10))
     study = make_study(user=researcher, protocol=protocol, replicates=3)
@@ -211,17 +223,30 @@ def test_scoring_corrects_with_history_and_locking_stops_it(setup, researcher):
         services.score_trial(user=researcher, trial=trial, values={"disperse_s": 5.0}, reason="late")
 
 
-def test_only_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, manager, protocol):
+def test_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, manager, protocol):
+    from colonies.roles import RESEARCHER
+    from tests.factories import make_user
     study = make_study(user=researcher, protocol=protocol, blinded=True)
-    assert study.hides_conditions_from(manager) and not study.hides_conditions_from(researcher)
+    assert study.hides_conditions_from(manager) and study.hides_conditions_from(researcher)  # the owner too
     with pytest.raises(PermissionDenied):
-        services.unblind(user=manager, study=study, reason="curious")
+        services.unblind(user=make_user("rival", role=RESEARCHER), study=study, reason="curious")
     with pytest.raises(services.Refused, match="reason"):
         services.unblind(user=researcher, study=study, reason="")
     services.unblind(user=researcher, study=study, reason="Analysis plan complete")
     study.refresh_from_db()
     assert study.unblinded_by == researcher and study.outcomes_locked_at <= study.unblinded_at
     assert not study.hides_conditions_from(manager)
+
+
+def test_a_manager_who_must_see_unblinds_with_a_reason_kept_in_the_history(researcher, manager, protocol):
+    study = make_study(user=researcher, protocol=protocol, blinded=True)
+    with pytest.raises(services.Refused, match="reason"):
+        services.unblind(user=manager, study=study, reason=" ")
+    services.unblind(user=manager, study=study, reason="Welfare review of dish deaths")
+    study.refresh_from_db()
+    assert (study.unblinded_by, study.unblind_reason) == (manager, "Welfare review of dish deaths")
+    latest = study.history.latest("history_date")
+    assert latest.history_user == manager and "Welfare review of dish deaths" in latest.history_change_reason
 
 
 def test_exclude_and_void_need_reasons_and_void_frees_the_exposure(setup, researcher):
