@@ -11,7 +11,8 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 
 from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
-from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Override, Protocol, Study, Trial
+from .models import (SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, ImageMeasurement, Override, Protocol,
+                     Study, Trial)
 
 # What a trial of a study still blinded to the viewer must not show, as on the trial page:
 # the condition, and the stimulus with its settings and the values derived from them.
@@ -174,3 +175,13 @@ class OverrideAdmin(BlindedAdmin):
 @admin.register(Attachment)
 class AttachmentAdmin(ReadOnlyAdmin):
     list_display = ["name", "trial", "kind", "sha256", "size_bytes", "uploaded_at"]
+
+
+@admin.register(ImageMeasurement)
+class ImageMeasurementAdmin(ReadOnlyAdmin):
+    """Read-only: measurements are made from the trial page. They carry the trial's code, never its condition."""
+
+    list_display = ["pk", "trial", "source", "status", "frames_total", "dispersal_time_s", "censored", "decision",
+                    "requested_at", "voided_at"]
+    list_filter = ["status", "decision"]
+    exclude = ["worker"]

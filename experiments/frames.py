@@ -10,7 +10,7 @@ video's own clock (each the first decoded frame at or after its moment), until t
 video or the last wanted time.
 
 `probe_*` read only headers, so that an upload can be refused with a clear message before
-anything is stored; `photo_frames` / `video_frames` yield the pictures for measuring.
+anything is stored; `read_photo` / `video_frames` give the pictures for measuring.
 """
 from __future__ import annotations
 
@@ -38,14 +38,7 @@ class Plan:
 
 def frame_times(count: int, *, interval_s: float, stimulus_at_s: float, until_s: float | None = None) -> list[float]:
     """Times after the stimulus of frames taken every `interval_s` from 0, dropping those before the stimulus."""
-    times = []
-    for i in range(count):
-        t = i * interval_s - stimulus_at_s
-        if until_s is not None and t > until_s + 1e-9:
-            break
-        if t >= -1e-9:
-            times.append(round(max(t, 0.0), 6))
-    return times
+    return [t for _i, t in photo_times(count, interval_s=interval_s, stimulus_at_s=stimulus_at_s, until_s=until_s)]
 
 
 def _check_interval(interval_s: float, stimulus_at_s: float) -> None:
@@ -101,20 +94,33 @@ def probe_photos(files: Sequence, names: Sequence[str], *, interval_s: float, st
     return Plan(times_s=tuple(times), width_px=size[0], height_px=size[1])
 
 
-def photo_frames(files: Sequence, plan: Plan, *, interval_s: float, stimulus_at_s: float) -> Iterator[np.ndarray]:
-    """The photos at the planned times, as arrays."""
+def photo_times(count: int, *, interval_s: float, stimulus_at_s: float,
+                until_s: float | None = None) -> list[tuple[int, float]]:
+    """(index of the photo, time after the stimulus) of the photos to measure."""
+    pairs = []
+    for i in range(count):
+        t = i * interval_s - stimulus_at_s
+        if until_s is not None and t > until_s + 1e-9:
+            break
+        if t >= -1e-9:
+            pairs.append((i, round(max(t, 0.0), 6)))
+    return pairs
+
+
+def read_photo(handle) -> np.ndarray:
+    """One photo as an array (its first page when the file holds several)."""
     import imageio.v3 as iio
 
-    wanted = {round(t, 6) for t in plan.times_s}
-    for i, handle in enumerate(files):
-        t = round(max(i * interval_s - stimulus_at_s, 0.0), 6)
-        if i * interval_s - stimulus_at_s < -1e-9 or t not in wanted:
-            continue
-        handle.seek(0)
+    handle.seek(0)
+    try:
         image = iio.imread(handle.read())
-        if image.ndim == 3 and image.shape[-1] not in (1, 3, 4):  # a multi-page file: its first page
-            image = image[0]
-        yield image
+    except Exception as error:  # the reading plugins raise many kinds for a damaged file
+        raise FrameError(f"could not be read as a picture ({error.__class__.__name__}).") from None
+    if image.ndim == 3 and image.shape[-1] not in (1, 3, 4):
+        image = image[0]
+    elif image.ndim == 4:
+        image = image[0]
+    return image
 
 
 def _open_video(handle):

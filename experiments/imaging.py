@@ -303,18 +303,19 @@ def summarise(measured: Sequence[FrameMetrics], times_s: Sequence[float], *, thr
                                    "scale_px_per_mm": scale_px_per_mm})
 
 
-def proposed_clusters(series: SeriesMetrics, *, points: int = 12) -> list[dict]:
-    """At most `points` (time, clusters, largest fraction) rows for the trial's cluster table:
-    evenly spread over the frames within the window, always with the dispersal frame."""
-    rows = [(t, f) for t, f in zip(series.times_s, series.frames)
-            if t <= series.window_s and f.largest_cluster_fraction is not None]
-    if not rows:
+def proposed_clusters(rows: Sequence[dict], *, dispersal_time_s: float | None, window_s: float,
+                      points: int = 12) -> list[dict]:
+    """At most `points` (+1) of the stored frame rows ({"t_s", "clusters", "largest_fraction", ...}) for the
+    trial's cluster table: evenly spread over the frames within the window, the last one and the dispersal
+    frame always among them; frames with no worm are left out."""
+    kept = [r for r in rows if r["t_s"] <= window_s and r["largest_fraction"] is not None]
+    if not kept:
         return []
-    picks = set(np.unique(np.linspace(0, len(rows) - 1, min(points, len(rows))).round().astype(int)).tolist())
-    if series.dispersal_time_s is not None:
-        picks.add(next(i for i, (t, _f) in enumerate(rows) if t == series.dispersal_time_s))
-    return [{"t_s": rows[i][0], "clusters": rows[i][1].cluster_count,
-             "largest_fraction": round(rows[i][1].largest_cluster_fraction, 3)} for i in sorted(picks)]
+    step = max(1, math.ceil(len(kept) / points))
+    picks = set(range(0, len(kept), step)) | {len(kept) - 1}
+    picks |= {i for i, r in enumerate(kept) if r["t_s"] == dispersal_time_s}
+    return [{"t_s": kept[i]["t_s"], "clusters": kept[i]["clusters"],
+             "largest_fraction": round(kept[i]["largest_fraction"], 3)} for i in sorted(picks)]
 
 
 __all__ = ["DEFAULT_THRESHOLD", "FrameMetrics", "Segmentation", "SeriesMetrics", "dish_mask", "dispersal",

@@ -495,8 +495,11 @@ def _open_deviation(override: Override, breaches: list[limits.Breach], now: date
                                               parameter="", subject=cohort.subject)
 
 
-def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None) -> Trial:
-    """Enter or correct the outcomes (blinded scorers see only the code); a correction needs a reason."""
+def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None,
+                source_note: str = "") -> Trial:
+    """Enter or correct the outcomes (blinded scorers see only the code); a correction needs a reason.
+
+    `source_note` says where the values came from (e.g. an image measurement) in the history."""
     now = now or timezone.now()
     reason = (reason or "").strip()
     with transaction.atomic():
@@ -520,7 +523,8 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
         _check_order(trial, trial.cohort, now)
         trial.full_clean()
         trial.scored_at, trial.scored_by = now, user
-        return _save(trial, user, f"Outcome corrected: {reason}" if correcting else "Outcome scored")
+        note = f" ({source_note})" if source_note else ""
+        return _save(trial, user, f"Outcome corrected{note}: {reason}" if correcting else f"Outcome scored{note}")
 
 
 def exclude_trial(*, user, trial: Trial, reason: str) -> Trial:
