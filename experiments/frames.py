@@ -163,7 +163,7 @@ def probe_video(handle, name: str, *, interval_s: float, stimulus_at_s: float,
                          f"{MAX_FRAME_PIXELS / 1e6:g} million pixels.")
     if duration is None or not math.isfinite(duration) or duration <= 0:
         raise FrameError(f"Video '{name}' does not say how long it is; it may be damaged.")
-    count = int(math.floor(duration / interval_s + 1e-9)) + 1
+    count = max(1, math.ceil(duration / interval_s - 1e-9))  # frames at i × interval before the end
     times = frame_times(count, interval_s=interval_s, stimulus_at_s=stimulus_at_s, until_s=until_s)
     _check_count(times, f"Video '{name}'")
     return Plan(times_s=tuple(times), width_px=width, height_px=height, duration_s=duration)

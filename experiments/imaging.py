@@ -8,11 +8,13 @@ One frame (`measure_frame`)
     4. Background flattening for uneven lighting: the dish's own brightness is estimated by a wide
        Gaussian blur (`background_px`) of the pixels that are not worms (a first pass finds the
        worms; normalised convolution fills the background in under them, so a large clump does not
-       lift the background around itself), and subtracted. Without flattening the background is
-       one level, the median of the frame (the dish must then be mostly background).
-    5. Worm pixels: the contrast above the background passes Otsu's threshold (Otsu 1979, IEEE
-       Trans. SMC 9:62-66, as skimage.filters.threshold_otsu), or a stated `threshold`, and never
-       less than `min_contrast`, so an empty or noisy dish does not turn its noise into worms.
+       lift the background around itself). Without flattening the background is one level, the
+       median of the frame (the dish must then be mostly background).
+    5. Contrast: for dark worms, the share of the local dish brightness a pixel lacks (a flat-field
+       correction: 1 - grey / dish); for bright worms on a dark field, grey - dish.
+       Worm pixels: the contrast passes Otsu's threshold (Otsu 1979, IEEE Trans. SMC 9:62-66, as
+       skimage.filters.threshold_otsu), or a stated `threshold`, and never less than
+       `min_contrast`, so an empty or noisy dish does not turn its noise into worms.
     6. Optional dish mask: only a centred circle of `dish_radius_fraction` × half the shorter side
        counts (the dark rim of a Petri dish is not a worm).
     7. Connected components (8-connected by default, skimage.measure.label); components smaller
@@ -216,7 +218,14 @@ def measure_frame(image, *, scale_px_per_mm: float | None = None,
         signal = ndimage.gaussian_filter(signal, s.smoothing_px * factor, mode="nearest")
     inside = dish_mask(signal.shape, s.dish_radius_fraction)
     sigma = s.background_px * factor if s.background_px is not None else None
-    contrast = signal - _background(signal, inside, s, sigma, s.min_contrast)
+    background = _background(signal, inside, s, sigma, s.min_contrast)
+    contrast = signal - background
+    if s.polarity == "dark":
+        # Flat-field: light on the dish is multiplicative, so a worm darkens its spot by a share of
+        # the local dish brightness (1 - background of the signal); dividing by it evens out the contrast
+        # between the bright and the dim side. A dark field (bright worms) has a background near
+        # zero, where a ratio would only amplify noise: there the difference is used.
+        contrast = contrast / np.maximum(1.0 - background, 0.05)
     cut = s.threshold if s.threshold is not None else _otsu(contrast[inside])
     cut = max(cut, s.min_contrast)
     worms = (contrast > cut) & inside
@@ -311,8 +320,8 @@ def proposed_clusters(rows: Sequence[dict], *, dispersal_time_s: float | None, w
     kept = [r for r in rows if r["t_s"] <= window_s and r["largest_fraction"] is not None]
     if not kept:
         return []
-    step = max(1, math.ceil(len(kept) / points))
-    picks = set(range(0, len(kept), step)) | {len(kept) - 1}
+    picks = {round(i * (len(kept) - 1) / (points - 1)) for i in range(points)} if len(kept) > points \
+        else set(range(len(kept)))
     picks |= {i for i, r in enumerate(kept) if r["t_s"] == dispersal_time_s}
     return [{"t_s": kept[i]["t_s"], "clusters": kept[i]["clusters"],
              "largest_fraction": round(kept[i]["largest_fraction"], 3)} for i in sorted(picks)]

@@ -108,7 +108,7 @@ PAGES = {
     "experiments:study-new": (lambda w: reverse("experiments:study-new"), 1),
     "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 1),
     "experiments:trial-new": (lambda w: reverse("experiments:trial-new", args=[w.study.code]), 1),
-    "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 3),
+    "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 4),  # attach, exclude, void, measure images
     "experiments:trial-score": (lambda w: reverse("experiments:trial-score", args=[w.trial.pk]), 1),
 }
 
