@@ -90,5 +90,6 @@ def cohens_kappa(a: Sequence[bool], b: Sequence[bool]) -> Kappa | None:
     term = sum(p[i][i] * (1 - (rows[i] + cols[i]) * (1 - kappa)) ** 2 for i in range(2))
     term += (1 - kappa) ** 2 * sum(p[i][j] * (cols[i] + rows[j]) ** 2 for i in range(2) for j in range(2) if i != j)
     term -= (kappa - pe * (1 - kappa)) ** 2
-    se = math.sqrt(max(term, 0.0) / n) / (1 - pe)
+    # A negative variance comes only from degenerate tables (e.g. κ = 0 with an empty cell): no standard error.
+    se = math.sqrt(max(term, 0.0) / n) / (1 - pe) if term > -1e-12 else None
     return Kappa(n=n, kappa=kappa, observed=po, expected=pe, se=se, table=table)

@@ -6,7 +6,6 @@ independent count of the same truth the measurement must recover through noise a
 """
 import io
 
-import av
 import numpy as np
 import pytest
 from scipy import ndimage
@@ -14,22 +13,7 @@ from skimage import data, draw
 
 from experiments import frames, imaging
 from experiments.imaging import Segmentation, dispersal, measure_frame, measure_series
-
-DISH, WORM = 0.85, 0.2  # grey levels: a light dish, dark worms
-
-
-def canvas(size=200):
-    return np.full((size, size), DISH)
-
-
-def discs(image, centres, radius, value=WORM):
-    mask = np.zeros(image.shape, dtype=bool)
-    for r, c in centres:
-        rr, cc = draw.disk((r, c), radius, shape=image.shape)
-        mask[rr, cc] = True
-    image[mask] = value
-    return mask
-
+from tests.experiments.dish_pictures import canvas, discs, mp4, png, ring
 
 def truth(mask):
     """(components, largest fraction, total area) of the drawn mask, by scipy (8-connected)."""
@@ -210,16 +194,8 @@ def test_skimage_coins_count_does_not_depend_on_the_background_scale_or_orientat
 # ---------------------------------------------------------------------------------------------
 # Series
 # ---------------------------------------------------------------------------------------------
-RING = [(100 + 30 * np.sin(a), 100 + 30 * np.cos(a)) for a in np.linspace(0, 2 * np.pi, 8, endpoint=False)]
-
-
 def frame(spread: float, rng=None):
-    """Eight worms on a ring of radius 30·spread: touching (one clump) at 1, apart at 2."""
-    image = canvas()
-    discs(image, [(100 + (r - 100) * spread, 100 + (c - 100) * spread) for r, c in RING], 12)
-    if rng is not None:
-        image = image + rng.normal(0, 0.03, image.shape)
-    return image
+    return ring(spread, rng)
 
 
 def test_a_series_with_a_known_dispersal_time():
@@ -284,9 +260,7 @@ def test_photo_times_count_from_the_stimulus():
 
 
 def _png(image) -> io.BytesIO:
-    import imageio.v3 as iio
-
-    return io.BytesIO(iio.imwrite("<bytes>", (np.clip(image, 0, 1) * 255).astype(np.uint8), extension=".png"))
+    return io.BytesIO(png(image))
 
 
 def test_photos_of_different_sizes_are_refused_naming_the_photo():
@@ -305,27 +279,8 @@ def test_too_many_frames_are_refused_with_the_limit():
                             interval_s=1, stimulus_at_s=0)
 
 
-def small_video(spreads, fps=2, seconds_per_step=5) -> bytes:
-    """An MP4 (MPEG-4 part 2, FFmpeg's own encoder) of the ring frames, each spread held for some seconds."""
-    buffer = io.BytesIO()
-    container = av.open(buffer, mode="w", format="mp4")
-    stream = container.add_stream("mpeg4", rate=fps)
-    stream.width = stream.height = 200
-    stream.pix_fmt = "yuv420p"
-    for spread in spreads:
-        grey = (frame(spread) * 255).astype(np.uint8)
-        for _ in range(fps * seconds_per_step):
-            picture = av.VideoFrame.from_ndarray(np.repeat(grey[..., None], 3, axis=2), format="rgb24")
-            for packet in stream.encode(picture):
-                container.mux(packet)
-    for packet in stream.encode():
-        container.mux(packet)
-    container.close()
-    return buffer.getvalue()
-
-
 def test_a_video_is_sampled_at_the_interval_after_the_stimulus_and_measured():
-    body = small_video([1, 1, 1, 2.5, 3])  # 25 s: clumped for 15 s, then apart
+    body = mp4([1, 1, 1, 2.5, 3])  # 25 s: clumped for 15 s, then apart
     plan = frames.probe_video(io.BytesIO(body), "dish.mp4", interval_s=5, stimulus_at_s=5)
     assert plan.duration_s == pytest.approx(25, abs=0.6)
     assert plan.times_s == (0, 5, 10, 15)
