@@ -108,7 +108,8 @@ PAGES = {
     "experiments:study-new": (lambda w: reverse("experiments:study-new"), 1),
     "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 1),
     "experiments:trial-new": (lambda w: reverse("experiments:trial-new", args=[w.study.code]), 1),
-    "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 4),  # attach, exclude, void, measure images
+    # attach, exclude, void, measure images; and the world's two measurements: void each, re-run the failed one
+    "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 7),
     "experiments:trial-score": (lambda w: reverse("experiments:trial-score", args=[w.trial.pk]), 1),
 }
 
