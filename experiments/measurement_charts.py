@@ -2,7 +2,7 @@
 
 Top: the largest-cluster fraction at each frame with the dispersal threshold (dashed) and the
 measured dispersal time (dotted vertical line) or "still clumped" when censored. Bottom: the
-cluster count. Sized and lettered to stay readable on a phone (text 10 pt and up at 6.4 in wide).
+cluster count. Sized and lettered to stay readable on a phone (text 9-11 pt on a 4.8 in wide figure, which a phone shows at about its size).
 """
 from __future__ import annotations
 
@@ -22,7 +22,7 @@ def fraction_chart(rows: Sequence[dict], *, threshold: float, window_s: float, d
     measured = [r for r in rows if r.get("largest_fraction") is not None]
     if not measured:
         return _empty("No worm was found in any frame.", fmt)
-    fig = Figure(figsize=(6.4, 4.6), layout="constrained")
+    fig = Figure(figsize=(4.8, 4.0), layout="constrained")  # narrow: on a phone it is shrunk least
     FigureCanvasAgg(fig)
     top, bottom = fig.subplots(2, 1, sharex=True, height_ratios=[2.2, 1])
     blue, vermillion, green = OKABE_ITO[0], OKABE_ITO[1], OKABE_ITO[2]
