@@ -30,6 +30,9 @@ FORMS = {
     "experiments:trial-score": True,  # a second correction is a second history entry
     "experiments:trial-set-aside": False,
     "experiments:attachment-add": True,
+    "experiments:measurement-new": True,  # the same files measured again: a second measurement
+    "experiments:measurement-rerun": True,  # each re-run of a failed measurement is another attempt
+    "experiments:measurement-void": False,  # voided already
 }
 
 
