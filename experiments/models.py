@@ -770,6 +770,13 @@ class ImageMeasurement(Voidable):
     def dispersed(self) -> bool | None:
         return None if self.censored is None else not self.censored
 
+    @property
+    def override_difference_s(self) -> float | None:
+        """The saved score minus the measured time, when both say dispersed (how far the scorer moved it)."""
+        if self.scored_disperse_s is None or self.scored_censored or self.censored or self.dispersal_time_s is None:
+            return None
+        return self.scored_disperse_s - self.dispersal_time_s
+
     def proposed_disperse_s(self) -> float | None:
         """The time to propose for the trial: the dispersal frame's time, or the window when censored."""
         if self.status != self.Status.DONE:

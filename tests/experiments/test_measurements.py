@@ -148,7 +148,8 @@ def test_overriding_the_proposal_is_recorded_with_both_values(client, researcher
     trial.refresh_from_db()
     measured.refresh_from_db()
     assert measured.decision == ImageMeasurement.Decision.OVERRIDDEN
-    assert (measured.scored_disperse_s, measured.dispersal_time_s) == (150, 180)
+    assert (measured.scored_disperse_s, measured.dispersal_time_s, measured.override_difference_s) == (150, 180, -30)
+    assert "scored 150 s (-30 s from the measured time)" in page(client.get(trial.get_absolute_url()))
     assert "image measurement #%d proposed dispersal at 180 s; overridden" % measured.pk in \
         trial.history.first().history_change_reason
 
