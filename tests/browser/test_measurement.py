@@ -5,6 +5,7 @@ from datetime import timedelta
 import pytest
 
 from tests.browser.conftest import PASSWORD
+from tests.browser.test_phone_pages import AXE, _axe, _overflow
 from tests.experiments.dish_pictures import png, ring
 
 pytestmark = pytest.mark.browser
@@ -65,8 +66,11 @@ def test_upload_shows_progress_then_the_proposal_is_accepted(page, live_server, 
     expect(page.locator("figure.chart figcaption")).to_contain_text("dispersed at 180 s", timeout=60_000)
     assert ImageMeasurement.objects.get().status == ImageMeasurement.Status.DONE
 
+    problems = _axe(page) + _overflow(page) if AXE.exists() else []  # the measurement section on a phone
     page.get_by_role("link", name="Score").click()
     expect(page.locator("#proposal")).to_contain_text("dispersed at 180 s")
+    problems += _axe(page) + _overflow(page) if AXE.exists() else []
+    assert not problems, "\n".join(problems)
     expect(page.get_by_label("Time to disperse", exact=False)).to_have_value("180.0")
     page.get_by_role("button", name="Save score").click()
     expect(page.locator(".msg-success")).to_contain_text(f"Score for {trial.code} saved")
