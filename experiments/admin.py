@@ -12,7 +12,8 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
 from . import blinding
-from .models import Allowance, Attachment, Booking, Cohort, Override, Protocol, SlotClaim, Study, Trial
+from .models import (Allowance, Attachment, Booking, Cohort, ImageMeasurement, Override, Protocol, SlotClaim, Study,
+                     Trial)
 
 # What a row must not show to a viewer blinded to it: experiments/blinding.py decides, as on the app's pages.
 BLINDED_TRIAL_FIELDS = blinding.HIDDEN_TRIAL_FIELDS
@@ -196,3 +197,13 @@ class SlotClaimAdmin(ReadOnlyAdmin):
     """Who claimed which slot, when, and releases with their reasons (no condition: the allocation holds it)."""
     list_display = ["study", "slot", "claimed_by", "claimed_at", "released_at", "released_by"]
     list_filter = ["study"]
+
+
+@admin.register(ImageMeasurement)
+class ImageMeasurementAdmin(ReadOnlyAdmin):
+    """Read-only: measurements are made from the trial page. They carry the trial's code, never its condition."""
+
+    list_display = ["pk", "trial", "source", "status", "frames_total", "dispersal_time_s", "censored", "decision",
+                    "requested_at", "voided_at"]
+    list_filter = ["status", "decision"]
+    exclude = ["worker", "files"]  # files: the uploaded names, which may name the condition (see blinding.masked_name)

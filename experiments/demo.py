@@ -19,7 +19,7 @@ from django.utils import timezone
 
 from colonies.models import Tank
 
-from . import services
+from . import demo_imaging, services
 from .models import Allowance, Booking, Cohort, Protocol, Stimulus, Study
 
 WINDOW_S = 600
@@ -160,6 +160,8 @@ def load(*, seed: int, now, users: dict) -> dict:
                                        cohort=cohort, values=values, override_reason=reason,
                                        now=min(now, run_at + timedelta(hours=25)))  # completed with the 24 h count
         overrides += bool(result.override)
+    # Photo series of some dishes, measured before unblinding (experiments/demo_imaging.py).
+    image_series = demo_imaging.add_series(study=study, user=ravi, seed=seed)
     services.unblind(user=ravi, study=study, at=_at(start + timedelta(days=5), 16, 0, tz),
                      reason="All 30 trials scored; primary analysis as planned.")
 
@@ -215,4 +217,4 @@ def load(*, seed: int, now, users: dict) -> dict:
 
     return {"protocols": 3, "bookings": Booking.objects.count(), "cohorts": Cohort.objects.count(),
             "studies": 2, "trials": study.trials.count() + pilot.trials.count(), "overrides": overrides,
-            "expired_bookings": expired}
+            "expired_bookings": expired, "image_series": image_series}

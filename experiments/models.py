@@ -14,7 +14,7 @@ from django.urls import reverse
 from django.utils import timezone
 from simple_history.models import HistoricalRecords
 
-from colonies.models import Species, Tank, Voidable
+from colonies.models import Species, Tank, Voidable, VoidableQuerySet
 from colonies.validators import MAX_TEXT, DateRange
 from vermilog.lab_time import lab_date
 
@@ -732,3 +732,134 @@ class Attachment(Voidable):
 
     def get_absolute_url(self):
         return reverse("experiments:attachment", args=[self.pk])
+
+
+class ImageMeasurementQuerySet(VoidableQuerySet):
+    def done(self):
+        return self.current().filter(status=ImageMeasurement.Status.DONE)
+
+
+class ImageMeasurement(Voidable):
+    """Cluster count and largest-cluster fraction measured from a trial's photos or video (experiments/imaging.py).
+
+    Stored with every setting used and the SHA-256 of each file, so that it can be measured again
+    and give the same numbers. Progress (frames_done, heartbeat_at) is written by the worker with
+    plain UPDATEs, outside the history; the history keeps the request, the start and the result.
+    A row left queued or running by a stopped process (no heartbeat for STALE_AFTER_S) is shown
+    as interrupted and can be measured again.
+    """
+
+    class Status(models.TextChoices):
+        QUEUED = "queued", "Queued"
+        RUNNING = "running", "Measuring"
+        DONE = "done", "Done"
+        FAILED = "failed", "Failed"
+        INTERRUPTED = "interrupted", "Interrupted"
+
+    class Source(models.TextChoices):
+        PHOTOS = "photos", "Photo series"
+        VIDEO = "video", "Video"
+
+    class Decision(models.TextChoices):
+        NONE = "", "Not used for a score yet"
+        ACCEPTED = "accepted", "Accepted by the scorer"
+        OVERRIDDEN = "overridden", "Overridden by the scorer"
+
+    STALE_AFTER_S = 300
+
+    trial = models.ForeignKey(Trial, on_delete=models.PROTECT, related_name="measurements")
+    source = models.CharField(max_length=8, choices=Source.choices)
+    files = models.JSONField(default=list, help_text="The files measured, in frame order: attachment, name, SHA-256.")
+    sha256 = models.CharField(max_length=64, help_text="SHA-256 of the video; for a photo series, of the photos' "
+                                                       "SHA-256 hex digests joined in frame order.")
+    settings = models.JSONField(default=dict, help_text="Every setting used: segmentation, frame times, threshold, "
+                                                        "window, scale, library versions.")
+    threshold = models.FloatField(help_text="Dispersed when the largest-cluster fraction stays below this.")
+    window_s = models.PositiveIntegerField(help_text="The trial's observation window, s.")
+    frames_total = models.PositiveIntegerField()
+    frames_done = models.PositiveIntegerField(default=0)
+    frames = models.JSONField(default=list, blank=True, help_text="Per frame: time, clusters, largest-cluster "
+                                                                  "fraction, worm area.")
+    dispersal_time_s = models.FloatField(null=True, blank=True)
+    censored = models.BooleanField(null=True, blank=True, help_text="No dispersal within the window.")
+    observed_until_s = models.FloatField(null=True, blank=True, help_text="Last frame at or before the window's end.")
+    status = models.CharField(max_length=12, choices=Status.choices, default=Status.QUEUED)
+    error = models.TextField(blank=True)
+    worker = models.CharField(max_length=64, blank=True, editable=False)
+    heartbeat_at = models.DateTimeField(null=True, blank=True, editable=False)
+    requested_by = _user_fk()
+    requested_at = models.DateTimeField(default=timezone.now)
+    started_at = models.DateTimeField(null=True, blank=True)
+    finished_at = models.DateTimeField(null=True, blank=True)
+    decision = models.CharField(max_length=10, choices=Decision.choices, default=Decision.NONE, blank=True)
+    decided_by = _user_fk(null=True, blank=True)
+    decided_at = models.DateTimeField(null=True, blank=True)
+    scored_disperse_s = models.FloatField(null=True, blank=True, help_text="The score saved with this proposal shown.")
+    scored_censored = models.BooleanField(null=True, blank=True)
+    history = HistoricalRecords(excluded_fields=["frames_done", "heartbeat_at", "worker"])
+
+    objects = ImageMeasurementQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["trial_id", "requested_at", "pk"]
+        get_latest_by = "requested_at"
+        constraints = [
+            models.CheckConstraint(condition=Q(frames_done__lte=models.F("frames_total")),
+                                   name="measurement_progress_within_total"),
+            models.CheckConstraint(condition=Q(threshold__gt=0) & Q(threshold__lt=1), name="measurement_threshold_0_1"),
+            models.CheckConstraint(condition=Q(dispersal_time_s__isnull=True)
+                                   | Q(dispersal_time_s__lte=models.F("window_s")),
+                                   name="measurement_dispersal_within_window"),
+            models.CheckConstraint(condition=~Q(status="done") | Q(censored__isnull=False),
+                                   name="measurement_done_has_result"),
+        ]
+        indexes = [
+            # The trial page lists a trial's measurements; the study page reads those of its trials.
+            models.Index(fields=["trial", "status"], name="measurement_trial_status"),
+        ]
+
+    def __str__(self):
+        return f"Image measurement #{self.pk} of {self.trial.code}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:trial-detail", args=[self.trial_id]) + f"#measurement-{self.pk}"
+
+    def is_stale(self, now=None) -> bool:
+        """Queued or running, but its worker has not reported for STALE_AFTER_S (the process stopped)."""
+        if self.status not in (self.Status.QUEUED, self.Status.RUNNING):
+            return False
+        beat = self.heartbeat_at or self.requested_at
+        return ((now or timezone.now()) - beat).total_seconds() > self.STALE_AFTER_S
+
+    @property
+    def shown_status(self) -> str:
+        return self.Status.INTERRUPTED.label if self.is_stale() else self.get_status_display()
+
+    @property
+    def in_progress(self) -> bool:
+        return self.status in (self.Status.QUEUED, self.Status.RUNNING) and not self.is_stale()
+
+    @property
+    def may_rerun(self) -> bool:
+        return self.status in (self.Status.FAILED, self.Status.INTERRUPTED) or self.is_stale()
+
+    @property
+    def percent(self) -> int:
+        return int(100 * self.frames_done / self.frames_total) if self.frames_total else 0
+
+    @property
+    def dispersed(self) -> bool | None:
+        return None if self.censored is None else not self.censored
+
+    @property
+    def override_difference_s(self) -> float | None:
+        """The saved score minus the measured time, when both say dispersed (how far the scorer moved it)."""
+        if self.scored_disperse_s is None or self.scored_censored or self.censored or self.dispersal_time_s is None:
+            return None
+        return self.scored_disperse_s - self.dispersal_time_s
+
+    def proposed_disperse_s(self) -> float | None:
+        """The time to propose for the trial: the dispersal frame's time, or the window when censored."""
+        if self.status != self.Status.DONE:
+            return None
+        return float(self.window_s) if self.censored else self.dispersal_time_s

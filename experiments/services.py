@@ -633,12 +633,14 @@ def is_correction(trial: Trial, changes: OutcomeChanges) -> bool:
     return bool((trial.is_scored and not first_late_entry) or changes.late_changed)
 
 
-def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None) -> Trial:
+def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: datetime | None = None,
+                source_note: str = "") -> Trial:
     """Enter or correct the outcomes (blinded scorers see only the code); a correction needs a reason.
 
     Once the study is unblinded its outcomes are locked, except the late ones (LATE_OUTCOME_FIELDS,
     the 24 h count): they stay recordable, and each one entered then is marked as entered after
-    unblinding, with its time.
+    unblinding, with its time. `source_note` says where the values came from (e.g. an image
+    measurement) in the history.
     """
     now = now or timezone.now()
     reason = (reason or "").strip()
@@ -675,6 +677,8 @@ def score_trial(*, user, trial: Trial, values: dict, reason: str = "", now: date
         what = "Outcome corrected" if correcting else ("Late outcome entered" if changes.late_only else "Outcome scored")
         if after_unblinding and (changes.late_new or changes.late_changed):
             what += " after unblinding"
+        if source_note:
+            what += f" ({source_note})"
         return _save(trial, user, f"{what}: {reason}" if reason else what)
 
 

@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import views
+from . import measurement_views, views
 
 app_name = "experiments"
 
@@ -28,6 +28,12 @@ urlpatterns = [
     path("trials/<int:pk>/set-aside/<slug:action>/", views.trial_set_aside, name="trial-set-aside"),
     path("trials/<int:pk>/attachments/", views.attachment_add, name="attachment-add"),
     path("attachments/<int:pk>/", views.attachment, name="attachment"),
+    path("trials/<int:pk>/measurements/", measurement_views.measurement_new, name="measurement-new"),
+    path("measurements/<int:pk>/progress.json", measurement_views.measurement_progress, name="measurement-progress"),
+    path("measurements/<int:pk>/chart.<slug:fmt>", measurement_views.measurement_chart, name="measurement-chart"),
+    path("measurements/<int:pk>/frames.csv", measurement_views.measurement_csv, name="measurement-csv"),
+    path("measurements/<int:pk>/rerun/", measurement_views.measurement_rerun, name="measurement-rerun"),
+    path("measurements/<int:pk>/void/", measurement_views.measurement_void, name="measurement-void"),
     path("ledger/", views.ledger, name="ledger"),
     path("ledger.csv", views.ledger_csv, name="ledger-csv"),
 ]

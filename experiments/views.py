@@ -21,7 +21,7 @@ from colonies.models import REASON_MAX_CHARS, Room
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
-from . import blinding, charts, filetypes, reports, services
+from . import blinding, charts, filetypes, measuring, reports, services
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
                     ScoreForm, StudyForm, TrialForm, errors_text)
@@ -329,7 +329,8 @@ def study_detail(request, code):
            "is_owner": request.user.pk == study.owner_id,
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
            "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
-           "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided)}
+           "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided),
+           "image_agreement": measuring.study_agreement(study, trials)}  # pooled: shown while blinded too
     frame = reports.tidy_frame(trials)
     if blind:
         ctx["preview"] = reports.pooled_preview(frame)
@@ -567,7 +568,9 @@ def trial_detail(request, pk):
     return _trial_detail_page(request, _get_trial(pk))
 
 
-def _trial_detail_page(request, trial, attachment_form=None, status=200):
+def _trial_detail_page(request, trial, attachment_form=None, status=200, measurement_form=None):
+    from .measurement_views import trial_context
+
     blind = not blinding.may_see_condition(request.user, trial)
     attachments = list(trial.attachments.current().select_related("uploaded_by"))
     for a in attachments:
@@ -580,7 +583,8 @@ def _trial_detail_page(request, trial, attachment_form=None, status=200):
            "may_score": has_role(request.user, *RUN) and _score_refusal(request.user, trial) is None
                         and _score_mode(request.user, trial) is not None,
            "cautions": [] if blind else trial.cautions(),
-           "override": trial.override if reports._has_override(trial) else None}
+           "override": trial.override if reports._has_override(trial) else None,
+           **trial_context(request.user, trial, measurement_form)}
     return render(request, "experiments/trial_detail.html", ctx, status=status)
 
 
@@ -611,19 +615,35 @@ def trial_score(request, pk):
     refusal = _score_refusal(request.user, trial)
     if refusal:
         raise PermissionDenied(refusal)
-    form = ScoreForm(request.POST or None, instance=trial, late_only=_score_mode(request.user, trial) == "late")
+    proposal = measuring.latest_done(trial)  # the image measurement's outcome, proposed (see measuring.py)
+    use = proposal is not None and (not trial.is_scored or request.GET.get("use") == "measurement")
+    form = ScoreForm(request.POST or None, instance=trial, late_only=_score_mode(request.user, trial) == "late",
+                     initial=measuring.proposal_initial(proposal) if use else None)
+    ctx = {"trial": trial, "form": form, "proposal": proposal}
     if request.method == "POST" and form.is_valid():
         try:
-            services.score_trial(user=request.user, trial=trial, values=form.outcome_values(),
-                                 reason=form.cleaned_data.get("reason", ""))
+            measuring.score(user=request.user, trial=trial, values=form.outcome_values(),
+                            reason=form.cleaned_data.get("reason", ""),
+                            measurement=_shown_proposal(request, trial, proposal))
         except (services.Refused, ValidationError) as error:
             messages.error(request, "Nothing was saved: " + _error_text(error))
-            return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=400)
+            return render(request, "experiments/trial_score.html", ctx, status=400)
         messages.success(request, f"Score for {trial.code} saved." if not trial.study.is_locked else
                          f"Late outcome for {trial.code} saved, marked as entered after unblinding.")
         return redirect(trial)
     status = 400 if request.method == "POST" else 200
-    return render(request, "experiments/trial_score.html", {"trial": trial, "form": form}, status=status)
+    return render(request, "experiments/trial_score.html", ctx, status=status)
+
+
+def _shown_proposal(request, trial, proposal):
+    """The measurement whose proposal the form showed (posted back), when it is still the latest one."""
+    shown = request.POST.get("measurement", "")
+    if proposal is None or not shown:
+        return None
+    if shown != str(proposal.pk):
+        raise ValidationError("Measurement: a newer image measurement of this trial has finished since the form "
+                              "was opened; open the form again to see its proposal.")
+    return proposal
 
 
 @require_POST

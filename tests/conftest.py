@@ -33,6 +33,12 @@ def _session_saved_only_when_changed(settings):
     settings.SESSION_SAVE_EVERY_REQUEST = False
 
 
+@pytest.fixture(autouse=True)
+def _media_in_a_temporary_folder(settings, tmp_path_factory):
+    # Attachments (the trials demo stores photo series) are written under MEDIA_ROOT: never the checkout's.
+    settings.MEDIA_ROOT = tmp_path_factory.mktemp("media")
+
+
 @pytest.fixture
 def technician(db):
     return make_user("tess", role=TECHNICIAN)

@@ -17,6 +17,7 @@ from colonies import services as colony_services
 from colonies.exports import FORMULA_START
 from colonies.models import Deviation, Feeding
 from experiments import services
+from experiments.models import ImageMeasurement
 from tests.experiments.builders import days_ago, make_cohort, make_protocol, make_study, record
 from tests.factories import make_check, make_species, make_tank
 
@@ -50,6 +51,11 @@ def world(technician, researcher, manager):
     services.exclude_trial(user=researcher, trial=first, reason="-HARDEN clump never formed")
     extra = make_study(user=researcher, protocol=protocol, code="override-study")
     record(extra, cohorts[0], manager, at=days_ago(6), override_reason="@HARDEN replacement dish")
+    ImageMeasurement.objects.create(
+        trial=first, source="photos", sha256="0" * 64, threshold=0.5, window_s=600, frames_total=1, frames_done=1,
+        status="done", censored=True, requested_by=researcher, finished_at=timezone.now(),
+        frames=[{"t_s": 0.0, "clusters": 1, "largest_fraction": 1.0, "worm_area_px": 400, "largest_area_px": 400,
+                 "worm_area_mm2": None, "contrast_threshold": 0.3}])
     return tank, study
 
 
@@ -63,6 +69,8 @@ EXPORTS = {  # URL name -> (arguments, query, must the export carry user text?)
     "experiments:study-chart-csv": (("safe-study", "km"), "", True),
     "experiments:study-chart-csv#dose": (("safe-study", "dose"), "", False),  # numbers and the fit method only
     "experiments:ledger-csv": ((), "", True),
+    # numbers only; the arguments are read once the world exists
+    "experiments:measurement-csv": (lambda: (ImageMeasurement.objects.get().pk,), "", False),
 }
 
 
@@ -87,6 +95,7 @@ def _is_number(text: str) -> bool:
 @pytest.mark.parametrize("key", EXPORTS)
 def test_every_export_defuses_formula_text(client, manager, world, key):
     args, query, carries_text = EXPORTS[key]
+    args = args() if callable(args) else args
     client.force_login(manager)
     response = client.get(reverse(key.split("#")[0], args=args) + query)
     assert response.status_code == 200, key

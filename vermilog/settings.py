@@ -196,6 +196,9 @@ FILE_UPLOAD_HANDLERS = [
     "django.core.files.uploadhandler.MemoryFileUploadHandler",
     "django.core.files.uploadhandler.TemporaryFileUploadHandler",
 ]
+# Image measurements (experiments/measuring.py) of at most this many working pixels (frames x pixels
+# after scaling to 1024 px) run in the request; larger ones in a background thread with a progress bar.
+IMAGING_SYNC_MAX_PIXELS = env_int("IMAGING_SYNC_MAX_PIXELS", 4_000_000)
 FILE_UPLOAD_MAX_MEMORY_SIZE = 2 * 1024 * 1024  # larger files go to a temporary file, not memory
 DATA_UPLOAD_MAX_MEMORY_SIZE = 2 * 1024 * 1024  # form fields other than files
 

@@ -12,6 +12,7 @@ from django.urls import get_resolver, reverse
 from experiments import models
 from experiments.models import Cohort
 from tests.experiments.builders import days_ago, make_cohort, make_study, record, today
+from tests.experiments.dish_pictures import png, ring
 
 READ = {"technician", "researcher", "manager"}
 RUN = {"researcher", "manager"}
@@ -33,8 +34,14 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
                                          upload=SimpleUploadedFile("a.png", PNG + b"png bytes"))
     # Slot 2 claimed by the owner to record it (trial-new); slot 3 claimed, to be released; slot 4 open, to claim.
     claims = {slot: services.claim_slot(user=researcher, study=study, slot=slot) for slot in (2, 3)}
+    frames = [{"t_s": 0.0, "clusters": 1, "largest_fraction": 1.0, "worm_area_px": 900, "largest_area_px": 900}]
+    measured = dict(trial=trial, source="photos", sha256="0" * 64, threshold=0.5, window_s=600, frames_total=1,
+                    requested_by=researcher)
+    done = models.ImageMeasurement.objects.create(**measured, frames=frames, frames_done=1, status="done",
+                                                  dispersal_time_s=None, censored=True, finished_at=days_ago(1))
+    failed = models.ImageMeasurement.objects.create(**measured, status="failed", error="unreadable")
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
-                           attachment=attachment, claims=claims)
+                           attachment=attachment, claims=claims, measurement=done, failed=failed)
 
 
 def _hand_over_slot_2(w, user):
@@ -73,6 +80,12 @@ URLS = {
     "experiments:attachment": lambda w: reverse("experiments:attachment", args=[w.attachment.pk]),
     "experiments:ledger": lambda w: reverse("experiments:ledger"),
     "experiments:ledger-csv": lambda w: reverse("experiments:ledger-csv"),
+    "experiments:measurement-new": lambda w: reverse("experiments:measurement-new", args=[w.trial.pk]),
+    "experiments:measurement-progress": lambda w: reverse("experiments:measurement-progress", args=[w.measurement.pk]),
+    "experiments:measurement-chart": lambda w: reverse("experiments:measurement-chart", args=[w.measurement.pk, "svg"]),
+    "experiments:measurement-csv": lambda w: reverse("experiments:measurement-csv", args=[w.measurement.pk]),
+    "experiments:measurement-rerun": lambda w: reverse("experiments:measurement-rerun", args=[w.failed.pk]),
+    "experiments:measurement-void": lambda w: reverse("experiments:measurement-void", args=[w.measurement.pk]),
 }
 
 
@@ -99,6 +112,10 @@ POST_DATA = {
     "experiments:trial-score": lambda w: {"disperse_s": "150", "aggregate_s": "200", "reason": "Misread the timer"},
     "experiments:trial-set-aside": lambda w: {"reason": "Clump never formed"},
     "experiments:attachment-add": lambda w: {"file": SimpleUploadedFile("b.png", PNG + b"more bytes"), "kind": "photo"},
+    "experiments:measurement-new": lambda w: {"files": [SimpleUploadedFile("d.png", png(ring(1)))], "interval_s": "30",
+                                              "threshold": "0.5", "polarity": "dark", "min_area_px": "12"},
+    "experiments:measurement-rerun": lambda w: {},
+    "experiments:measurement-void": lambda w: {"reason": "Wrong dish"},
 }
 
 ACCESS = [
@@ -131,6 +148,12 @@ ACCESS = [
     ("experiments:attachment", "get", READ),
     ("experiments:ledger", "get", MANAGE),
     ("experiments:ledger-csv", "get", MANAGE),
+    ("experiments:measurement-new", "post", RUN),
+    ("experiments:measurement-progress", "get", READ),
+    ("experiments:measurement-chart", "get", READ),
+    ("experiments:measurement-csv", "get", READ),
+    ("experiments:measurement-rerun", "post", RUN),
+    ("experiments:measurement-void", "post", RUN),
 ]
 
 WRONG_METHODS = [
@@ -142,14 +165,17 @@ WRONG_METHODS = [
     ("experiments:trial-new", "delete"), ("experiments:slot-claim", "get"), ("experiments:slot-release", "get"),
     ("experiments:trial-detail", "post"), ("experiments:trial-score", "put"),
     ("experiments:trial-set-aside", "get"), ("experiments:attachment-add", "get"), ("experiments:attachment", "post"),
-    ("experiments:ledger", "post"), ("experiments:ledger-csv", "post"),
+    ("experiments:ledger", "post"), ("experiments:ledger-csv", "post"), ("experiments:measurement-new", "get"),
+    ("experiments:measurement-progress", "post"), ("experiments:measurement-chart", "post"),
+    ("experiments:measurement-csv", "post"), ("experiments:measurement-rerun", "get"), ("experiments:measurement-void", "get"),
 ]
 
 
 def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
     return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Study, models.Trial,
-                                             models.Override, models.Attachment, models.SlotClaim))
+                                             models.Override, models.Attachment, models.SlotClaim,
+                                              models.ImageMeasurement))
 
 
 def _request(client, world, name, method):

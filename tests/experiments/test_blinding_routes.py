@@ -23,7 +23,7 @@ from django.urls import get_resolver, reverse
 from colonies.models import Deviation
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 from experiments import services
-from experiments.models import CAUTION_ELECTRICAL, CAUTION_UV, Stimulus
+from experiments.models import CAUTION_ELECTRICAL, CAUTION_UV, ImageMeasurement, Stimulus
 from tests.experiments.builders import (ELECTRICAL, UV, days_ago, make_cohort, make_protocol, make_study, today,
                                         uv_values)
 from tests.factories import make_user
@@ -62,6 +62,13 @@ def world(db, settings, tmp_path):
     attachment = services.add_attachment(user=people.operator_a, trial=glow, kind="photo", caption=f"{GLOW} at 60 s",
                                          upload=SimpleUploadedFile(f"{GLOW}-dish.png", PNG))
 
+    # An image measurement of A's trial, its file named by the condition (as an operator might name it).
+    frames = [{"t_s": 0.0, "clusters": 1, "largest_fraction": 1.0, "worm_area_px": 900, "largest_area_px": 900}]
+    measurement = ImageMeasurement.objects.create(
+        trial=glow, source="photos", sha256="0" * 64, threshold=0.5, window_s=600, frames_total=1, frames_done=1,
+        frames=frames, status="done", censored=True, finished_at=days_ago(9), requested_by=people.operator_a,
+        files=[{"attachment": attachment.pk, "name": attachment.name, "sha256": "0" * 64, "size_bytes": len(PNG)}])
+
     services.claim_slot(user=people.operator_b, study=study, slot=slot_of[PULSE])
     electrical = {"kind": Stimulus.ELECTRICAL, "wavelength_nm": None, "irradiance_mw_cm2": None, "duration_s": None,
                   "voltage_v": 7.77, "electrode_gap_cm": 2.5, "pulse_width_ms": 10.0, "pulse_count": 20}
@@ -73,7 +80,7 @@ def world(db, settings, tmp_path):
     booking = services.book(user=people.owner, protocol=protocol, tank=cohort.origin_tank, animals=5,
                             needed_on=today())
     return SimpleNamespace(people=people, protocol=protocol, cohort=cohort, study=study, glow=glow, pulse=pulse,
-                           attachment=attachment, booking=booking, trials=[glow, pulse], slot_of=slot_of,
+                           attachment=attachment, measurement=measurement, booking=booking, trials=[glow, pulse], slot_of=slot_of,
                            deviation=Deviation.objects.get())
 
 
@@ -103,8 +110,9 @@ def _values(name: str, param: str, w) -> list:
     if param == "action":
         return ["exclude", "void"]
     if param == "pk":
-        by_name = {"attachment-add": w.trials, "attachment": [w.attachment]}
-        by_prefix = {"protocol": [w.protocol], "booking": [w.booking], "cohort": [w.cohort], "trial": w.trials}
+        by_name = {"attachment-add": w.trials, "attachment": [w.attachment], "measurement-new": w.trials}
+        by_prefix = {"protocol": [w.protocol], "booking": [w.booking], "cohort": [w.cohort], "trial": w.trials,
+                     "measurement": [w.measurement]}
         objects = by_name.get(name) or by_prefix.get(name.split("-")[0])
         if objects:
             return [o.pk for o in objects]

@@ -29,7 +29,7 @@ def facility(db):
 def test_demo_builds_a_meaningful_study(facility, seed):
     counts = demo.load(seed=seed, now=timezone.now(), users=facility)
     assert counts == {"protocols": 3, "bookings": 16, "cohorts": 11, "studies": 2, "trials": 32, "overrides": 1,
-                      "expired_bookings": 1}
+                      "expired_bookings": 1, "image_series": 8}
     study = Study.objects.get(code="uv-dispersal-01")
     assert study.trials.count() == 30 and not study.is_blind
     trials = list(study.trials.select_related("study", "cohort__origin_tank", "protocol", "run_by", "scored_by",
@@ -43,3 +43,18 @@ def test_demo_builds_a_meaningful_study(facility, seed):
     assert Booking.objects.filter(status=Booking.Status.EXPIRED).count() == 1
     assert Cohort.objects.filter(end="").count() == 2
     assert Trial.objects.filter(study__code="shock-pilot-01").count() == 2
+
+
+@pytest.mark.parametrize("seed", [7, 2026])
+def test_demo_study_has_photo_series_and_agreement_figures(facility, seed):
+    from experiments import measuring
+    from experiments.models import ImageMeasurement
+
+    demo.load(seed=seed, now=timezone.now(), users=facility)
+    study = Study.objects.get(code="uv-dispersal-01")
+    measured = ImageMeasurement.objects.filter(trial__study=study)
+    assert measured.count() == 8 and all(m.status == "done" and m.frames_total == 13 for m in measured)
+    result = measuring.study_agreement(study, list(study.trials.all()))
+    row = result.rows[0]
+    assert row.n_pairs == 8 and row.bland_altman is not None and row.kappa is not None
+    assert abs(row.bland_altman.bias) < 60  # the frames are drawn to disperse near the scored time

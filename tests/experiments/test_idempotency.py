@@ -32,6 +32,9 @@ FORMS = {
     "experiments:trial-score": True,  # a second correction is a second history entry
     "experiments:trial-set-aside": False,
     "experiments:attachment-add": True,
+    "experiments:measurement-new": True,  # the same files measured again: a second measurement
+    "experiments:measurement-rerun": True,  # each re-run of a failed measurement is another attempt
+    "experiments:measurement-void": False,  # voided already
 }
 
 
@@ -111,7 +114,8 @@ PAGES = {
     "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 1),
     # three open slots to claim, two claims to release, the trial form for the slots claimed
     "experiments:trial-new": (lambda w: reverse("experiments:trial-new", args=[w.study.code]), 6),
-    "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 3),
+    # attach, exclude, void, measure images; and the world's two measurements: void each, re-run the failed one
+    "experiments:trial-detail": (lambda w: w.trial.get_absolute_url(), 7),
     "experiments:trial-score": (lambda w: reverse("experiments:trial-score", args=[w.trial.pk]), 1),
 }
 

@@ -325,7 +325,7 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
     booking = Booking.objects.first()
     # Counts include the session, the user and the role lookup.
     pages = {
-        reverse("experiments:index"): 8, study.get_absolute_url(): 5,
+        reverse("experiments:index"): 8, study.get_absolute_url(): 6,  # 6: with the image-agreement query
         reverse("experiments:study-csv", args=[study.code]): 5,
         reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
         reverse("experiments:ledger"): 7, reverse("experiments:ledger-csv"): 5,
@@ -348,7 +348,8 @@ def test_blinded_page_query_counts_do_not_grow_with_the_data(client, manager, re
     study.blinded = True
     study.save()
     client.force_login(manager)
-    pages = {study.get_absolute_url(): 5, reverse("experiments:study-csv", args=[study.code]): 5,
+    pages = {study.get_absolute_url(): 6,  # 6: the image-vs-scorer agreement reads the measurements
+             reverse("experiments:study-csv", args=[study.code]): 5,
              reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
              reverse("experiments:study-chart-csv", args=[study.code, "km"]): 5,
              Trial.objects.filter(study=study).first().get_absolute_url(): 7}
