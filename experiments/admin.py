@@ -1,6 +1,6 @@
 """Back office: protocols (reference data, entered and approved here) and read-only views of the records.
 
-Bookings, cohorts, studies and trials are made in the app's own screens, which apply the protocol
+Bookings, cohorts, dishes, studies and trials are made in the app's own screens, which apply the protocol
 and welfare rules; here they can only be read. Nothing can be deleted.
 """
 import dataclasses
@@ -11,7 +11,7 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 
 from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
-from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Override, Protocol, Study, Trial
+from .models import SETTING_FIELDS, Allowance, Attachment, Booking, Cohort, Dish, Override, Protocol, Study, Trial
 
 # What a trial of a study still blinded to the viewer must not show, as on the trial page:
 # the condition, and the stimulus with its settings and the values derived from them.
@@ -128,6 +128,23 @@ class CohortAdmin(ReadOnlyAdmin):
     list_filter = ["end", "protocol"]
 
 
+@admin.register(Dish)
+class DishAdmin(ReadOnlyAdmin):
+    """Groups of animals taken from cohorts. A dish carries no condition or stimulus, and its page lists
+    no trials and no dose (a dish's cumulative dose would give a blinded trial's dose away)."""
+
+    list_display = ["label", "cohort", "animals", "set_up_at", "set_up_by", "end", "ended_at", "returned_to",
+                    "returned_count", "voided_at"]
+    list_filter = ["end"]
+    list_select_related = ["set_up_by", "returned_to"]
+    search_fields = ["cohort__id"]
+    date_hierarchy = "set_up_at"
+
+    @admin.display(description="dish", ordering="cohort_id")
+    def label(self, obj):
+        return obj.label
+
+
 @admin.register(Study)
 class StudyAdmin(BlindedAdmin):
     list_display = ["code", "title", "owner", "protocol", "blinded", "unblinded_at"]
@@ -140,8 +157,8 @@ class StudyAdmin(BlindedAdmin):
 
 @admin.register(Trial)
 class TrialAdmin(BlindedAdmin):
-    list_display = ["study", "slot", "code", "cohort", "condition_shown", "kind_shown", "dose_shown", "disperse_s",
-                    "censored", "voided_at"]
+    list_display = ["study", "slot", "code", "cohort", "dish", "condition_shown", "kind_shown", "dose_shown",
+                    "disperse_s", "censored", "voided_at"]
     list_filter = ["study", "censored"]
     date_hierarchy = "run_at"
     blinded_fields = BLINDED_TRIAL_FIELDS
@@ -157,7 +174,7 @@ class TrialAdmin(BlindedAdmin):
         # same test as the pages: Study.hides_conditions_from. Studies are few; trials are many.
         hidden = [s.pk for s in Study.objects.only("pk", "blinded", "unblinded_at", "owner")
                   if s.hides_conditions_from(request.user)]
-        return super().get_queryset(request).select_related("study", "cohort").annotate(
+        return super().get_queryset(request).select_related("study", "cohort", "dish").annotate(
             blind_to_viewer=Case(When(study_id__in=hidden, then=Value(True)), default=Value(False),
                                  output_field=BooleanField()))
 

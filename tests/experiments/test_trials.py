@@ -249,7 +249,7 @@ def test_attachment_is_stored_with_its_sha256(setup, researcher, settings, tmp_p
 
 
 def test_uv_values_builder_is_inside_the_default_protocol(researcher, protocol):
-    assert services.limits.check_exposure(protocol.terms(), services.limits.CohortState("C", 10, False, 0, None, 0),
+    assert services.limits.check_exposure(protocol.terms(), services.limits.GroupState("C", 10, False, 0, None, 0),
                                           services.limits.Proposal(days_ago(1), 10, "uv", {"dose_mj_cm2": 20.0,
                                                                                            "irradiance_mw_cm2": 2,
                                                                                            "duration_s": 10,
