@@ -112,7 +112,7 @@ class DrawForm(NamedErrorsMixin, forms.Form):
 class EndFields(NamedErrorsMixin, forms.Form):
     """How a group of animals ended (a cohort's animals outside dishes, or a dish): shared fields and checks."""
 
-    end = forms.ChoiceField(choices=Cohort.End.choices)
+    end = forms.ChoiceField(choices=Dish.End.choices)
     returned_to = forms.ModelChoiceField(queryset=Tank.objects.in_use(), required=False)
     returned_count = forms.IntegerField(min_value=0, required=False, label="Animals returned",
                                         error_messages={"min_value": "Animals returned %(value)s is not possible: "
@@ -155,22 +155,30 @@ class CohortEndForm(EndFields):
         super().__init__(*args, cohort=cohort, **kwargs)
         self.free = free
         self.fields["returned_count"].help_text = f"At most {free}: the cohort's animals never put in a dish."
+        if free == 0:  # every animal has its dish's end; services.end_cohort refuses any other
+            self.fields["end"].choices = [(Cohort.End.IN_DISHES.value, Cohort.End.IN_DISHES.label)]
+        else:
+            self.fields["end"].choices = Dish.End.choices
 
     def most_returned(self, data):
         return self.free, "the cohort's animals never put in a dish"
 
 
 class DishEndForm(EndFields):
-    """One form for every open dish of a cohort (the page renders it once, whatever the number of dishes)."""
+    """One form for every open dish of a cohort (the page renders it once, whatever the number of dishes).
 
-    field_order = ["dish"]
-    dish = forms.ModelChoiceField(queryset=Dish.objects.none(), label="Dish", empty_label=None)
+    `dishes` is the list of the cohort's open dishes the page has loaded already: no query of its own."""
 
-    def __init__(self, *args, cohort, dishes, **kwargs):
+    dish = forms.TypedChoiceField(coerce=int, label="Dish")
+
+    def __init__(self, *args, cohort, dishes: list[Dish], **kwargs):
         super().__init__(*args, cohort=cohort, **kwargs)
-        self.fields["dish"].queryset = dishes
-        self.fields["dish"].label_from_instance = lambda d: f"{d.label} · {d.animals} animals"
+        self.dishes = {d.pk: d for d in dishes}
+        self.fields["dish"].choices = [(d.pk, f"{d.label} · {d.animals} animals") for d in dishes]
         self.order_fields(["dish", "end", "returned_to", "returned_count", "method", "note"])
+
+    def clean_dish(self):
+        return self.dishes[self.cleaned_data["dish"]]
 
     def most_returned(self, data):
         dish = data.get("dish")

@@ -305,6 +305,8 @@ class Cohort(models.Model):
         RETURNED = "returned", "Returned to a tank"
         RETIRED = "retired", "Retired"
         DIED = "died", "Died"
+        # Every animal went into a dish, and each dish records its own end (so the cohort has none to tell).
+        IN_DISHES = "dishes", "All animals went into dishes"
 
     booking = models.OneToOneField(Booking, on_delete=models.PROTECT, related_name="cohort")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="cohorts")
@@ -377,14 +379,17 @@ class Dish(Voidable):
     deleted; the others end like a cohort: returned to a tank, retired or died.
     """
 
-    End = Cohort.End
+    class End(models.TextChoices):
+        RETURNED = "returned", "Returned to a tank"
+        RETIRED = "retired", "Retired"
+        DIED = "died", "Died"
 
     cohort = models.ForeignKey(Cohort, on_delete=models.PROTECT, related_name="dishes")
     number = models.PositiveIntegerField(help_text="The dish's number within its cohort (1, 2, ...).")
     animals = models.PositiveIntegerField(validators=[Within("animals")], help_text="Animals put in the dish.")
     set_up_at = models.DateTimeField(default=timezone.now, help_text="When the animals were put in the dish.")
     set_up_by = _user_fk()
-    end = models.CharField(max_length=10, choices=Cohort.End.choices, blank=True)
+    end = models.CharField(max_length=10, choices=End.choices, blank=True)
     ended_at = models.DateTimeField(null=True, blank=True)
     ended_by = _user_fk(null=True, blank=True)
     returned_to = models.ForeignKey(Tank, null=True, blank=True, on_delete=models.PROTECT,

@@ -274,6 +274,9 @@ def _set_end(row, *, user, end: str, returned_to: Tank | None, returned_count: i
     """Validate and set the end fields shared by cohorts and dishes (the caller holds the locks).
 
     `most` is how many animals the row can return alive, `most_text` says what they are."""
+    if end not in type(row).End.values:
+        choices = ", ".join(f"'{label}'" for label in type(row).End.labels)
+        raise Refused(f"End: {end!r} is not one of {choices}.")
     if end == Cohort.End.RETURNED:
         if returned_to is None or returned_count is None:
             raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
@@ -288,8 +291,6 @@ def _set_end(row, *, user, end: str, returned_to: Tank | None, returned_count: i
     elif end == Cohort.End.RETIRED:
         if not method.strip():
             raise Refused("Retired: say which method was used.")
-    elif end != Cohort.End.DIED:
-        raise Refused(f"Unknown end {end!r}.")
     row.end, row.ended_at, row.ended_by = end, at, user
     row.end_method, row.end_note = method.strip(), note.strip()
 
@@ -319,6 +320,12 @@ def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = Non
             raise Refused(f"End time {lab_moment(at)} is before the cohort was drawn "
                           f"({lab_moment(cohort.drawn_at)}).")
         free = cohort.size - animals_in_dishes(cohort)
+        if free == 0 and end != Cohort.End.IN_DISHES:
+            raise Refused(f"End: all {cohort.size} animals of cohort {cohort.label} went into dishes, and each dish "
+                          f"has recorded its end: choose '{Cohort.End.IN_DISHES.label}'.")
+        if free and end == Cohort.End.IN_DISHES:
+            raise Refused(f"End: {free} animal{'s' if free > 1 else ''} of cohort {cohort.label} never went into a "
+                          "dish: say what became of them (returned to a tank, retired or died).")
         _set_end(cohort, user=user, end=end, returned_to=returned_to, returned_count=returned_count, method=method,
                  note=note, at=at, species_id=cohort.origin_tank.species_id, most=free,
                  most_text="the cohort's animals never put in a dish")
@@ -331,12 +338,12 @@ def _set_up_dish(*, user, cohort: Cohort, animals, at: datetime, now: datetime) 
         raise Refused(f"Cohort {cohort.label} has ended ({cohort.get_end_display().lower()}); no dish can be set up "
                       "from it.")
     free = cohort.size - animals_in_dishes(cohort)
-    if free < 1 or not 1 <= animals <= free:
-        left = (f"{free} of its {cohort.size} animals are not in a dish yet" if free else
-                f"all {cohort.size} of its animals are in dishes already")
-        allowed = f"allowed range 1–{free}" if free else "nothing left to put in a dish"
-        raise Refused(f"Animals in the dish {animals} is not possible: cohort {cohort.label} has {left} "
-                      f"({allowed}). Nothing was set up.")
+    if free < 1:
+        raise Refused(f"Animals in the dish {animals} is not possible: all {cohort.size} animals of cohort "
+                      f"{cohort.label} are in dishes already. Nothing was set up.")
+    if not 1 <= animals <= free:
+        raise Refused(f"Animals in the dish {animals} is not possible: allowed range 1–{free} (the animals of cohort "
+                      f"{cohort.label} not in a dish yet, of {cohort.size} drawn). Nothing was set up.")
     if at < cohort.drawn_at.replace(second=0, microsecond=0):  # forms record whole minutes
         raise Refused(f"Set up at {lab_moment(at)} is before cohort {cohort.label} was drawn "
                       f"({lab_moment(cohort.drawn_at)}).")

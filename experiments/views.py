@@ -275,7 +275,7 @@ def _cohort_page(request, cohort, end_form=None, dish_form=None, dish_end_form=N
            "in_dishes": cohort.size - free, "open_dishes": open_dishes,
            "end_form": end_form or CohortEndForm(cohort=cohort, free=free),
            "dish_form": dish_form or DishForm(free=free),
-           "dish_end_form": dish_end_form or DishEndForm(cohort=cohort, dishes=cohort.dishes.open()),
+           "dish_end_form": dish_end_form or DishEndForm(cohort=cohort, dishes=open_dishes),
            "may_end": may_change, "may_set_up": may_change and cohort.is_active and free > 0,
            "may_end_dishes": may_end_dishes and cohort.is_active}
     return render(request, "experiments/cohort_detail.html", ctx, status=status)
@@ -328,7 +328,7 @@ def dish_new(request, pk):
 @once_per_submission
 def dish_end(request, pk):
     cohort = _get_cohort(pk)
-    form = DishEndForm(request.POST, cohort=cohort, dishes=cohort.dishes.open())
+    form = DishEndForm(request.POST, cohort=cohort, dishes=list(cohort.dishes.open()))
     if not form.is_valid():
         messages.error(request, "Nothing was saved: " + errors_text(form))
         return _cohort_page(request, cohort, dish_end_form=form, status=400)

@@ -255,6 +255,16 @@ class Migration(migrations.Migration):
             model_name='dish',
             constraint=models.CheckConstraint(condition=models.Q(('end', ''), ('ended_at__isnull', False), _connector='OR'), name='dish_end_has_time'),
         ),
+        migrations.AlterField(
+            model_name='cohort',
+            name='end',
+            field=models.CharField(blank=True, choices=[('returned', 'Returned to a tank'), ('retired', 'Retired'), ('died', 'Died'), ('dishes', 'All animals went into dishes')], max_length=10),
+        ),
+        migrations.AlterField(
+            model_name='historicalcohort',
+            name='end',
+            field=models.CharField(blank=True, choices=[('returned', 'Returned to a tank'), ('retired', 'Retired'), ('died', 'Died'), ('dishes', 'All animals went into dishes')], max_length=10),
+        ),
         migrations.RunPython(dishes_from_cohorts, cohorts_from_dishes),
         migrations.AlterField(
             model_name='trial',
