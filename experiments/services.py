@@ -276,7 +276,7 @@ def _set_end(row, *, user, end: str, returned_to: Tank | None, returned_count: i
     `most` is how many animals the row can return alive, `most_text` says what they are."""
     if end not in type(row).End.values:
         choices = ", ".join(f"'{label}'" for label in type(row).End.labels)
-        raise Refused(f"End: {end!r} is not one of {choices}.")
+        raise Refused(f"End: '{end}' is not one of {choices}.")
     if end == Cohort.End.RETURNED:
         if returned_to is None or returned_count is None:
             raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
@@ -389,8 +389,9 @@ def end_dish(*, user, dish: Dish, end: str, returned_to: Tank | None = None, ret
         last_run = dish.trials.counting().aggregate(last=Max("run_at"))["last"]
         earliest = max(dish.set_up_at, last_run) if last_run else dish.set_up_at
         if at < earliest.replace(second=0, microsecond=0):
-            what = "its last trial ran" if last_run and last_run >= dish.set_up_at else "it was set up"
-            raise Refused(f"End time {lab_moment(at)} is before dish {dish.label} {what} ({lab_moment(earliest)}).")
+            what = (f"the last trial on dish {dish.label} ran" if last_run and last_run >= dish.set_up_at
+                    else f"dish {dish.label} was set up")
+            raise Refused(f"End time {lab_moment(at)} is before {what} ({lab_moment(earliest)}).")
         if at > now + FUTURE_LEEWAY:
             raise Refused(f"End time {lab_moment(at)} is in the future; record the end once it has happened.")
         _set_end(dish, user=user, end=end, returned_to=returned_to, returned_count=returned_count, method=method,

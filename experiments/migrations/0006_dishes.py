@@ -17,15 +17,23 @@ Trial.dish is then made required. Reversing adds returned dish animals back to t
 """
 
 import django.db.models.deletion
-from django.db.models import Max, OuterRef, Q, Subquery
 import django.utils.timezone
 import experiments.validators
 import simple_history.models
 from django.conf import settings
 from django.db import migrations, models
+from django.db.models import Max, OuterRef, Q, Subquery
 
 
 REASON = "Migration 0006: one dish per cohort holding all its trials"
+
+
+def _fire_deferred_checks(schema_editor):
+    """Run the deferred foreign-key checks of the rows just written: PostgreSQL refuses to alter a table
+    (Trial.dish, next) while it has pending trigger events."""
+    if schema_editor.connection.vendor == "postgresql":
+        schema_editor.execute("SET CONSTRAINTS ALL IMMEDIATE")
+        schema_editor.execute("SET CONSTRAINTS ALL DEFERRED")
 
 
 def _history_row(model, obj, **extra):
@@ -71,11 +79,7 @@ def dishes_from_cohorts(apps, schema_editor):
                                             f"({c.returned_count} not in the dish)") for c in changed], batch_size=500)
     Trial.objects.update(dish_id=Subquery(Dish.objects.filter(cohort_id=OuterRef("cohort_id"), number=1)
                                           .values("pk")[:1]))
-    if schema_editor.connection.vendor == "postgresql":
-        # Fire the deferred foreign-key checks of these writes now: PostgreSQL refuses to alter a table
-        # (Trial.dish NOT NULL below) while it has pending trigger events.
-        schema_editor.execute("SET CONSTRAINTS ALL IMMEDIATE")
-        schema_editor.execute("SET CONSTRAINTS ALL DEFERRED")
+    _fire_deferred_checks(schema_editor)
 
 
 def cohorts_from_dishes(apps, schema_editor):
@@ -89,6 +93,7 @@ def cohorts_from_dishes(apps, schema_editor):
         if back:
             Cohort.objects.filter(pk=cohort.pk).update(returned_count=min(cohort.size, cohort.returned_count + back))
     Trial.objects.update(dish_id=None)
+    _fire_deferred_checks(schema_editor)
 
 
 class Migration(migrations.Migration):
