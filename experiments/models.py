@@ -353,7 +353,7 @@ class Cohort(models.Model):
 
     @property
     def subject(self) -> str:
-        """How a protocol-limit deviation names this cohort."""
+        """How protocol-limit deviations named a cohort before dishes (they now name the dish: Dish.subject)."""
         return f"cohort:{self.pk}"
 
     def get_absolute_url(self):
