@@ -271,6 +271,9 @@ def _cohort_page(request, cohort, end_form=None, dish_form=None, dish_end_form=N
     open_dishes = [d for d in dishes if d.is_open]
     may_change = has_role(request.user, *RUN) and _may_end_cohort(request.user, cohort)
     may_end_dishes = has_role(request.user, *RUN) and any(_may_end_dish(request.user, d) for d in open_dishes)
+    for r in dish_rows:  # a dish set up in error (no trial) can be voided by who may end it
+        r["may_void"] = may_end_dishes and r["dish"].is_open and not r["exposures"] \
+            and _may_end_dish(request.user, r["dish"])
     ctx = {"cohort": cohort, "rows": rows, "protocol": protocol, "dish_rows": dish_rows, "free": free,
            "in_dishes": cohort.size - free, "open_dishes": open_dishes,
            "end_form": end_form or CohortEndForm(cohort=cohort, free=free),
@@ -328,7 +331,10 @@ def dish_new(request, pk):
 @once_per_submission
 def dish_end(request, pk):
     cohort = _get_cohort(pk)
-    form = DishEndForm(request.POST, cohort=cohort, dishes=list(cohort.dishes.open()))
+    dishes = list(cohort.dishes.open())
+    if not any(_may_end_dish(request.user, d) for d in dishes) and not _may_end_cohort(request.user, cohort):
+        raise PermissionDenied("Only the researcher who drew the cohort, who set up the dish, or a manager may end it.")
+    form = DishEndForm(request.POST, cohort=cohort, dishes=dishes)
     if not form.is_valid():
         messages.error(request, "Nothing was saved: " + errors_text(form))
         return _cohort_page(request, cohort, dish_end_form=form, status=400)
