@@ -350,7 +350,7 @@ REQUIRED_FOR_KIND = {
 class TrialForm(OutcomeFields):
     slot = forms.TypedChoiceField(coerce=int, help_text="Open slots in the randomised run order; the first is next.")
     dish = forms.ModelChoiceField(queryset=Dish.objects.none(), required=False, label="Dish",
-                                  empty_label="New dish from the cohort below",
+                                  empty_label="New dish from a cohort",
                                   help_text="The group of animals this trial exposes: an open dish, whose earlier "
                                             "exposures, rest and dose count, or a new dish.")
     cohort = forms.ModelChoiceField(queryset=Cohort.objects.none(), required=False,

@@ -363,6 +363,11 @@ class Cohort(models.Model):
     def is_active(self) -> bool:
         return not self.end
 
+    @property
+    def ended_in_dishes(self) -> bool:
+        """Every animal went into a dish: the cohort's end tells nothing of its own."""
+        return self.end == self.End.IN_DISHES
+
 
 class DishQuerySet(VoidableQuerySet):
     def open(self):

@@ -360,7 +360,7 @@ def test_trial_page_sets_up_a_new_dish_or_picks_an_open_one(client, drawn, resea
     dish = Dish.objects.get()
     assert dish.animals == 8 and dish.set_up_by == researcher
     page = page_text(client.get(url))
-    assert f"{dish.label} · 8 animals" in page and "New dish from the cohort below" in page
+    assert f"{dish.label} · 8 animals" in page and "New dish from a cohort" in page
     url, data = _trial_form(study, dish=str(dish.pk), run_at=days_ago(1).strftime("%Y-%m-%dT%H:%M"))
     response = client.post(url, data)
     assert response.status_code == 302 and Dish.objects.count() == 1
