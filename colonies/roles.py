@@ -91,7 +91,8 @@ ROLE_PERMISSIONS: dict[str, list[str]] = {
         # records: read here, entered and corrected in the app
         *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "deadremoval", "split", "splitpart",
                 "deviation"),
-        *_perms("experiments", "view", "booking", "cohort", "study", "trial", "override", "attachment", "slotclaim"),
+        *_perms("experiments", "view", "booking", "cohort", "dish", "study", "trial", "override", "attachment",
+                "slotclaim"),
     ],
 }
 

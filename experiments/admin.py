@@ -1,6 +1,6 @@
 """Back office: protocols (reference data, entered and approved here) and read-only views of the records.
 
-Bookings, cohorts, studies and trials are made in the app's own screens, which apply the protocol
+Bookings, cohorts, dishes, studies and trials are made in the app's own screens, which apply the protocol
 and welfare rules; here they can only be read. Nothing can be deleted.
 """
 import dataclasses
@@ -12,8 +12,8 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
 from . import blinding
-from .models import (Allowance, Attachment, Booking, Cohort, ImageMeasurement, Override, Protocol, SlotClaim, Study,
-                     Trial)
+from .models import (Allowance, Attachment, Booking, Cohort, Dish, ImageMeasurement, Override, Protocol, SlotClaim,
+                     Study, Trial)
 
 # What a row must not show to a viewer blinded to it: experiments/blinding.py decides, as on the app's pages.
 BLINDED_TRIAL_FIELDS = blinding.HIDDEN_TRIAL_FIELDS
@@ -139,6 +139,23 @@ class CohortAdmin(ReadOnlyAdmin):
     list_filter = ["end", "protocol"]
 
 
+@admin.register(Dish)
+class DishAdmin(ReadOnlyAdmin):
+    """Groups of animals taken from cohorts. A dish carries no condition or stimulus, and its page lists
+    no trials and no dose (a dish's cumulative dose would give a blinded trial's dose away)."""
+
+    list_display = ["label", "cohort", "animals", "set_up_at", "set_up_by", "end", "ended_at", "returned_to",
+                    "returned_count", "voided_at"]
+    list_filter = ["end"]
+    list_select_related = ["set_up_by", "returned_to"]
+    search_fields = ["cohort__id"]
+    date_hierarchy = "set_up_at"
+
+    @admin.display(description="dish", ordering="cohort_id")
+    def label(self, obj):
+        return obj.label
+
+
 @admin.register(Study)
 class StudyAdmin(BlindedAdmin):
     list_display = ["code", "title", "owner", "protocol", "blinded", "unblinded_at"]
@@ -151,8 +168,8 @@ class StudyAdmin(BlindedAdmin):
 
 @admin.register(Trial)
 class TrialAdmin(BlindedAdmin):
-    list_display = ["study", "slot", "code", "cohort", "condition_shown", "kind_shown", "dose_shown", "disperse_s",
-                    "censored", "voided_at"]
+    list_display = ["study", "slot", "code", "cohort", "dish", "condition_shown", "kind_shown", "dose_shown",
+                    "disperse_s", "censored", "voided_at"]
     list_filter = ["study", "censored"]
     date_hierarchy = "run_at"
     blinded_fields = BLINDED_TRIAL_FIELDS
@@ -164,7 +181,7 @@ class TrialAdmin(BlindedAdmin):
         return obj
 
     def get_queryset(self, request):
-        return _marked_blind(request, super().get_queryset(request).select_related("study", "cohort"))
+        return _marked_blind(request, super().get_queryset(request).select_related("study", "cohort", "dish"))
 
 
 @admin.register(Override)

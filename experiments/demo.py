@@ -5,7 +5,10 @@ use, so every record has its history and every limit is checked. Deterministic f
 `now`. Needs the colonies demo first: tanks LV-01..LV-10 of Lumbriculus variegatus with censuses.
 
 Main study: UV-A (365 nm) dispersal of blackworm clumps at four doses and a sham, 6 dishes each,
-30 trials in permuted blocks, 10 cohorts of 10 animals each exposed three times a day apart. The
+30 trials in permuted blocks, 10 dishes of 8 animals each exposed three times a day apart. The
+dishes come from four cohorts: three of 24 animals split into three dishes of 8 (run within the
+same hour: each dish is its own group of animals for the protocol's limits) and one of 10 with one
+dish of 8 (two animals stay in reserve). The
 fraction of clumps dispersing within the 600 s window follows a log-logistic curve (EC50 near
 12 mJ/cm²); the numbers dispersing per condition are fixed from that curve so that every seed gives
 a study with a fit, and the seed chooses which dishes disperse and when.
@@ -20,13 +23,15 @@ from django.utils import timezone
 from colonies.models import Tank
 
 from . import demo_imaging, services
-from .models import Allowance, Booking, Cohort, Protocol, Stimulus, Study
+from .models import Allowance, Booking, Cohort, Dish, Protocol, Stimulus, Study
 
 WINDOW_S = 600
 DOSES = [0.0, 5.0, 10.0, 20.0, 40.0]  # mJ/cm² per exposure; 0 = sham
 CONDITIONS = ["sham (no light)", "UV 5 mJ/cm²", "UV 10 mJ/cm²", "UV 20 mJ/cm²", "UV 40 mJ/cm²"]
 IRRADIANCE_MW_CM2 = 2.0  # the dose is varied through the exposure time
 REPLICATES = 6
+DISH_ANIMALS = 8
+COHORTS = (24, 24, 24, 10)  # animals drawn per cohort; 24 = three dishes of 8
 EC50, SLOPE, SHAM_P = 12.0, 3.5, 0.12  # invented
 
 
@@ -102,13 +107,15 @@ def load(*, seed: int, now, users: dict) -> dict:
     if len(tanks) < 10:
         raise ValueError("The trials demo needs tanks LV-01..LV-10 from the colonies demo.")
 
-    # Ten cohorts of ten animals, drawn on one morning three weeks ago.
+    # Four cohorts drawn on one morning three weeks ago; their ten dishes are set up with their first trials.
     start = today - timedelta(days=21)
     cohorts = []
-    for tank in tanks:
-        booking = services.book(user=ravi, protocol=main, tank=tank, animals=10, needed_on=start,
+    for tank, animals in zip(tanks, COHORTS):
+        booking = services.book(user=ravi, protocol=main, tank=tank, animals=animals, needed_on=start,
                                 purpose="UV dispersal study", today=start - timedelta(days=3))
         cohorts.append(services.draw(user=ravi, booking=booking, at=_at(start, 8, rng.randint(0, 40), tz)))
+    dishes: dict[int, Dish] = {}  # position in the day's run order -> its dish
+    alive = {position: DISH_ANIMALS for position in range(10)}  # a death at 24 h leaves the dish one short
 
     study = services.create_study(
         user=ravi, code="uv-dispersal-01", title="UV-A dose and the dispersal of blackworm clumps", protocol=main,
@@ -127,7 +134,7 @@ def load(*, seed: int, now, users: dict) -> dict:
     overrides = 0
     for entry in study.allocation:
         day_index, position = divmod(entry["slot"] - 1, 10)
-        cohort = cohorts[position]
+        cohort = cohorts[position // 3]  # positions 0-2: the first cohort's three dishes, and so on
         run_at = _at(start + timedelta(days=day_index + 1), 9, 0, tz) + timedelta(minutes=25 * position)
         reason = ""
         if day_index == 1 and position == 3:
@@ -146,36 +153,44 @@ def load(*, seed: int, now, users: dict) -> dict:
             disperse_s, censored = float(WINDOW_S), True
         values = {
             "vessel": "glass Petri dish", "arena_diameter_mm": 90.0, "water_volume_ml": 25.0,
-            "water_temp_c": round(rng.gauss(21.5, 0.3), 1), "light_lux": 3.0, "acclimation_min": 15.0, "animals": 10,
+            "water_temp_c": round(rng.gauss(21.5, 0.3), 1), "light_lux": 3.0, "acclimation_min": 15.0,
+            "animals": alive[position],
             "kind": Stimulus.NONE if dose == 0 else Stimulus.UV, "run_at": run_at,
             "wavelength_nm": 365.0 if dose else None, "irradiance_mw_cm2": IRRADIANCE_MW_CM2 if dose else None,
             "duration_s": dose / IRRADIANCE_MW_CM2 if dose else None,
             "aggregate_s": float(rng.randint(180, 420)), "disperse_s": float(disperse_s), "censored": censored,
-            "clusters": _clusters(rng, None if censored else disperse_s, 10),
+            "clusters": _clusters(rng, None if censored else disperse_s, alive[position]),
             "mortality_24h": 1 if rng.random() < 0.07 else 0, "note": "",
         }
         operator = manager if reason else ravi
         services.claim_slot(user=operator, study=study, slot=entry["slot"], now=run_at - timedelta(minutes=20))
+        # The first trial of a dish sets it up in the same step; the later ones expose the same animals again.
+        group = {"dish": dishes[position]} if position in dishes else {"cohort": cohort, "dish_animals": DISH_ANIMALS}
         result = services.record_trial(user=operator, study=study, slot=entry["slot"],
-                                       cohort=cohort, values=values, override_reason=reason,
+                                       values=values, override_reason=reason, **group,
                                        now=min(now, run_at + timedelta(hours=25)))  # completed with the 24 h count
+        dishes[position] = result.trial.dish
+        alive[position] -= values["mortality_24h"]
         overrides += bool(result.override)
     # Photo series of some dishes, measured before unblinding (experiments/demo_imaging.py).
     image_series = demo_imaging.add_series(study=study, user=ravi, seed=seed)
     services.unblind(user=ravi, study=study, at=_at(start + timedelta(days=5), 16, 0, tz),
                      reason="All 30 trials scored; primary analysis as planned.")
 
-    # Cohorts end: most go back to their tanks two days after their last trial; one retired, one kept.
-    for i, cohort in enumerate(cohorts):
-        at = _at(start + timedelta(days=5), 10, 0, tz)
-        if i == 8:
-            services.end_cohort(user=ravi, cohort=cohort, end=Cohort.End.RETIRED, at=at,
-                                method="Anaesthetised in carbonated water and fixed for histology (lab SOP 12)")
-        elif i < 8:
-            dead = sum(t.mortality_24h or 0 for t in cohort.trials.all())
-            services.end_cohort(user=ravi, cohort=cohort, end=Cohort.End.RETURNED, returned_to=cohort.origin_tank,
-                                returned_count=cohort.size - dead, at=at,
-                                note=f"{dead} died after exposure" if dead else "")
+    # Dishes end two days after their last trial: most go back to their tanks, one is retired for histology,
+    # the last is kept (with its cohort's two reserve animals); then the three cohorts fully in dishes end.
+    at = _at(start + timedelta(days=5), 10, 0, tz)
+    for position, dish in sorted(dishes.items()):
+        if position == 8:
+            services.end_dish(user=ravi, dish=dish, end=Dish.End.RETIRED, at=at, now=now,
+                              method="Anaesthetised in carbonated water and fixed for histology (lab SOP 12)")
+        elif position < 8:
+            dead = sum(t.mortality_24h or 0 for t in dish.trials.all())
+            services.end_dish(user=ravi, dish=dish, end=Dish.End.RETURNED, returned_to=cohorts[position // 3].origin_tank,
+                              returned_count=dish.animals - dead, at=at, now=now,
+                              note=f"{dead} died after exposure" if dead else "")
+    for cohort in cohorts[:3]:
+        services.end_cohort(user=ravi, cohort=cohort, end=Cohort.End.IN_DISHES, at=at)
 
     # A small blinded electrical pilot, still running: two of six dishes done and scored blind.
     pilot = services.create_study(
@@ -191,7 +206,7 @@ def load(*, seed: int, now, users: dict) -> dict:
         volts = {"sham": 0.0, "field 1 V/cm": 4.0, "field 2 V/cm": 8.0}[entry["condition"]]
         values = {"vessel": "acrylic channel with stainless electrodes", "arena_diameter_mm": 40.0,
                   "water_volume_ml": 10.0, "water_temp_c": 21.0, "light_lux": 3.0, "acclimation_min": 15.0,
-                  "animals": 8, "run_at": _at(today - timedelta(days=2 - n), 10, 0, tz),
+                  "animals": DISH_ANIMALS, "run_at": _at(today - timedelta(days=2 - n), 10, 0, tz),
                   "aggregate_s": 260.0, "disperse_s": float(WINDOW_S if volts == 0 else rng.randint(90, 400)),
                   "censored": volts == 0, "clusters": [], "note": ""}
         if volts:
@@ -200,8 +215,9 @@ def load(*, seed: int, now, users: dict) -> dict:
         else:
             values.update(kind=Stimulus.NONE)
         services.claim_slot(user=ravi, study=pilot, slot=entry["slot"], now=values["run_at"] - timedelta(minutes=20))
-        services.record_trial(user=ravi, study=pilot, slot=entry["slot"], cohort=pilot_cohort, values=values,
-                              now=min(now, values["run_at"] + timedelta(minutes=15)))
+        group = {"dish": pilot_dish} if n else {"cohort": pilot_cohort, "dish_animals": DISH_ANIMALS}
+        pilot_dish = services.record_trial(user=ravi, study=pilot, slot=entry["slot"], values=values, **group,
+                                           now=min(now, values["run_at"] + timedelta(minutes=15))).trial.dish
 
     # Bookings ahead, one cancelled and one that was never drawn (expires).
     for days, tank, animals, purpose in ((1, tanks[1], 10, "Pilot dish 3"), (4, tanks[6], 24, "Second UV series"),
@@ -216,5 +232,6 @@ def load(*, seed: int, now, users: dict) -> dict:
     expired = services.expire_bookings(today)
 
     return {"protocols": 3, "bookings": Booking.objects.count(), "cohorts": Cohort.objects.count(),
+            "dishes": Dish.objects.count(),
             "studies": 2, "trials": study.trials.count() + pilot.trials.count(), "overrides": overrides,
             "expired_bookings": expired, "image_series": image_series}

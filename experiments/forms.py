@@ -7,7 +7,7 @@ from colonies.validators import FUTURE_LEEWAY, MAX_TEXT, NamedErrorsMixin, check
 
 from . import filetypes, uploads
 from .allocation import BLOCK
-from .models import LATE_OUTCOME_FIELDS, Attachment, Cohort, Protocol, Stimulus, Study, Trial
+from .models import LATE_OUTCOME_FIELDS, Attachment, Cohort, Dish, Protocol, Stimulus, Study, Trial
 from .validators import BOUNDS, MAX_BOOKING_AHEAD_DAYS, MAX_CONDITIONS, outside_message
 
 DATE = forms.DateInput(attrs={"type": "date"}, format="%Y-%m-%d")
@@ -109,8 +109,10 @@ class DrawForm(NamedErrorsMixin, forms.Form):
         return count
 
 
-class CohortEndForm(NamedErrorsMixin, forms.Form):
-    end = forms.ChoiceField(choices=Cohort.End.choices)
+class EndFields(NamedErrorsMixin, forms.Form):
+    """How a group of animals ended (a cohort's animals outside dishes, or a dish): shared fields and checks."""
+
+    end = forms.ChoiceField(choices=Dish.End.choices)
     returned_to = forms.ModelChoiceField(queryset=Tank.objects.in_use(), required=False)
     returned_count = forms.IntegerField(min_value=0, required=False, label="Animals returned",
                                         error_messages={"min_value": "Animals returned %(value)s is not possible: "
@@ -124,6 +126,9 @@ class CohortEndForm(NamedErrorsMixin, forms.Form):
         self.fields["returned_to"].queryset = Tank.objects.in_use().filter(species_id=cohort.origin_tank.species_id)
         self.fields["returned_to"].initial = cohort.origin_tank_id
 
+    def most_returned(self, data) -> tuple[int, str]:
+        raise NotImplementedError
+
     def clean(self):
         data = super().clean()
         end = data.get("end")
@@ -133,12 +138,77 @@ class CohortEndForm(NamedErrorsMixin, forms.Form):
             count = data.get("returned_count")
             if count is None:
                 self.add_error("returned_count", "Give the number of animals returned.")
-            elif count > self.cohort.size:
-                self.add_error("returned_count", f"Animals returned {count} is not possible: allowed range "
-                                                 f"0–{self.cohort.size} (the cohort).")
+            elif self.most_returned(data) is not None:
+                most, what = self.most_returned(data)
+                if count > most:
+                    self.add_error("returned_count", f"Animals returned {count} is not possible: allowed range "
+                                                     f"0–{most} ({what}).")
         if end == Cohort.End.RETIRED and not data.get("method", "").strip():
             self.add_error("method", "Say which method was used.")
         return data
+
+
+class CohortEndForm(EndFields):
+    """The end of the cohort's animals never put in a dish (each dish records its own end)."""
+
+    def __init__(self, *args, cohort, free: int, **kwargs):
+        super().__init__(*args, cohort=cohort, **kwargs)
+        self.free = free
+        self.fields["returned_count"].help_text = f"At most {free}: the cohort's animals never put in a dish."
+        if free == 0:  # every animal has its dish's end; services.end_cohort refuses any other
+            self.fields["end"].choices = [(Cohort.End.IN_DISHES.value, Cohort.End.IN_DISHES.label)]
+        else:
+            self.fields["end"].choices = Dish.End.choices
+
+    def most_returned(self, data):
+        return self.free, "the cohort's animals never put in a dish"
+
+
+class DishEndForm(EndFields):
+    """One form for every open dish of a cohort (the page renders it once, whatever the number of dishes).
+
+    `dishes` is the list of the cohort's open dishes the page has loaded already: no query of its own."""
+
+    dish = forms.TypedChoiceField(coerce=int, label="Dish")
+
+    def __init__(self, *args, cohort, dishes: list[Dish], **kwargs):
+        super().__init__(*args, cohort=cohort, **kwargs)
+        self.dishes = {d.pk: d for d in dishes}
+        self.fields["dish"].choices = [(d.pk, f"{d.label} · {d.animals} animals") for d in dishes]
+        self.order_fields(["dish", "end", "returned_to", "returned_count", "method", "note"])
+
+    def clean_dish(self):
+        return self.dishes[self.cleaned_data["dish"]]
+
+    def most_returned(self, data):
+        dish = data.get("dish")
+        return None if dish is None else (dish.animals, f"the animals put in dish {dish.label}")
+
+
+class DishForm(NamedErrorsMixin, forms.Form):
+    """Put some of a cohort's animals in a new dish (before its first trial)."""
+
+    animals = forms.IntegerField(min_value=1, label="Animals in the dish",
+                                 error_messages={"min_value": "Animals in the dish %(value)s is not possible: "
+                                                              "at least 1."})
+    set_up_at = forms.DateTimeField(widget=DATETIME, required=False, label="Set up at", help_text="Empty: now.")
+
+    def __init__(self, *args, free: int, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.free = free
+        self.fields["animals"].widget.attrs["max"] = max(free, 1)
+        self.fields["animals"].help_text = f"At most {free}: the cohort's animals not in a dish yet."
+
+    def clean_animals(self):
+        animals = self.cleaned_data["animals"]
+        if animals > self.free:
+            raise forms.ValidationError(f"Animals in the dish {animals} is not possible: allowed range "
+                                        f"1–{self.free} (the cohort's animals not in a dish yet).")
+        return animals
+
+    def clean_set_up_at(self):
+        at = self.cleaned_data.get("set_up_at")
+        return None if at is None else check_moment("Set up at", at)
 
 
 class StudyForm(NamedErrorsMixin, forms.Form):
@@ -297,7 +367,16 @@ REQUIRED_FOR_KIND = {
 
 class TrialForm(OutcomeFields):
     slot = forms.TypedChoiceField(coerce=int, help_text="Open slots in the randomised run order; the first is next.")
-    cohort = forms.ModelChoiceField(queryset=Cohort.objects.none(), help_text="Active cohorts under the study's protocol.")
+    dish = forms.ModelChoiceField(queryset=Dish.objects.none(), required=False, label="Dish",
+                                  empty_label="New dish from a cohort",
+                                  help_text="The group of animals this trial exposes: an open dish, whose earlier "
+                                            "exposures, rest and dose count, or a new dish.")
+    cohort = forms.ModelChoiceField(queryset=Cohort.objects.none(), required=False,
+                                    help_text="For a new dish: active cohorts under the study's protocol.")
+    dish_animals = forms.IntegerField(min_value=1, required=False, label="Animals in the new dish",
+                                      help_text="Empty: the animals in the arena.",
+                                      error_messages={"min_value": "Animals in the new dish %(value)s is not "
+                                                                   "possible: at least 1."})
     run_at = forms.DateTimeField(widget=DATETIME, label="Stimulus applied at")
     override_reason = reason_field(
         required=False, label="Manager's override: reason",
@@ -309,7 +388,7 @@ class TrialForm(OutcomeFields):
         widgets = {"note": forms.Textarea(attrs={"rows": 2})}
         labels = {"censored": "Still clumped at the end of the window (censored)", "mortality_24h": "Dead at 24 h"}
 
-    def __init__(self, *args, study: Study, slots: list[dict], cohorts, can_override: bool, **kwargs):
+    def __init__(self, *args, study: Study, slots: list[dict], cohorts, dishes, can_override: bool, **kwargs):
         super().__init__(*args, **kwargs)
         self.study = study
         # Only the slots this operator claimed (views._open_slots): theirs to see and to record.
@@ -317,6 +396,8 @@ class TrialForm(OutcomeFields):
                                                    f"(replicate {s['replicate']})") for s in slots]
         self.fields["slot"].help_text = "The slots you claimed; claim another open slot above to run it."
         self.fields["cohort"].queryset = cohorts
+        self.fields["dish"].queryset = dishes
+        self.fields["dish"].label_from_instance = lambda d: f"{d.label} · {d.animals} animals"
         self.fields["run_at"].initial = timezone.localtime().replace(second=0, microsecond=0)
         self.fields["kind"].widget.attrs["data-stimulus-kind"] = "1"
         self.fields["animals"].widget.attrs["min"] = 1
@@ -353,7 +434,23 @@ class TrialForm(OutcomeFields):
         for name in REQUIRED_FOR_KIND.get(kind, ()):
             if data.get(name) in (None, ""):
                 self.add_error(name, f"Required for a {Stimulus(kind).label.lower()} stimulus.")
+        dish, cohort = data.get("dish"), data.get("cohort")
+        if dish is not None and cohort is not None and dish.cohort_id != cohort.pk:
+            self.add_error("dish", f"Dish {dish.label} is from cohort {dish.cohort.label}, not {cohort.label}: "
+                                   "choose the dish, or the cohort for a new dish.")
+        elif dish is None and cohort is None and "dish" not in self.errors and "cohort" not in self.errors:
+            self.add_error("cohort", "Choose an open dish, or the cohort to set up a new dish from.")
+        if dish is not None and data.get("dish_animals") is not None:
+            self.add_error("dish_animals", f"Dish {dish.label} is set up already ({dish.animals} animals); leave "
+                                           "'Animals in the new dish' empty.")
         return data
+
+    def group_values(self) -> dict:
+        """The keywords of services.record_trial that say which animals: a dish, or a cohort for a new one."""
+        data = self.cleaned_data
+        if data.get("dish") is not None:
+            return {"dish": data["dish"]}
+        return {"cohort": data["cohort"], "dish_animals": data.get("dish_animals")}
 
     def _post_clean(self):
         # Model validation runs in services.record_trial, where the slot, cohort and derived

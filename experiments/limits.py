@@ -1,18 +1,19 @@
 """Protocol limits against a proposed exposure (pure Python, no Django).
 
 `check_exposure` compares one proposed trial with what its protocol approves and with the
-cohort's earlier exposures. It returns a list of `Breach`es, each with the limit, the value it
+earlier exposures of its group of animals (a dish: animals taken from a cohort into one dish). It returns a list of `Breach`es, each with the limit, the value it
 would reach and the limit's value. Two kinds:
 
 - hard: the protocol does not cover the work at all (not approved, outside its dates, a stimulus
-  type it does not list, a cohort that has ended, more animals than the cohort holds). Nobody can
-  override these; amend the protocol or pick other animals.
-- welfare: a numeric maximum (per-exposure settings, animals per trial, exposures per cohort, rest
+  type it does not list, a dish that has ended, more animals than the dish holds alive). Nobody
+  can override these; amend the protocol or pick other animals.
+- welfare: a numeric maximum (per-exposure settings, animals per trial, exposures per dish, rest
   between exposures, cumulative dose). A manager may override with a reason; the override is kept
   and opens a deviation.
 
-Every trial counts as an exposure of its cohort, sham and control trials included: the animals
-were handled, moved and observed. Only a light or UV dose adds to the cumulative dose.
+Every trial counts as an exposure of its dish, sham and control trials included: the animals
+were handled, moved and observed. Only a light or UV dose adds to the cumulative dose. Dishes of
+one cohort are separate groups of animals: each has its own count, rest and dose.
 """
 from __future__ import annotations
 
@@ -61,10 +62,12 @@ class AllowanceTerms:
 
 
 @dataclass(frozen=True)
-class CohortState:
-    label: str
-    size: int
-    ended: bool
+class GroupState:
+    """One group of animals (a dish) as the limits see it."""
+
+    label: str  # e.g. "C-0012-D2"
+    animals: int  # animals alive in the group: those put in less known deaths
+    ended: bool  # the dish (or its cohort) has ended or was voided
     exposures: int  # earlier exposures that count (not voided)
     last_exposure_at: datetime | None  # the nearest earlier exposure
     cumulative_dose_mj_cm2: float
@@ -95,17 +98,17 @@ def _fmt(value: float) -> str:
     return f"{value:.4g}"
 
 
-def check_exposure(terms: ProtocolTerms, cohort: CohortState, proposal: Proposal, on: date) -> list[Breach]:
+def check_exposure(terms: ProtocolTerms, group: GroupState, proposal: Proposal, on: date) -> list[Breach]:
     breaches: list[Breach] = []
     problem = protocol_problem(terms, on)
     if problem:
         breaches.append(Breach("protocol", HARD, problem))
-    if cohort.ended:
-        breaches.append(Breach("cohort_ended", HARD, f"Cohort {cohort.label} has ended; it cannot be used again."))
-    if proposal.animals > cohort.size:
-        breaches.append(Breach("cohort_size", HARD,
-                               f"Animals in the trial {proposal.animals} is more than cohort {cohort.label} holds "
-                               f"({cohort.size}).", proposal.animals, cohort.size))
+    if group.ended:
+        breaches.append(Breach("group_ended", HARD, f"Dish {group.label} has ended; it cannot be used again."))
+    if proposal.animals > group.animals:
+        breaches.append(Breach("group_animals", HARD,
+                               f"Animals in the trial {proposal.animals} is more than dish {group.label} holds alive "
+                               f"({group.animals}).", proposal.animals, group.animals))
     allowance = terms.allowances.get(proposal.kind)
     if proposal.kind == NO_STIMULUS:
         pass  # sham handling is part of every trial a protocol approves
@@ -119,29 +122,29 @@ def check_exposure(terms: ProtocolTerms, cohort: CohortState, proposal: Proposal
         breaches.append(Breach("animals", WELFARE,
                                f"Animals per trial {proposal.animals} is above the protocol maximum of "
                                f"{terms.max_animals_per_trial}.", proposal.animals, terms.max_animals_per_trial))
-    exposures = cohort.exposures + 1
+    exposures = group.exposures + 1
     if exposures > terms.max_exposures_per_group:
         breaches.append(Breach("exposures", WELFARE,
-                               f"This would be exposure {exposures} of cohort {cohort.label}; the protocol allows "
+                               f"This would be exposure {exposures} of dish {group.label}; the protocol allows "
                                f"{terms.max_exposures_per_group}.", exposures, terms.max_exposures_per_group))
     if terms.min_rest_hours > 0:
         gaps = []
-        if cohort.last_exposure_at is not None:
-            gaps.append(("since the last", (proposal.at - cohort.last_exposure_at) / timedelta(hours=1)))
-        if cohort.next_exposure_at is not None:
-            gaps.append(("before the next", (cohort.next_exposure_at - proposal.at) / timedelta(hours=1)))
+        if group.last_exposure_at is not None:
+            gaps.append(("since the last", (proposal.at - group.last_exposure_at) / timedelta(hours=1)))
+        if group.next_exposure_at is not None:
+            gaps.append(("before the next", (group.next_exposure_at - proposal.at) / timedelta(hours=1)))
         for where, rest_h in gaps:
             if rest_h < terms.min_rest_hours:
                 breaches.append(Breach("rest", WELFARE,
-                                       f"Rest {where} exposure of cohort {cohort.label} would be {rest_h:.1f} h; "
+                                       f"Rest {where} exposure of dish {group.label} would be {rest_h:.1f} h; "
                                        f"the protocol requires at least {terms.min_rest_hours:g} h.",
                                        round(rest_h, 2), terms.min_rest_hours))
     dose = proposal.settings.get("dose_mj_cm2") or 0.0
     if terms.max_cumulative_dose_mj_cm2 is not None and dose:
-        total = cohort.cumulative_dose_mj_cm2 + dose
+        total = group.cumulative_dose_mj_cm2 + dose
         if total > terms.max_cumulative_dose_mj_cm2:
             breaches.append(Breach("cumulative_dose", WELFARE,
-                                   f"Cumulative dose of cohort {cohort.label} would be {_fmt(total)} mJ/cm²; the "
+                                   f"Cumulative dose of dish {group.label} would be {_fmt(total)} mJ/cm²; the "
                                    f"protocol allows {_fmt(terms.max_cumulative_dose_mj_cm2)} mJ/cm².",
                                    total, terms.max_cumulative_dose_mj_cm2))
     return breaches

@@ -1,8 +1,9 @@
 """Protocols, animal bookings, cohorts and aggregation trials.
 
-Traceability runs one way: a trial names its cohort, the cohort its booking and origin tank, the
-booking its protocol. Nothing is deleted: bookings are cancelled or expire, trials are voided or
-excluded with a reason, cohorts end (returned, retired, died). Every model keeps a full change
+Traceability runs one way: a trial names its dish and cohort, the dish its cohort, the cohort its
+booking and origin tank, the booking its protocol. Nothing is deleted: bookings are cancelled or
+expire, trials and dishes set up in error are voided or excluded with a reason, dishes and cohorts
+end (returned, retired, died). Every model keeps a full change
 history (django-simple-history); history_user comes from the request middleware or is set
 explicitly in services.py.
 """
@@ -86,12 +87,13 @@ class Protocol(models.Model):
     max_animals_per_trial = models.PositiveIntegerField(validators=[Within("animals")],
                                                         help_text="Most animals in one trial arena.")
     max_exposures_per_group = models.PositiveIntegerField(
-        validators=[Within("exposures")], help_text="Most trials (exposures, sham included) for one cohort.")
+        validators=[Within("exposures")], help_text="Most trials (exposures, sham included) for one dish (group of animals).")
     min_rest_hours = models.FloatField(default=0, validators=[Within("min_rest_hours")],
-                                       help_text="Least time between two exposures of the same cohort, hours.")
+                                       help_text="Least time between two exposures of the same dish, hours.")
     max_cumulative_dose_mj_cm2 = models.FloatField(
         null=True, blank=True, validators=[Within("dose_mj_cm2")],
-        help_text="Most light/UV dose one cohort may receive in total, mJ/cm². Empty: no light stimulus approved.")
+        help_text="Most light/UV dose one dish of animals may receive in total, mJ/cm². Empty: no light stimulus "
+                  "approved.")
     notes = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
@@ -304,6 +306,8 @@ class Cohort(models.Model):
         RETURNED = "returned", "Returned to a tank"
         RETIRED = "retired", "Retired"
         DIED = "died", "Died"
+        # Every animal went into a dish, and each dish records its own end (so the cohort has none to tell).
+        IN_DISHES = "dishes", "All animals went into dishes"
 
     booking = models.OneToOneField(Booking, on_delete=models.PROTECT, related_name="cohort")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="cohorts")
@@ -350,7 +354,7 @@ class Cohort(models.Model):
 
     @property
     def subject(self) -> str:
-        """How a protocol-limit deviation names this cohort."""
+        """How protocol-limit deviations named a cohort before dishes (they now name the dish: Dish.subject)."""
         return f"cohort:{self.pk}"
 
     def get_absolute_url(self):
@@ -359,6 +363,89 @@ class Cohort(models.Model):
     @property
     def is_active(self) -> bool:
         return not self.end
+
+    @property
+    def ended_in_dishes(self) -> bool:
+        """Every animal went into a dish: the cohort's end tells nothing of its own."""
+        return self.end == self.End.IN_DISHES
+
+
+class DishQuerySet(VoidableQuerySet):
+    def open(self):
+        """Dishes that still hold their animals: not ended, not voided."""
+        return self.current().filter(end="")
+
+
+class Dish(Voidable):
+    """A group of animals taken from a cohort into one dish, from its set-up to its end.
+
+    The dish is the group the protocol's welfare limits count: every trial run on it is an exposure
+    of its animals (exposures, rest and cumulative dose are per dish). A cohort feeds several dishes
+    at once, never more animals than it holds. A dish set up in error (no trials) is voided, never
+    deleted; the others end like a cohort: returned to a tank, retired or died.
+    """
+
+    class End(models.TextChoices):
+        RETURNED = "returned", "Returned to a tank"
+        RETIRED = "retired", "Retired"
+        DIED = "died", "Died"
+
+    cohort = models.ForeignKey(Cohort, on_delete=models.PROTECT, related_name="dishes")
+    number = models.PositiveIntegerField(help_text="The dish's number within its cohort (1, 2, ...).")
+    animals = models.PositiveIntegerField(validators=[Within("animals")], help_text="Animals put in the dish.")
+    set_up_at = models.DateTimeField(default=timezone.now, help_text="When the animals were put in the dish.")
+    set_up_by = _user_fk()
+    end = models.CharField(max_length=10, choices=End.choices, blank=True)
+    ended_at = models.DateTimeField(null=True, blank=True)
+    ended_by = _user_fk(null=True, blank=True)
+    returned_to = models.ForeignKey(Tank, null=True, blank=True, on_delete=models.PROTECT,
+                                    related_name="dishes_returned")
+    returned_count = models.PositiveIntegerField(null=True, blank=True, help_text="Animals put back (alive).")
+    end_method = models.CharField(max_length=200, blank=True, help_text="Retired: the method used.")
+    end_note = models.TextField(max_length=MAX_TEXT, blank=True)
+    history = HistoricalRecords()
+
+    objects = DishQuerySet.as_manager()
+
+    class Meta:
+        ordering = ["cohort_id", "number"]
+        get_latest_by = "set_up_at"
+        verbose_name_plural = "dishes"
+        constraints = [
+            models.UniqueConstraint(fields=["cohort", "number"], name="dish_number_unique_in_cohort"),
+            models.CheckConstraint(condition=Q(animals__gte=1), name="dish_animals_positive"),
+            models.CheckConstraint(condition=within_q("animals"), name="dish_animals_bounds"),
+            models.CheckConstraint(condition=Q(returned_count__isnull=True)
+                                   | Q(returned_count__lte=models.F("animals")), name="dish_returned_not_above_animals"),
+            models.CheckConstraint(
+                condition=~Q(end="returned") | Q(returned_to__isnull=False, returned_count__isnull=False),
+                name="dish_returned_has_tank_and_count"),
+            models.CheckConstraint(condition=Q(end="") | Q(ended_at__isnull=False), name="dish_end_has_time"),
+        ]
+        indexes = [
+            # services.current_population: animals returned to a tank from dishes since its last census.
+            models.Index(fields=["returned_to", "ended_at"], name="dish_returned_ended"),
+        ]
+
+    def __str__(self):
+        return self.label
+
+    @property
+    def label(self) -> str:
+        """C-0012-D2: cohort and dish number (no query: uses cohort_id)."""
+        return f"C-{self.cohort_id:04d}-D{self.number}" if self.cohort_id and self.number else "new dish"
+
+    @property
+    def subject(self) -> str:
+        """How a protocol-limit deviation names this group of animals."""
+        return f"dish:{self.pk}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:cohort-detail", args=[self.cohort_id]) + f"#dish-{self.number}"
+
+    @property
+    def is_open(self) -> bool:
+        return not self.end and not self.is_voided
 
 
 # ---------------------------------------------------------------------------------------------
@@ -497,7 +584,8 @@ def _bounded(key, **kwargs):
 class Trial(Voidable):
     """One aggregation trial: a clump of worms, a stimulus, and when (if) it dispersed.
 
-    Each trial is also one exposure of its cohort, counted against the protocol's limits.
+    Each trial is also one exposure of its dish (a group of animals from its cohort), counted
+    against the protocol's limits.
     """
 
     study = models.ForeignKey(Study, on_delete=models.PROTECT, related_name="trials")
@@ -506,6 +594,8 @@ class Trial(Voidable):
     condition = models.CharField(max_length=80)
     replicate = models.PositiveIntegerField()
     cohort = models.ForeignKey(Cohort, on_delete=models.PROTECT, related_name="trials")
+    dish = models.ForeignKey(Dish, on_delete=models.PROTECT, related_name="trials",
+                             help_text="The group of animals exposed; always a dish of the trial's cohort.")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="trials")
     run_at = models.DateTimeField(default=timezone.now, help_text="When the stimulus was applied.")
     run_by = _user_fk()
@@ -585,6 +675,8 @@ class Trial(Voidable):
         indexes = [
             # The exposure ledger and the cohort page: a cohort's exposures in order.
             models.Index(fields=["cohort", "run_at"], name="trial_cohort_run"),
+            # services.dish_state and the ledger's running totals: a dish's exposures in order.
+            models.Index(fields=["dish", "run_at"], name="trial_dish_run"),
         ]
 
     def __str__(self):

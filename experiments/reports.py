@@ -9,6 +9,7 @@ import csv
 import json
 from collections.abc import Iterator
 from dataclasses import dataclass, field
+from datetime import timedelta
 
 import numpy as np
 import pandas as pd
@@ -22,7 +23,7 @@ from .models import LATE_OUTCOME_FIELDS, Trial
 
 # Tidy export: one row per trial, every setting, derived value and outcome. Units in the names.
 TIDY_COLUMNS = [
-    "study", "slot", "code", "condition", "replicate", "status", "exclusion_reason", "cohort", "origin_tank",
+    "study", "slot", "code", "condition", "replicate", "status", "exclusion_reason", "cohort", "dish", "origin_tank",
     "protocol", "run_at", "run_by", "vessel", "arena_diameter_mm", "water_volume_ml", "water_temp_c", "light_lux",
     "acclimation_min", "animals", "stimulus", "wavelength_nm", "irradiance_mw_cm2", "duration_s", "dose_mj_cm2",
     "voltage_v", "electrode_gap_cm", "field_v_cm", "pulse_width_ms", "pulse_count", "pulse_frequency_hz",
@@ -51,7 +52,7 @@ def trial_status(t: Trial) -> str:
 
 
 def tidy_frame(trials: list[Trial], user=None) -> pd.DataFrame:
-    """One row per trial; trials need study, cohort__origin_tank, protocol, run_by, scored_by and
+    """One row per trial; trials need study, cohort__origin_tank, dish, protocol, run_by, scored_by and
     override loaded (select_related) so that this runs no query.
 
     With `user`, a trial whose condition that user may not see has BLINDED_COLUMNS blanked (the
@@ -63,7 +64,8 @@ def tidy_frame(trials: list[Trial], user=None) -> pd.DataFrame:
         row = {
             "study": t.study.code, "slot": t.slot, "code": t.code, "condition": t.condition, "replicate": t.replicate,
             "status": trial_status(t), "exclusion_reason": t.exclusion_reason or t.void_reason,
-            "cohort": t.cohort.label, "origin_tank": t.cohort.origin_tank.code, "protocol": t.protocol.reference,
+            "cohort": t.cohort.label, "dish": t.dish.label, "origin_tank": t.cohort.origin_tank.code,
+            "protocol": t.protocol.reference,
             "run_at": _when(t.run_at), "run_by": t.run_by.get_username(), "vessel": t.vessel, "animals": t.animals,
             "stimulus": t.kind, "substance": t.substance, "mechanical_note": t.mechanical_note,
             "observation_window_s": t.observation_window_s,
@@ -260,28 +262,30 @@ def dose_table(result: StudyAnalysis) -> pd.DataFrame:
 # ---------------------------------------------------------------------------------------------
 # Exposure ledger
 # ---------------------------------------------------------------------------------------------
-LEDGER_COLUMNS = ["cohort", "origin_tank", "protocol", "run_at", "study", "slot", "stimulus", "settings", "animals",
+LEDGER_COLUMNS = ["cohort", "dish", "origin_tank", "protocol", "run_at", "study", "slot", "stimulus", "settings",
+                  "animals",
                   "dose_mj_cm2", "exposure_number", "max_exposures", "cumulative_dose_mj_cm2",
                   "max_cumulative_dose_mj_cm2", "rest_h", "min_rest_h", "over_limit", "override_reason",
                   "override_by", "deviation"]
 
 
 def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
-    """Rows for the shown exposures, with running totals over *all* exposures of their cohorts.
+    """Rows for the shown exposures, with running totals over *all* exposures of their dishes.
 
-    `every` holds every counting trial of the cohorts in `shown` (so a date filter does not
-    restart the count); both need study loaded, `shown` also cohort, protocol and override.
+    A dish is the group of animals the protocol's limits count, so totals run per dish (cohort,
+    dish). `every` holds every counting trial of the dishes in `shown` (so a date filter does not
+    restart the count); both need study loaded, `shown` also cohort, dish, protocol and override.
     A trial whose condition `user` may not see (experiments/blinding.py) shows its code, not its
-    stimulus, settings, dose or override reason; its cohort's cumulative dose is hidden too, since
-    differences of running totals (or the total less the visible doses) would give the hidden
-    dose back.
+    stimulus, settings, dose or override reason; its dish's cumulative dose is hidden too, since
+    differences of running totals (or the total less the visible doses) would give the hidden dose
+    back.
     """
     blind = {t.pk for t in [*every, *shown] if not blinding.may_see_condition(user, t)}
-    blind_cohorts = {t.cohort_id for t in [*every, *shown] if t.pk in blind}
+    blind_dishes = {t.dish_id for t in [*every, *shown] if t.pk in blind}
     running: dict[int, dict] = {}
     by_trial: dict[int, dict] = {}
-    for t in sorted(every, key=lambda t: (t.cohort_id, t.run_at, t.pk)):
-        state = running.setdefault(t.cohort_id, {"n": 0, "dose": 0.0, "last": None})
+    for t in sorted(every, key=lambda t: (t.dish_id, t.run_at, t.pk)):
+        state = running.setdefault(t.dish_id, {"n": 0, "dose": 0.0, "last": None})
         state["n"] += 1
         state["dose"] += t.dose_mj_cm2 or 0.0
         rest = (t.run_at - state["last"]).total_seconds() / 3600 if state["last"] else None
@@ -300,7 +304,7 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
         if totals["rest"] is not None and totals["rest"] < p.min_rest_hours:
             over.append("rest")
         rows.append({
-            "trial": t, "cohort": t.cohort.label, "origin_tank": t.cohort.origin_tank.code,
+            "trial": t, "cohort": t.cohort.label, "dish": t.dish.label, "origin_tank": t.cohort.origin_tank.code,
             "protocol": p.reference, "run_at": _when(t.run_at), "study": t.study.code, "slot": t.slot,
             "stimulus": t.get_kind_display(), "settings": t.stimulus_text(), "animals": t.animals,
             "dose_mj_cm2": t.dose_mj_cm2, "exposure_number": totals["n"], "max_exposures": p.max_exposures_per_group,
@@ -313,8 +317,35 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
         if t.pk in blind:
             rows[-1].update(stimulus="blinded", settings=f"blinded: code {t.code}", dose_mj_cm2=None,
                             override_reason="(hidden while the study is blinded)" if override else "")
-        if t.cohort_id in blind_cohorts:
+        if t.dish_id in blind_dishes:
             rows[-1]["cumulative_dose_mj_cm2"] = None
+    return rows
+
+
+def dish_rows(dishes: list, trials: list[Trial], protocol, user) -> list[dict]:
+    """One row per dish of a cohort page: its exposures against the protocol, its 24 h outcome and its end.
+
+    `trials` are the cohort's counting trials with study loaded; no query. Dead at 24 h adds up the
+    counts recorded on its trials (each counts its own arena); alive is what was put in less those.
+    The cumulative dose is hidden while a study with a trial on the dish is blinded to `user`.
+    """
+    by_dish: dict[int, list[Trial]] = {}
+    for t in sorted(trials, key=lambda t: (t.run_at, t.pk)):
+        by_dish.setdefault(t.dish_id, []).append(t)
+    rows = []
+    for d in dishes:
+        mine = by_dish.get(d.pk, [])
+        last = mine[-1].run_at if mine else None
+        recorded = [t.mortality_24h for t in mine if t.mortality_24h is not None]
+        blinded = any(not blinding.may_see_condition(user, t) for t in mine)
+        rows.append({
+            "dish": d, "exposures": len(mine), "max_exposures": protocol.max_exposures_per_group, "last": last,
+            "next_allowed": last + timedelta(hours=protocol.min_rest_hours) if last and d.is_open else None,
+            "cumulative_dose_mj_cm2": None if blinded else sum(t.dose_mj_cm2 or 0.0 for t in mine),
+            "max_cumulative_dose_mj_cm2": protocol.max_cumulative_dose_mj_cm2, "blinded": blinded,
+            "dead_24h": sum(recorded), "mortality_recorded": len(recorded),
+            "alive": max(0, d.animals - sum(recorded)),
+        })
     return rows
 
 
@@ -333,18 +364,18 @@ def tidy_csv(trials, user) -> Iterator[str]:
     return exports.frames_text(frames, TIDY_COLUMNS, **CSV_OPTIONS)
 
 
-def every_exposure(cohort_ids) -> list[Trial]:
-    """Every counting trial of the cohorts, as `ledger_rows` needs them for running totals."""
-    return list(Trial.objects.counting().filter(cohort_id__in=cohort_ids).select_related("study")
-                .only("pk", "cohort_id", "run_at", "run_by_id", "dose_mj_cm2", "study__blinded",
+def every_exposure(dish_ids) -> list[Trial]:
+    """Every counting trial of the dishes, as `ledger_rows` needs them for running totals."""
+    return list(Trial.objects.counting().filter(dish_id__in=dish_ids).select_related("study")
+                .only("pk", "cohort_id", "dish_id", "run_at", "run_by_id", "dose_mj_cm2", "study__blinded",
                       "study__unblinded_at"))
 
 
 def ledger_csv(shown, user) -> Iterator[str]:
-    """Every exposure of the queryset `shown` (ordered by cohort and time), with running totals over all
-    exposures of its cohort: a chunk of exposures and their cohorts' exposures at a time."""
+    """Every exposure of the queryset `shown` (ordered by cohort, dish and time), with running totals over
+    all exposures of its dish: a chunk of exposures and their dishes' exposures at a time."""
     frames = (pd.DataFrame([{k: r[k] for k in LEDGER_COLUMNS}
-                            for r in ledger_rows(chunk, every_exposure({t.cohort_id for t in chunk}), user)],
+                            for r in ledger_rows(chunk, every_exposure({t.dish_id for t in chunk}), user)],
                            columns=LEDGER_COLUMNS)
               for chunk in exports.batches(shown.iterator(chunk_size=exports.CHUNK)))
     return exports.frames_text(frames, LEDGER_COLUMNS, **CSV_OPTIONS)

@@ -6,6 +6,10 @@ Population of a tank
     returned to it after that census. None when the tank has never been counted. A census taken
     after a draw already reflects it, so only draws after the census are subtracted.
 
+    Animals come back by two routes, never both for the same animal: a dish that ends "returned"
+    (its animals), and a cohort that ends "returned" (the animals it never put in a dish). So a
+    cohort's return is bounded by its size less the animals in its (not voided) dishes.
+
     available = current_population − the species' reserve (reserve_min_animals) − animals in
     active bookings on the tank not yet drawn.
 
@@ -15,11 +19,13 @@ Races
     second waits, then counts again with the first booking in place and is refused with a message.
     Under PostgreSQL's READ COMMITTED each statement after the lock sees the other's committed
     rows. SQLite has no row locks but serialises writers, and is not the multi-user database.
-    `record_trial` locks the cohort row the same way, so two trials cannot both take its last
-    permitted exposure. `claim_slot` locks the study row (FOR NO KEY UPDATE, which does not hold
-    up trials being saved), so of two operators claiming the same slot at once one wins and the
-    other is told to claim another; a partial unique constraint (one active claim per slot) backs
-    it up. `record_trial` locks the slot's claim, so a manager releasing it waits for the trial.
+    `set_up_dish` and `record_trial` lock the cohort row the same way: two dishes set up at once
+    cannot take more animals than the cohort holds, and two trials cannot both take a dish's last
+    permitted exposure (every trial's dish belongs to the locked cohort). `claim_slot` locks the
+    study row (FOR NO KEY UPDATE, which does not hold up trials being saved), so of two operators
+    claiming the same slot at once one wins and the other is told to claim another; a partial unique
+    constraint (one active claim per slot) backs it up. `record_trial` locks the slot's claim, so a
+    manager releasing it waits for the trial.
 """
 from __future__ import annotations
 
@@ -30,7 +36,7 @@ from datetime import timezone as dt_timezone
 
 from django.core.exceptions import PermissionDenied, ValidationError
 from django.db import IntegrityError, transaction
-from django.db.models import DateTimeField, FloatField, IntegerField, OuterRef, Subquery, Sum, Value
+from django.db.models import DateTimeField, FloatField, IntegerField, Max, OuterRef, Subquery, Sum, Value
 from django.db.models.functions import Cast, Coalesce, Greatest
 from django.utils import timezone
 from simple_history.utils import bulk_update_with_history
@@ -43,7 +49,7 @@ from vermilog.lab_time import lab_date, lab_moment
 
 from . import allocation, blinding, limits, stimulus
 from .models import (LATE_OUTCOME_FIELDS, LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort,
-                     Override, Protocol, SlotClaim, Stimulus, Study, Trial)
+                     Dish, Override, Protocol, SlotClaim, Stimulus, Study, Trial)
 
 
 class Refused(Exception):
@@ -76,8 +82,9 @@ def tanks_with_availability(queryset=None, today: date | None = None):
 
     The newest estimate is the latest of: its current census, the animals that stayed at its
     latest split, and (for a tank set up by a split) the animals moved into it — the same events
-    colonies.deviations.latest_estimates() uses. Then drawn_since / returned_since count cohorts
-    after that moment, and booked counts active bookings. Call `population_of(tank)` /
+    colonies.deviations.latest_estimates() uses. Then drawn_since counts cohorts drawn after that
+    moment, returned_since the animals cohorts and dishes returned after it, and booked counts
+    active bookings. Call `population_of(tank)` /
     `available_of(tank)` on the rows (needs species loaded).
     """
     qs = queryset if queryset is not None else Tank.objects.all()
@@ -94,6 +101,9 @@ def tanks_with_availability(queryset=None, today: date | None = None):
     returned = (Cohort.objects.filter(returned_to=OuterRef("pk"), end=Cohort.End.RETURNED,
                                       ended_at__gt=OuterRef("base_at"))
                 .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
+    dish_returned = (Dish.objects.current().filter(returned_to=OuterRef("pk"), end=Dish.End.RETURNED,
+                                                   ended_at__gt=OuterRef("base_at"))
+                     .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
     # A booking past its day holds no animals, even before expire_bookings has marked it expired.
     booked = (Booking.objects.holding(today or timezone.localdate()).filter(tank=OuterRef("pk"))
               .order_by().values("tank").annotate(n=Sum("animals")).values("n"))
@@ -112,7 +122,8 @@ def tanks_with_availability(queryset=None, today: date | None = None):
     ).annotate(
         drawn_since=Coalesce(Subquery(drawn, output_field=IntegerField()), zero),
         split_in_since=Coalesce(Subquery(split_in, output_field=FloatField()), Value(0.0, output_field=FloatField())),
-        returned_since=Coalesce(Subquery(returned, output_field=IntegerField()), zero),
+        returned_since=Coalesce(Subquery(returned, output_field=IntegerField()), zero)
+        + Coalesce(Subquery(dish_returned, output_field=IntegerField()), zero),
         booked=Coalesce(Subquery(booked, output_field=IntegerField()), zero),
     )
 
@@ -260,10 +271,43 @@ def expire_bookings(today: date | None = None, *, dry_run: bool = False) -> int:
 
 
 # ---------------------------------------------------------------------------------------------
-# Cohorts
+# Cohorts and dishes
 # ---------------------------------------------------------------------------------------------
+def _set_end(row, *, user, end: str, returned_to: Tank | None, returned_count: int | None, method: str, note: str,
+             at: datetime, species_id: int, most: int, most_text: str) -> None:
+    """Validate and set the end fields shared by cohorts and dishes (the caller holds the locks).
+
+    `most` is how many animals the row can return alive, `most_text` says what they are."""
+    if end not in type(row).End.values:
+        choices = ", ".join(f"'{label}'" for label in type(row).End.labels)
+        raise Refused(f"End: '{end}' is not one of {choices}.")
+    if end == Cohort.End.RETURNED:
+        if returned_to is None or returned_count is None:
+            raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
+        if not 0 <= returned_count <= most:
+            raise Refused(f"Animals returned {returned_count} is not possible: allowed range 0–{most} ({most_text}).")
+        if returned_to.species_id != species_id:
+            raise Refused(f"Returned to: tank {returned_to.code} holds another species; animals go back to a tank "
+                          "of their own.")
+        if returned_to.status == Tank.Status.RETIRED:
+            raise Refused(f"Returned to: tank {returned_to.code} is retired.")
+        row.returned_to, row.returned_count = returned_to, returned_count
+    elif end == Cohort.End.RETIRED:
+        if not method.strip():
+            raise Refused("Retired: say which method was used.")
+    row.end, row.ended_at, row.ended_by = end, at, user
+    row.end_method, row.end_note = method.strip(), note.strip()
+
+
+def animals_in_dishes(cohort: Cohort) -> int:
+    """Animals of the cohort put in dishes that were not voided (one query)."""
+    return cohort.dishes.current().aggregate(n=Sum("animals"))["n"] or 0
+
+
 def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = None, returned_count: int | None = None,
                method: str = "", note: str = "", at: datetime | None = None) -> Cohort:
+    """The end of the cohort's animals that were never put in a dish; every dish must have ended first
+    (each dish's animals have their own end, so none is counted twice)."""
     at = at or timezone.now()
     with transaction.atomic():
         if end == Cohort.End.RETURNED and returned_to is not None:
@@ -271,43 +315,132 @@ def end_cohort(*, user, cohort: Cohort, end: str, returned_to: Tank | None = Non
         cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=cohort.pk)
         if not cohort.is_active:
             raise Refused(f"Cohort {cohort.label} has already ended ({cohort.get_end_display().lower()}).")
+        open_dishes = [d.label for d in cohort.dishes.open().order_by("number")]
+        if open_dishes:
+            raise Refused(f"Cohort {cohort.label} still has {len(open_dishes)} open dish"
+                          f"{'es' if len(open_dishes) > 1 else ''} ({', '.join(open_dishes)}): record each dish's end "
+                          "first. Nothing was changed.")
         if at < cohort.drawn_at:
             raise Refused(f"End time {lab_moment(at)} is before the cohort was drawn "
                           f"({lab_moment(cohort.drawn_at)}).")
-        if end == Cohort.End.RETURNED:
-            if returned_to is None or returned_count is None:
-                raise Refused("Returned to / Animals returned: give the tank and the number of animals put back.")
-            if not 0 <= returned_count <= cohort.size:
-                raise Refused(f"Animals returned {returned_count} is not possible: allowed range 0–{cohort.size}.")
-            if returned_to.species_id != cohort.origin_tank.species_id:
-                raise Refused(f"Returned to: tank {returned_to.code} holds another species; animals go back to a tank "
-                              "of their own.")
-            if returned_to.status == Tank.Status.RETIRED:
-                raise Refused(f"Returned to: tank {returned_to.code} is retired.")
-            cohort.returned_to, cohort.returned_count = returned_to, returned_count
-        elif end == Cohort.End.RETIRED:
-            if not method.strip():
-                raise Refused("Retired: say which method was used.")
-        elif end != Cohort.End.DIED:
-            raise Refused(f"Unknown end {end!r}.")
-        cohort.end, cohort.ended_at, cohort.ended_by = end, at, user
-        cohort.end_method, cohort.end_note = method.strip(), note.strip()
+        free = cohort.size - animals_in_dishes(cohort)
+        if free == 0 and end != Cohort.End.IN_DISHES:
+            raise Refused(f"End: all {cohort.size} animals of cohort {cohort.label} went into dishes, and each dish "
+                          f"has recorded its end: choose '{Cohort.End.IN_DISHES.label}'.")
+        if free and end == Cohort.End.IN_DISHES:
+            raise Refused(f"End: {free} animal{'s' if free > 1 else ''} of cohort {cohort.label} never went into a "
+                          "dish: say what became of them (returned to a tank, retired or died).")
+        _set_end(cohort, user=user, end=end, returned_to=returned_to, returned_count=returned_count, method=method,
+                 note=note, at=at, species_id=cohort.origin_tank.species_id, most=free,
+                 most_text="the cohort's animals never put in a dish")
         return _save(cohort, user, f"Ended: {cohort.get_end_display()}")
 
 
-def cohort_state(cohort: Cohort, at: datetime, *, exclude_trial: int | None = None) -> limits.CohortState:
-    """The cohort's exposures as the limit checker needs them (one query)."""
-    trials = cohort.trials.counting()
+def _set_up_dish(*, user, cohort: Cohort, animals, at: datetime, now: datetime) -> Dish:
+    """A new dish from `cohort`, which the caller has locked (SELECT ... FOR UPDATE)."""
+    if not cohort.is_active:
+        raise Refused(f"Cohort {cohort.label} has ended ({cohort.get_end_display().lower()}); no dish can be set up "
+                      "from it.")
+    free = cohort.size - animals_in_dishes(cohort)
+    if free < 1:
+        raise Refused(f"Animals in the dish {animals} is not possible: all {cohort.size} animals of cohort "
+                      f"{cohort.label} are in dishes already. Nothing was set up.")
+    if not 1 <= animals <= free:
+        raise Refused(f"Animals in the dish {animals} is not possible: allowed range 1–{free} (the animals of cohort "
+                      f"{cohort.label} not in a dish yet, of {cohort.size} drawn). Nothing was set up.")
+    if at < cohort.drawn_at.replace(second=0, microsecond=0):  # forms record whole minutes
+        raise Refused(f"Set up at {lab_moment(at)} is before cohort {cohort.label} was drawn "
+                      f"({lab_moment(cohort.drawn_at)}).")
+    if at > now + FUTURE_LEEWAY:
+        raise Refused(f"Set up at {lab_moment(at)} is in the future; record a dish once it is set up.")
+    # Numbers are never reused, voided dishes included, so a label always means one group of animals.
+    number = (cohort.dishes.aggregate(n=Max("number"))["n"] or 0) + 1
+    dish = Dish(cohort=cohort, number=number, animals=animals, set_up_at=at, set_up_by=user)
+    return _save(dish, user, f"Set up with {animals} animals from cohort {cohort.label}")
+
+
+def set_up_dish(*, user, cohort: Cohort, animals: int, at: datetime | None = None,
+                now: datetime | None = None) -> Dish:
+    """Put `animals` of the cohort in a new dish; refused when the cohort has fewer left outside its dishes."""
+    now = now or timezone.now()
+    with transaction.atomic():
+        cohort = Cohort.objects.select_for_update().get(pk=cohort.pk)
+        return _set_up_dish(user=user, cohort=cohort, animals=animals, at=at or now, now=now)
+
+
+def _locked_dish(dish: Dish) -> Dish:
+    """The dish with its cohort row locked first (the lock order of record_trial: cohort, then dish)."""
+    cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=dish.cohort_id)
+    dish = Dish.objects.select_for_update().get(pk=dish.pk)
+    dish.cohort = cohort
+    return dish
+
+
+def end_dish(*, user, dish: Dish, end: str, returned_to: Tank | None = None, returned_count: int | None = None,
+             method: str = "", note: str = "", at: datetime | None = None, now: datetime | None = None) -> Dish:
+    """The end of a dish's animals: returned to a tank (they count in its population from `at`), retired
+    or died. After it the dish takes no more trials."""
+    now = now or timezone.now()
+    at = at or now
+    with transaction.atomic():
+        if end == Cohort.End.RETURNED and returned_to is not None:
+            Tank.objects.select_for_update().get(pk=returned_to.pk)
+        dish = _locked_dish(dish)
+        if dish.is_voided:
+            raise Refused(f"Dish {dish.label} is voided; it has no animals to end.")
+        if dish.end:
+            raise Refused(f"Dish {dish.label} has already ended ({dish.get_end_display().lower()}).")
+        last_run = dish.trials.counting().aggregate(last=Max("run_at"))["last"]
+        earliest = max(dish.set_up_at, last_run) if last_run else dish.set_up_at
+        if at < earliest.replace(second=0, microsecond=0):
+            what = (f"the last trial on dish {dish.label} ran" if last_run and last_run >= dish.set_up_at
+                    else f"dish {dish.label} was set up")
+            raise Refused(f"End time {lab_moment(at)} is before {what} ({lab_moment(earliest)}).")
+        if at > now + FUTURE_LEEWAY:
+            raise Refused(f"End time {lab_moment(at)} is in the future; record the end once it has happened.")
+        _set_end(dish, user=user, end=end, returned_to=returned_to, returned_count=returned_count, method=method,
+                 note=note, at=at, species_id=dish.cohort.origin_tank.species_id, most=dish.animals,
+                 most_text="the animals put in the dish")
+        return _save(dish, user, f"Ended: {dish.get_end_display()}")
+
+
+def void_dish(*, user, dish: Dish, reason: str) -> Dish:
+    """A dish set up in error (no trial ran on it): its animals count as the cohort's again."""
+    reason = (reason or "").strip()
+    if not reason:
+        raise Refused("Reason: a reason is required to void a dish.")
+    with transaction.atomic():
+        dish = _locked_dish(dish)
+        n = dish.trials.counting().count()
+        if n:
+            raise Refused(f"Dish {dish.label} has {n} trial{'s' if n > 1 else ''}: its animals were exposed, so it "
+                          "cannot be voided; record its end instead.")
+        if dish.end:
+            raise Refused(f"Dish {dish.label} has ended ({dish.get_end_display().lower()}); it cannot be voided.")
+        try:
+            dish.void(user=user, reason=reason)
+        except ValueError as error:
+            raise Refused(str(error)) from None
+        return dish
+
+
+def dish_state(dish: Dish, at: datetime, *, exclude_trial: int | None = None) -> limits.GroupState:
+    """The dish's exposures as the limit checker needs them (one query; `dish.cohort` loaded).
+
+    Animals alive = animals put in the dish less the deaths recorded 24 h after its trials (each
+    trial's count is of its own arena, so they add up)."""
+    trials = dish.trials.counting()
     if exclude_trial:
         trials = trials.exclude(pk=exclude_trial)
-    rows = list(trials.values_list("run_at", "dose_mj_cm2"))
-    before = [r for r, _ in rows if r <= at]
-    after = [r for r, _ in rows if r > at]
-    return limits.CohortState(
-        label=cohort.label, size=cohort.size, ended=not cohort.is_active, exposures=len(rows),
+    rows = list(trials.values_list("run_at", "dose_mj_cm2", "mortality_24h"))
+    before = [r for r, _, _ in rows if r <= at]
+    after = [r for r, _, _ in rows if r > at]
+    return limits.GroupState(
+        label=dish.label, animals=max(0, dish.animals - sum(m or 0 for _, _, m in rows)),
+        ended=not dish.is_open or not dish.cohort.is_active, exposures=len(rows),
         last_exposure_at=max(before) if before else None,
         next_exposure_at=min(after) if after else None,
-        cumulative_dose_mj_cm2=sum(d or 0.0 for _, d in rows),
+        cumulative_dose_mj_cm2=sum(d or 0.0 for _, d, _ in rows),
     )
 
 
@@ -499,22 +632,30 @@ class TrialResult:
     deviation: Deviation | None = None
 
 
-def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict, override_reason: str = "",
+def record_trial(*, user, study: Study, slot: int, values: dict, dish: Dish | None = None,
+                 cohort: Cohort | None = None, dish_animals: int | None = None, override_reason: str = "",
                  now: datetime | None = None) -> TrialResult:
     """Save a trial if the protocol allows it; a manager's override with a reason opens a deviation.
 
+    The animals are an open `dish`, or a new dish set up from `cohort` in the same step with
+    `dish_animals` animals (default: the trial's animals); a refused trial sets up no dish.
     `values` are arena, stimulus and (optionally) outcome fields. Raises ValidationError for
-    impossible or out-of-order values and LimitRefused when a protocol limit stands in the way.
+    impossible or out-of-order values, Refused when the cohort cannot feed the dish, and
+    LimitRefused when a protocol limit stands in the way.
     """
     now = now or timezone.now()
     override_reason = (override_reason or "").strip()
+    if (dish is None) == (cohort is None):
+        raise Refused("Dish: choose an open dish, or a cohort to set up a new dish from (not both).")
     require_study_owner(user, study, "add trials")
     if study.scorer_not_operator and any(values.get(name) not in (None, False) for name in OUTCOME_FIELDS):
         field = next(name for name in OUTCOME_FIELDS if values.get(name) not in (None, False))
         raise ValidationError({field: f"Study {study.code} requires that the scorer is not the operator: leave the "
                                       "outcomes empty and have another person score the trial."})
     with transaction.atomic():
-        cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(pk=cohort.pk)
+        # The cohort row is the lock for its dishes' animals and exposures (see Races above).
+        cohort = Cohort.objects.select_for_update().select_related("origin_tank").get(
+            pk=cohort.pk if cohort is not None else dish.cohort_id)
         protocol = Protocol.objects.prefetch_related("allowances").get(pk=cohort.protocol_id)
         if study.protocol_id != protocol.pk:
             raise Refused(f"Cohort {cohort.label} was drawn under protocol {protocol.reference}, but study "
@@ -539,10 +680,20 @@ def record_trial(*, user, study: Study, slot: int, cohort: Cohort, values: dict,
             if getattr(trial, name) is not None:
                 setattr(trial, f"{name}_entered_at", now)
         _check_order(trial, cohort, now)
-        trial.full_clean()
+        trial.full_clean(exclude=["dish"])
+        if dish is None:
+            dish = _set_up_dish(user=user, cohort=cohort, now=now, at=trial.run_at,
+                                animals=trial.animals if dish_animals is None else dish_animals)
+        else:
+            dish = Dish.objects.select_for_update().get(pk=dish.pk)
+            if trial.run_at < dish.set_up_at.replace(second=0, microsecond=0):
+                raise ValidationError({"run_at": f"Run at {lab_moment(trial.run_at)} is before dish {dish.label} was "
+                                                 f"set up ({lab_moment(dish.set_up_at)})."})
+        dish.cohort = cohort
+        trial.dish = dish
         proposal = limits.Proposal(at=trial.run_at, animals=trial.animals, kind=trial.kind,
                                    settings=trial.settings(), substance=trial.substance)
-        breaches = limits.check_exposure(protocol.terms(), cohort_state(cohort, trial.run_at), proposal,
+        breaches = limits.check_exposure(protocol.terms(), dish_state(dish, trial.run_at), proposal,
                                          timezone.localdate(trial.run_at))
         if breaches and (not all(b.overridable for b in breaches) or not override_reason):
             raise LimitRefused(breaches)
@@ -587,19 +738,22 @@ def _open_deviation(override: Override, breaches: list[limits.Breach], now: date
         details = [f"{blinding.neutral_limit(b.limit)} (values hidden while study {study.code} is blinded)"
                    for b in breaches]
         reason = f"hidden while study {study.code} is blinded; see the trial after unblinding"
-    summary = f"Protocol {override.protocol.reference} limit overridden for cohort {cohort.label}: " + "; ".join(details)
+    dish = override.trial.dish
+    summary = (f"Protocol {override.protocol.reference} limit overridden for dish {dish.label} (cohort {cohort.label}): "
+               + "; ".join(details))
     finding = Finding(
         tank_id=cohort.origin_tank_id, rule=Deviation.Rule.PROTOCOL_LIMIT, severity=severity, summary=summary,
         evidence={"ref": f"trial:{override.trial_id}", "trial": override.trial_id, "override": override.pk,
+                  "dish": dish.label,
                   "protocol": override.protocol.reference,
                   "limits": [blinding.neutral_limit(b.limit) if study.is_blind else b.limit for b in breaches],
                   "breaches": details, "reason": reason,
                   "manager": user.get_username(), "at": timezone.localtime(now).strftime("%Y-%m-%d %H:%M")},
-        at=now, subject=cohort.subject,
+        at=now, subject=dish.subject,  # the group of animals the limits count
     )
     apply_findings([finding], now=now, user=user)
     return Deviation.objects.unresolved().get(tank_id=cohort.origin_tank_id, rule=Deviation.Rule.PROTOCOL_LIMIT,
-                                              parameter="", subject=cohort.subject)
+                                              parameter="", subject=dish.subject)
 
 
 @dataclass
@@ -748,11 +902,18 @@ def file_checksum(attachment: Attachment) -> str:
 
 
 def cohort_movements(tank_id: int, since: datetime) -> list[tuple[str, int]]:
-    """For the tank page: animals drawn from the tank for trials and returned to it after `since` (one query)."""
-    from django.db.models import Q
-
-    totals = Cohort.objects.filter(Q(origin_tank_id=tank_id) | Q(returned_to_id=tank_id)).aggregate(
-        drawn=Sum("size", filter=Q(origin_tank_id=tank_id, drawn_at__gt=since)),
-        returned=Sum("returned_count", filter=Q(returned_to_id=tank_id, end=Cohort.End.RETURNED, ended_at__gt=since)),
-    )
-    return [("drawn for trials", -(totals["drawn"] or 0)), ("returned from trials", totals["returned"] or 0)]
+    """For the tank page: animals drawn from the tank for trials and returned to it after `since`, by
+    cohorts (animals never put in a dish) and by dishes (one query)."""
+    drawn = (Cohort.objects.filter(origin_tank_id=tank_id, drawn_at__gt=since)
+             .order_by().values("origin_tank").annotate(n=Sum("size")).values("n"))
+    returned = (Cohort.objects.filter(returned_to_id=tank_id, end=Cohort.End.RETURNED, ended_at__gt=since)
+                .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
+    dish_returned = (Dish.objects.current().filter(returned_to_id=tank_id, end=Dish.End.RETURNED, ended_at__gt=since)
+                     .order_by().values("returned_to").annotate(n=Sum("returned_count")).values("n"))
+    totals = Tank.objects.filter(pk=tank_id).annotate(
+        drawn=Subquery(drawn, output_field=IntegerField()),
+        returned=Subquery(returned, output_field=IntegerField()),
+        dish_returned=Subquery(dish_returned, output_field=IntegerField()),
+    ).values("drawn", "returned", "dish_returned").first() or {}
+    back = (totals.get("returned") or 0) + (totals.get("dish_returned") or 0)
+    return [("drawn for trials", -(totals.get("drawn") or 0)), ("returned from trials", back)]

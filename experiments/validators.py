@@ -56,7 +56,7 @@ BOUNDS: dict[str, Bound] = {
     # protocol limits
     "min_rest_hours": Bound("Minimum rest between exposures", "h", 0, 8760),
     "temp_step_abs_c": Bound("Temperature step (size)", "°C", 0, 40),
-    "exposures": Bound("Exposures per cohort", "", 1, 10000),
+    "exposures": Bound("Exposures per dish", "", 1, 10000),
     # counts of animals: bookings, cohorts, trial arenas (the booking form's long-standing limit)
     "animals": Bound("Animals", "", 1, 100000),
     "mortality_24h": Bound("Dead at 24 h", "", 0, 100000),

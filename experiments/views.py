@@ -23,13 +23,13 @@ from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_requi
 
 from . import blinding, charts, filetypes, measuring, reports, services
 from .filters import LedgerFilter
-from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DrawForm, ReasonForm,
-                    ScoreForm, StudyForm, TrialForm, errors_text)
-from .models import Attachment, Booking, Cohort, Protocol, SlotClaim, Stimulus, Study, Trial, cautions_for
+from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DishEndForm, DishForm, DrawForm,
+                    ReasonForm, ScoreForm, StudyForm, TrialForm, errors_text)
+from .models import Attachment, Booking, Cohort, Dish, Protocol, SlotClaim, Stimulus, Study, Trial, cautions_for
 
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
-TRIAL_RELATED = ("study", "cohort__origin_tank", "protocol", "run_by", "scored_by", "override__recorded_by")
+TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "run_by", "scored_by", "override__recorded_by")
 
 
 def _error_text(error) -> str:
@@ -61,12 +61,20 @@ def _get_cohort(pk: int) -> Cohort:
                                                            "returned_to", "ended_by"), pk=pk)
 
 
+def _get_dish(pk: int) -> Dish:
+    return get_object_or_404(Dish.objects.select_related("cohort__origin_tank"), pk=pk)
+
+
 def _may_change_booking(user, booking) -> bool:
     return booking.booked_by_id == user.pk or has_role(user, MANAGER)
 
 
 def _may_end_cohort(user, cohort) -> bool:
     return cohort.drawn_by_id == user.pk or has_role(user, MANAGER)
+
+
+def _may_end_dish(user, dish) -> bool:
+    return user.pk in (dish.cohort.drawn_by_id, dish.set_up_by_id) or has_role(user, MANAGER)
 
 
 def _may_set_aside(user, trial) -> bool:
@@ -90,7 +98,8 @@ def index(request):
         "bookings": Booking.objects.holding(today).select_related("tank__room", "booked_by", "protocol")
                                    .filter(needed_on__lte=today + timedelta(days=31)),
         "cohorts": Cohort.objects.filter(end="").select_related("origin_tank", "protocol")
-                                 .annotate(n_exposures=Count("trials", filter=Q(trials__voided_at__isnull=True))),
+                                 .annotate(n_dishes=Count("dishes", filter=Q(dishes__voided_at__isnull=True,
+                                                                             dishes__end=""))),
         "protocols": Protocol.objects.all(),
         "today": today,
     }
@@ -253,16 +262,26 @@ def cohort_detail(request, pk):
     return _cohort_page(request, _get_cohort(pk))
 
 
-def _cohort_page(request, cohort, end_form=None, status=200):
-    trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("run_at"))
-    rows = reports.ledger_rows(trials, trials, request.user)
+def _cohort_page(request, cohort, end_form=None, dish_form=None, dish_end_form=None, status=200):
+    trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("dish__number", "run_at", "pk"))
+    dishes = list(cohort.dishes.select_related("set_up_by", "ended_by", "voided_by", "returned_to"))
     protocol = cohort.protocol
-    ctx = {"cohort": cohort, "rows": rows, "protocol": protocol, "n_exposures": len(trials),
-           "cumulative": None if any(r["blinded"] for r in rows) else sum(t.dose_mj_cm2 or 0 for t in trials),
-           "last": trials[-1].run_at if trials else None,
-           "next_allowed": trials[-1].run_at + timedelta(hours=protocol.min_rest_hours) if trials else None,
-           "end_form": end_form or CohortEndForm(cohort=cohort),
-           "may_end": has_role(request.user, *RUN) and _may_end_cohort(request.user, cohort)}
+    rows = reports.ledger_rows(trials, trials, request.user)
+    dish_rows = reports.dish_rows(dishes, trials, protocol, request.user)
+    free = cohort.size - sum(d.animals for d in dishes if not d.is_voided)
+    open_dishes = [d for d in dishes if d.is_open]
+    may_change = has_role(request.user, *RUN) and _may_end_cohort(request.user, cohort)
+    may_end_dishes = has_role(request.user, *RUN) and any(_may_end_dish(request.user, d) for d in open_dishes)
+    for r in dish_rows:  # a dish set up in error (no trial) can be voided by who may end it
+        r["may_void"] = may_end_dishes and r["dish"].is_open and not r["exposures"] \
+            and _may_end_dish(request.user, r["dish"])
+    ctx = {"cohort": cohort, "rows": rows, "protocol": protocol, "dish_rows": dish_rows, "free": free,
+           "in_dishes": cohort.size - free, "open_dishes": open_dishes,
+           "end_form": end_form or CohortEndForm(cohort=cohort, free=free),
+           "dish_form": dish_form or DishForm(free=free),
+           "dish_end_form": dish_end_form or DishEndForm(cohort=cohort, dishes=open_dishes),
+           "may_end": may_change, "may_set_up": may_change and cohort.is_active and free > 0,
+           "may_end_dishes": may_end_dishes and cohort.is_active}
     return render(request, "experiments/cohort_detail.html", ctx, status=status)
 
 
@@ -273,7 +292,7 @@ def cohort_end(request, pk):
     cohort = _get_cohort(pk)
     if not _may_end_cohort(request.user, cohort):
         raise PermissionDenied("Only the researcher who drew the cohort or a manager may end it.")
-    form = CohortEndForm(request.POST, cohort=cohort)
+    form = CohortEndForm(request.POST, cohort=cohort, free=cohort.size - services.animals_in_dishes(cohort))
     if not form.is_valid():
         messages.error(request, "Nothing was saved: " + errors_text(form))
         return _cohort_page(request, cohort, end_form=form, status=400)
@@ -285,6 +304,73 @@ def cohort_end(request, pk):
     except services.Refused as refusal:
         messages.error(request, str(refusal))
     return redirect(cohort)
+
+
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def dish_new(request, pk):
+    cohort = _get_cohort(pk)
+    if not _may_end_cohort(request.user, cohort):
+        raise PermissionDenied("Only the researcher who drew the cohort or a manager may set up its dishes.")
+    form = DishForm(request.POST, free=cohort.size - services.animals_in_dishes(cohort))
+    if not form.is_valid():
+        messages.error(request, "Nothing was saved: " + errors_text(form))
+        return _cohort_page(request, cohort, dish_form=form, status=400)
+    try:
+        dish = services.set_up_dish(user=request.user, cohort=cohort, animals=form.cleaned_data["animals"],
+                                    at=form.cleaned_data.get("set_up_at"))
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+        return _cohort_page(request, cohort, dish_form=form, status=409)
+    messages.success(request, f"Dish {dish.label} set up with {dish.animals} animals.")
+    return redirect(dish)
+
+
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def dish_end(request, pk):
+    cohort = _get_cohort(pk)
+    dishes = list(cohort.dishes.open())
+    if not any(_may_end_dish(request.user, d) for d in dishes) and not _may_end_cohort(request.user, cohort):
+        raise PermissionDenied("Only the researcher who drew the cohort, who set up the dish, or a manager may end it.")
+    form = DishEndForm(request.POST, cohort=cohort, dishes=dishes)
+    if not form.is_valid():
+        messages.error(request, "Nothing was saved: " + errors_text(form))
+        return _cohort_page(request, cohort, dish_end_form=form, status=400)
+    d = form.cleaned_data
+    dish = d["dish"]
+    dish.cohort = cohort
+    if not _may_end_dish(request.user, dish):
+        raise PermissionDenied("Only the researcher who drew the cohort, who set up the dish, or a manager may end it.")
+    try:
+        services.end_dish(user=request.user, dish=dish, end=d["end"], returned_to=d.get("returned_to"),
+                          returned_count=d.get("returned_count"), method=d.get("method", ""), note=d.get("note", ""))
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+        return _cohort_page(request, cohort, dish_end_form=form, status=409)
+    messages.success(request, f"Dish {dish.label} ended.")
+    return redirect(dish)
+
+
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def dish_void(request, pk):
+    dish = _get_dish(pk)
+    if not _may_end_dish(request.user, dish):
+        raise PermissionDenied("Only the researcher who drew the cohort, who set up the dish, or a manager may void it.")
+    form = ReasonForm(request.POST)
+    if not form.is_valid():
+        messages.error(request, _reason_problem(form, "Reason: give a reason to void the dish; nothing was changed."))
+        return redirect(dish.cohort)
+    try:
+        services.void_dish(user=request.user, dish=dish, reason=form.cleaned_data["reason"])
+        messages.success(request, f"Dish {dish.label} voided; its animals count as the cohort's again.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    return redirect(dish.cohort)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -497,7 +583,8 @@ def trial_new(request, code):
     initial = {"kind": request.GET.get("kind")}
     if request.GET.get("slot", "").isdigit():
         initial["slot"] = int(request.GET["slot"])
-    form = TrialForm(request.POST or None, study=study, slots=mine, cohorts=cohorts,
+    dishes = Dish.objects.open().filter(cohort__end="", cohort__protocol=study.protocol)
+    form = TrialForm(request.POST or None, study=study, slots=mine, cohorts=cohorts, dishes=dishes,
                      can_override=has_role(request.user, MANAGER), initial=initial)
     if request.method != "POST":
         return _trial_page(request, study, form, slots)
@@ -506,7 +593,7 @@ def trial_new(request, code):
         return _trial_page(request, study, form, slots, status=400)
     try:
         result = services.record_trial(user=request.user, study=study, slot=form.cleaned_data["slot"],
-                                       cohort=form.cleaned_data["cohort"], values=form.trial_values(),
+                                       values=form.trial_values(), **form.group_values(),
                                        override_reason=form.cleaned_data.get("override_reason", ""))
     except services.LimitRefused as refusal:
         messages.error(request, "Nothing was saved: a protocol limit stands in the way.")
@@ -712,7 +799,7 @@ def attachment(request, pk):
 # Exposure ledger (managers)
 # ---------------------------------------------------------------------------------------------
 def _ledger_filter(request):
-    qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "run_at", "pk")
+    qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "dish__number", "run_at", "pk")
     return LedgerFilter(request.GET or None, queryset=qs, request=request)
 
 
@@ -722,7 +809,7 @@ LEDGER_PAGE_ROWS = 2000  # exposures the page shows; the CSV has them all
 def _ledger(request):
     ledger_filter = _ledger_filter(request)
     shown = list(ledger_filter.qs[:LEDGER_PAGE_ROWS])
-    every = reports.every_exposure({t.cohort_id for t in shown})
+    every = reports.every_exposure({t.dish_id for t in shown})
     return ledger_filter, reports.ledger_rows(shown, every, request.user)
 
 

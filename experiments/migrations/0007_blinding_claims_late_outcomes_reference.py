@@ -28,7 +28,7 @@ def reference_and_late_entries(apps, schema_editor):
 class Migration(migrations.Migration):
 
     dependencies = [
-        ('experiments', '0005_text_lengths'),
+        ('experiments', '0006_dishes'),
         migrations.swappable_dependency(settings.AUTH_USER_MODEL),
     ]
 

@@ -34,7 +34,7 @@ def demo_lab(transactional_db, monkeypatch):
 
     from colonies import demo
     from colonies.models import Check, Deviation, Species
-    from experiments.models import Study
+    from experiments.models import Cohort, Study
 
     monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
     call_command("load_demo", "--seed", "7", stdout=open("/dev/null", "w"))
@@ -43,7 +43,9 @@ def demo_lab(transactional_db, monkeypatch):
                or Check.objects.order_by("-observed_at").first())
     unblinded = Study.objects.filter(blinded=False).order_by("code").first() or Study.objects.order_by("code").first()
     return {"check": flagged.pk, "study": unblinded.code, "deviation": Deviation.objects.order_by("pk").first().pk,
-            "species": Species.objects.order_by("pk").first().pk}
+            "species": Species.objects.order_by("pk").first().pk,
+            # a cohort still in use: its dishes table and the set-up and end forms
+            "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk}
 
 
 def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
@@ -59,6 +61,7 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
         "ravi": [  # researcher
             ("tank page (researcher)", "/tanks/LV-03/", True), ("trials list", "/experiments/", True),
             ("study page", f"/experiments/studies/{ids['study']}/", True),
+            ("cohort page", f"/experiments/cohorts/{ids['cohort']}/", True),
             ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),
         ],
         "morwen": [  # manager

@@ -9,7 +9,7 @@ from django.utils import timezone
 
 from colonies.models import Census
 from experiments import services
-from experiments.models import Allowance, Protocol, Stimulus
+from experiments.models import Allowance, Dish, Protocol, Stimulus
 from tests.factories import make_species, make_tank
 
 _numbers = itertools.count(1)
@@ -77,14 +77,23 @@ def uv_values(*, irradiance=2.0, duration=10.0, wavelength=365.0, at=None, **ove
     return values
 
 
-def record(study, cohort, user, *, slot=None, override_reason="", now=None, claim=True, **values):
-    """Record a trial in `slot` (default: the first open one), claimed first by `user` unless `claim=False`."""
+def record(study, group, user, *, slot=None, override_reason="", now=None, claim=True, **values):
+    """Record a trial in `slot` (default: the first open one), claimed first by `user` unless `claim=False`,
+    on `group`: a Dish, or a Cohort whose animals form one dish (as before dishes, and as migration 0006
+    turned every cohort with trials into one dish): its first open dish, else a new dish holding all the
+    cohort's animals not yet in a dish."""
     taken = set(study.trials.counting().values_list("slot", flat=True))
     slot = slot or next(s["slot"] for s in study.allocation if s["slot"] not in taken)
     if claim:
         services.claim_slot(user=user, study=study, slot=slot)
-    return services.record_trial(user=user, study=study, slot=slot, cohort=cohort, values=uv_values(**values),
-                                 override_reason=override_reason, now=now)
+    if isinstance(group, Dish):
+        where = {"dish": group}
+    else:
+        dish = group.dishes.open().order_by("number").first()
+        where = {"dish": dish} if dish else {"cohort": group,
+                                              "dish_animals": group.size - services.animals_in_dishes(group)}
+    return services.record_trial(user=user, study=study, slot=slot, values=uv_values(**values),
+                                 override_reason=override_reason, now=now, **where)
 
 
 def days_ago(n: float):

@@ -27,9 +27,13 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     from experiments import services
     settings.MEDIA_ROOT = tmp_path
     booking = services.book(user=researcher, protocol=protocol, tank=tank, animals=10, needed_on=today())
-    cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(5))
+    # 24 animals: a dish of 10 with a trial, a dish of 2 set up in error (no trial), 12 not in a dish.
+    cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(5), animals=24)
+    dish = services.set_up_dish(user=researcher, cohort=cohort, animals=10, at=days_ago(4.5))
+    empty_dish = services.set_up_dish(user=researcher, cohort=cohort, animals=2, at=days_ago(4.5))
+    spare = make_cohort(user=researcher, protocol=protocol, tank=tank, at=days_ago(5))  # no dish: it can end
     study = make_study(user=researcher, protocol=protocol, code="access-study", blinded=True)
-    trial = record(study, cohort, researcher, at=days_ago(4)).trial
+    trial = record(study, dish, researcher, at=days_ago(4)).trial
     attachment = services.add_attachment(user=researcher, trial=trial, kind="photo",
                                          upload=SimpleUploadedFile("a.png", PNG + b"png bytes"))
     # Slot 2 claimed by the owner to record it (trial-new); slot 3 claimed, to be released; slot 4 open, to claim.
@@ -41,7 +45,8 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
                                                   dispersal_time_s=None, censored=True, finished_at=days_ago(1))
     failed = models.ImageMeasurement.objects.create(**measured, status="failed", error="unreadable")
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
-                           attachment=attachment, claims=claims, measurement=done, failed=failed)
+                           attachment=attachment, claims=claims, measurement=done, failed=failed, dish=dish,
+                           empty_dish=empty_dish, spare=spare)
 
 
 def _hand_over_slot_2(w, user):
@@ -63,7 +68,10 @@ URLS = {
     "experiments:booking-cancel": lambda w: reverse("experiments:booking-cancel", args=[w.booking.pk]),
     "experiments:booking-draw": lambda w: reverse("experiments:booking-draw", args=[w.booking.pk]),
     "experiments:cohort-detail": lambda w: reverse("experiments:cohort-detail", args=[w.cohort.pk]),
-    "experiments:cohort-end": lambda w: reverse("experiments:cohort-end", args=[w.cohort.pk]),
+    "experiments:cohort-end": lambda w: reverse("experiments:cohort-end", args=[w.spare.pk]),
+    "experiments:dish-new": lambda w: reverse("experiments:dish-new", args=[w.cohort.pk]),
+    "experiments:dish-end": lambda w: reverse("experiments:dish-end", args=[w.cohort.pk]),
+    "experiments:dish-void": lambda w: reverse("experiments:dish-void", args=[w.empty_dish.pk]),
     "experiments:study-new": lambda w: reverse("experiments:study-new"),
     "experiments:study-detail": lambda w: reverse("experiments:study-detail", args=[w.study.code]),
     "experiments:study-unblind": lambda w: reverse("experiments:study-unblind", args=[w.study.code]),
@@ -101,6 +109,10 @@ POST_DATA = {
     "experiments:booking-cancel": lambda w: {"reason": "Not needed"},
     "experiments:booking-draw": lambda w: {"count": 10},
     "experiments:cohort-end": lambda w: {"end": Cohort.End.DIED, "note": "found dead"},
+    "experiments:dish-new": lambda w: {"animals": 5},
+    "experiments:dish-end": lambda w: {"dish": w.dish.pk, "end": Cohort.End.RETURNED, "returned_to": w.tank.pk,
+                                       "returned_count": 9},
+    "experiments:dish-void": lambda w: {"reason": "Set up in error"},
     "experiments:study-new": lambda w: {"code": "new-study", "title": "New", "protocol": w.protocol.pk,
                                         "conditions": "a\nb", "reference_condition": "a", "replicates": 2,
                                         "method": "block",
@@ -129,6 +141,9 @@ ACCESS = [
     ("experiments:booking-draw", "post", RUN),
     ("experiments:cohort-detail", "get", READ),
     ("experiments:cohort-end", "post", RUN),
+    ("experiments:dish-new", "post", RUN),  # the researcher drew the cohort: as for ending it
+    ("experiments:dish-end", "post", RUN),
+    ("experiments:dish-void", "post", RUN),
     ("experiments:study-new", "get", RUN),
     ("experiments:study-new", "post", RUN),
     ("experiments:study-detail", "get", READ),
@@ -160,6 +175,7 @@ WRONG_METHODS = [
     ("experiments:index", "post"), ("experiments:protocol-detail", "post"), ("experiments:booking-new", "put"),
     ("experiments:calendar", "post"), ("experiments:booking-detail", "post"), ("experiments:booking-cancel", "get"),
     ("experiments:booking-draw", "get"), ("experiments:cohort-detail", "post"), ("experiments:cohort-end", "get"),
+    ("experiments:dish-new", "get"), ("experiments:dish-end", "get"), ("experiments:dish-void", "get"),
     ("experiments:study-new", "put"), ("experiments:study-detail", "post"), ("experiments:study-unblind", "get"),
     ("experiments:study-csv", "post"), ("experiments:study-chart", "post"), ("experiments:study-chart-csv", "post"),
     ("experiments:trial-new", "delete"), ("experiments:slot-claim", "get"), ("experiments:slot-release", "get"),
@@ -173,9 +189,9 @@ WRONG_METHODS = [
 
 def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
-    return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Study, models.Trial,
+    return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
                                              models.Override, models.Attachment, models.SlotClaim,
-                                              models.ImageMeasurement))
+                                             models.ImageMeasurement))
 
 
 def _request(client, world, name, method):

@@ -73,7 +73,7 @@ def world(db, settings, tmp_path):
     electrical = {"kind": Stimulus.ELECTRICAL, "wavelength_nm": None, "irradiance_mw_cm2": None, "duration_s": None,
                   "voltage_v": 7.77, "electrode_gap_cm": 2.5, "pulse_width_ms": 10.0, "pulse_count": 20}
     pulse = services.record_trial(  # an hour after A's trial on the same cohort: the rest limit needs an override
-        user=people.operator_b, study=study, slot=slot_of[PULSE], cohort=cohort,
+        user=people.operator_b, study=study, slot=slot_of[PULSE], dish=glow.dish,  # the same animals
         values=uv_values(at=days_ago(8.95), **electrical),
         override_reason="Nebula-override: second dish of the morning, agreed with the welfare officer").trial
     services.claim_slot(user=people.operator_b, study=study, slot=slot_of[SHAM])  # claimed, not yet run
@@ -110,9 +110,10 @@ def _values(name: str, param: str, w) -> list:
     if param == "action":
         return ["exclude", "void"]
     if param == "pk":
-        by_name = {"attachment-add": w.trials, "attachment": [w.attachment], "measurement-new": w.trials}
+        by_name = {"attachment-add": w.trials, "attachment": [w.attachment], "measurement-new": w.trials,
+                   "dish-new": [w.cohort], "dish-end": [w.cohort]}
         by_prefix = {"protocol": [w.protocol], "booking": [w.booking], "cohort": [w.cohort], "trial": w.trials,
-                     "measurement": [w.measurement]}
+                     "measurement": [w.measurement], "dish": [w.glow.dish]}
         objects = by_name.get(name) or by_prefix.get(name.split("-")[0])
         if objects:
             return [o.pk for o in objects]

@@ -105,6 +105,6 @@ def test_back_office_refuses_a_protocol_expiring_in_9999_with_absurd_maxima(clie
     assert response.status_code == 200
     assert "Expires on: 31 Dec 9999 is impossible; allowed range 01 Jan 1950 to" in text
     assert "Animals 10000000000000000000 is not possible here: allowed range 1–100000." in text
-    assert "Exposures per cohort 0 is not possible here: allowed range 1–10000." in text
+    assert "Exposures per dish 0 is not possible here: allowed range 1–10000." in text
     assert "Temperature step (size) 400 °C is not possible here: allowed range 0–40 °C." in text
     assert not Protocol.objects.filter(reference="AWB-X").exists()

@@ -5,7 +5,7 @@ from django.utils import timezone
 from colonies.models import Deviation, Species
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 from experiments import demo, reports
-from experiments.models import Booking, Cohort, Override, Study, Trial
+from experiments.models import Booking, Cohort, Dish, Override, Study, Trial
 from tests.experiments.builders import make_stocked_tank
 from tests.factories import make_room, make_species, make_user
 
@@ -28,8 +28,8 @@ def facility(db):
 @pytest.mark.parametrize("seed", [7, 2026])
 def test_demo_builds_a_meaningful_study(facility, seed):
     counts = demo.load(seed=seed, now=timezone.now(), users=facility)
-    assert counts == {"protocols": 3, "bookings": 16, "cohorts": 11, "studies": 2, "trials": 32, "overrides": 1,
-                      "expired_bookings": 1, "image_series": 8}
+    assert counts == {"protocols": 3, "bookings": 10, "cohorts": 5, "dishes": 11, "studies": 2, "trials": 32,
+                      "overrides": 1, "expired_bookings": 1, "image_series": 8}
     study = Study.objects.get(code="uv-dispersal-01")
     assert study.trials.count() == 30 and not study.is_blind
     trials = list(study.trials.select_related("study", "cohort__origin_tank", "protocol", "run_by", "scored_by",
@@ -42,6 +42,14 @@ def test_demo_builds_a_meaningful_study(facility, seed):
     assert override.deviation.rule == Deviation.Rule.PROTOCOL_LIMIT and "rest" in override.breaches[0].lower()
     assert Booking.objects.filter(status=Booking.Status.EXPIRED).count() == 1
     assert Cohort.objects.filter(end="").count() == 2
+    # Three dishes of 8 from one cohort of 24, all run within the same hour, each exposed three times.
+    first = Cohort.objects.filter(size=24).order_by("pk").first()
+    dishes = list(first.dishes.order_by("number"))
+    assert [d.animals for d in dishes] == [8, 8, 8] and first.end == Cohort.End.IN_DISHES
+    day_one = sorted(d.trials.order_by("run_at").first().run_at for d in dishes)
+    assert day_one[-1] - day_one[0] < timezone.timedelta(hours=1)
+    assert all(d.trials.count() == 3 for d in dishes)
+    assert Dish.objects.filter(end=Dish.End.RETURNED).count() == 8 and Dish.objects.filter(end="").count() == 2
     assert Trial.objects.filter(study__code="shock-pilot-01").count() == 2
 
 

@@ -24,6 +24,9 @@ FORMS = {
     "experiments:booking-cancel": False,
     "experiments:booking-draw": False,
     "experiments:cohort-end": False,
+    "experiments:dish-new": True,  # a second dish of 5 from the 12 animals left
+    "experiments:dish-end": False,
+    "experiments:dish-void": False,
     "experiments:study-new": False,  # the study code is taken by the first
     "experiments:study-unblind": False,
     "experiments:trial-new": False,  # the slot is taken by the first
@@ -109,7 +112,8 @@ def test_an_attachment_that_is_refused_releases_its_key(client, world, researche
 PAGES = {
     "experiments:booking-new": (lambda w: reverse("experiments:booking-new"), 1),
     "experiments:booking-detail": (lambda w: w.booking.get_absolute_url(), 2),
-    "experiments:cohort-detail": (lambda w: w.cohort.get_absolute_url(), 1),
+    # void the empty dish, set up a dish, end a dish (the cohort's own end waits for its open dishes)
+    "experiments:cohort-detail": (lambda w: w.cohort.get_absolute_url(), 3),
     "experiments:study-new": (lambda w: reverse("experiments:study-new"), 1),
     "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 1),
     # three open slots to claim, two claims to release, the trial form for the slots claimed

@@ -5,7 +5,7 @@ from datetime import date, datetime, timedelta, timezone
 import pytest
 
 from experiments import limits
-from experiments.limits import AllowanceTerms, CohortState, Proposal, ProtocolTerms
+from experiments.limits import AllowanceTerms, GroupState, Proposal, ProtocolTerms
 
 DAY = date(2026, 3, 10)
 AT = datetime(2026, 3, 10, 12, 0, tzinfo=timezone.utc)
@@ -27,7 +27,7 @@ TERMS = ProtocolTerms(
         "chemical": AllowanceTerms("Chemical", {}, substances={"caffeine": 500.0}),
     },
 )
-FRESH = CohortState(label="C-0001", size=10, ended=False, exposures=0, last_exposure_at=None, cumulative_dose_mj_cm2=0)
+FRESH = GroupState(label="C-0001-D1", animals=10, ended=False, exposures=0, last_exposure_at=None, cumulative_dose_mj_cm2=0)
 UV = Proposal(at=AT, animals=10, kind="uv", settings={"wavelength_nm": 365, "irradiance_mw_cm2": 2, "duration_s": 10,
                                                      "dose_mj_cm2": 20})
 
@@ -44,7 +44,7 @@ def test_values_exactly_at_the_limits_pass():
     cohort = replace(FRESH, exposures=2, last_exposure_at=AT - timedelta(hours=20), cumulative_dose_mj_cm2=50)
     proposal = replace(UV, animals=12, settings={"wavelength_nm": 400, "irradiance_mw_cm2": 5, "duration_s": 10,
                                                  "dose_mj_cm2": 50})
-    assert limits.check_exposure(TERMS, replace(cohort, size=12), proposal, DAY) == []
+    assert limits.check_exposure(TERMS, replace(cohort, animals=12), proposal, DAY) == []
 
 
 @pytest.mark.parametrize("terms,day,word", [
@@ -69,22 +69,23 @@ def test_sham_handling_needs_no_allowance_but_still_counts_as_an_exposure():
     assert keys(limits.check_exposure(TERMS, replace(FRESH, exposures=3), sham, DAY)) == ["exposures"]
 
 
-def test_an_ended_cohort_and_more_animals_than_it_holds_are_hard():
-    breaches = limits.check_exposure(TERMS, replace(FRESH, ended=True, size=8), UV, DAY)
-    assert keys(breaches) == ["cohort_ended", "cohort_size"]
+def test_an_ended_dish_and_more_animals_than_it_holds_alive_are_hard():
+    breaches = limits.check_exposure(TERMS, replace(FRESH, ended=True, animals=8), UV, DAY)
+    assert keys(breaches) == ["group_ended", "group_animals"]
     assert not any(b.overridable for b in breaches)
+    assert breaches[1].message == "Animals in the trial 10 is more than dish C-0001-D1 holds alive (8)."
 
 
 def test_animals_per_trial_above_the_maximum():
-    [b] = limits.check_exposure(TERMS, replace(FRESH, size=20), replace(UV, animals=13), DAY)
+    [b] = limits.check_exposure(TERMS, replace(FRESH, animals=20), replace(UV, animals=13), DAY)
     assert (b.limit, b.value, b.allowed, b.overridable) == ("animals", 13, 12, True)
 
 
-def test_exposures_per_cohort_above_the_maximum():
+def test_exposures_per_dish_above_the_maximum():
     cohort = replace(FRESH, exposures=3, last_exposure_at=AT - timedelta(days=2))
     [b] = limits.check_exposure(TERMS, cohort, UV, DAY)
     assert (b.limit, b.value, b.allowed) == ("exposures", 4, 3)
-    assert b.message == "This would be exposure 4 of cohort C-0001; the protocol allows 3."
+    assert b.message == "This would be exposure 4 of dish C-0001-D1; the protocol allows 3."
 
 
 def test_rest_since_the_last_exposure_below_the_minimum():

@@ -101,6 +101,7 @@ def test_recording_a_trial_through_the_form(client, researcher, bench):
     response = _post_trial(client, study, cohort)
     trial = Trial.objects.get()
     assert response.status_code == 302 and response["Location"] == trial.get_absolute_url()
+    assert (trial.dish.cohort, trial.dish.number, trial.dish.animals) == (cohort, 1, 10)  # a new dish, same step
     assert trial.dose_mj_cm2 == 20 and trial.clusters == [
         {"t_s": 60.0, "clusters": 2, "largest_fraction": 0.8}, {"t_s": 300.0, "clusters": 7, "largest_fraction": 0.2}]
 
@@ -128,22 +129,24 @@ def test_limit_refusal_lists_the_breach_and_a_manager_overrides_it(client, resea
     cohort, study = bench
     client.force_login(researcher)
     assert _post_trial(client, study, cohort).status_code == 302
-    response = _post_trial(client, study, cohort, run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"))
+    dish = Trial.objects.get().dish
+    response = _post_trial(client, study, cohort, dish=str(dish.pk), run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"))
     assert response.status_code == 409
     text = page_text(response)
-    assert "Rest since the last exposure of cohort" in text and "Only a manager may record an override" in text
+    assert f"Rest since the last exposure of dish {dish.label}" in text
+    assert "Only a manager may record an override" in text
     assert Trial.objects.count() == 1
     client.force_login(manager)
     slot = 2  # the slot the researcher claimed and could not run (slot 1 has its trial)
     released = client.post(reverse("experiments:slot-release", args=[study.code, slot]),
                            {"reason": "Needs a manager's override; I run it"})
     assert released.status_code == 302
-    response = _post_trial(client, study, cohort, run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"),
+    response = _post_trial(client, study, cohort, dish=str(dish.pk), run_at=days_ago(1.9).strftime("%Y-%m-%dT%H:%M"),
                            override_reason="Second dish of the same pair; agreed with the welfare officer")
     assert response.status_code == 302
     override = Override.objects.get()
     assert override.deviation.rule == Deviation.Rule.PROTOCOL_LIMIT
-    assert override.deviation.subject == f"cohort:{cohort.pk}"
+    assert override.deviation.subject == f"dish:{dish.pk}"
     detail = page_text(client.get(response["Location"]))
     assert "agreed with the welfare officer" in detail and f"deviation #{override.deviation.pk}" in detail
 
@@ -329,7 +332,7 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
         reverse("experiments:study-csv", args=[study.code]): 5,
         reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
         reverse("experiments:ledger"): 7, reverse("experiments:ledger-csv"): 5,
-        reverse("experiments:calendar"): 6, cohort.get_absolute_url(): 6,
+        reverse("experiments:calendar"): 6, cohort.get_absolute_url(): 7,
         booking.get_absolute_url(): 8, protocol.get_absolute_url(): 7,
     }
     for url, limit in pages.items():
@@ -373,7 +376,7 @@ def test_back_office_lists_and_adds_protocols_but_deletes_nothing(client, superu
     cohort, study = bench
     record(study, cohort, researcher, at=days_ago(9))
     client.force_login(superuser)
-    for model in ("protocol", "booking", "cohort", "study", "trial", "override", "attachment"):
+    for model in ("protocol", "booking", "cohort", "dish", "study", "trial", "override", "attachment"):
         assert client.get(reverse(f"admin:experiments_{model}_changelist")).status_code == 200
     assert client.get(reverse("admin:experiments_protocol_add")).status_code == 200
     assert client.get(reverse("admin:experiments_protocol_delete", args=[study.protocol_id])).status_code == 403

@@ -13,7 +13,7 @@ from tests.experiments.builders import days_ago, make_cohort, make_study, record
 
 @pytest.fixture
 def exposures(researcher, protocol, tank):
-    """Three cohorts with one to three exposures each, in one study."""
+    """Three cohorts (one dish each) with one to three exposures each, in one study."""
     study = make_study(user=researcher, protocol=protocol, replicates=3, code="chunked")
     slots = iter(entry["slot"] for entry in study.allocation)
     for n in (3, 1, 2):
@@ -34,13 +34,14 @@ def test_tidy_csv_in_chunks_equals_the_whole_table(exposures, monkeypatch):
     assert text.count("\r\n") == 1 + 6
 
 
-def test_ledger_csv_in_chunks_keeps_each_cohort_s_running_totals(exposures, manager, monkeypatch):
-    monkeypatch.setattr(exports, "CHUNK", 2)  # a cohort's exposures fall in two chunks
-    shown = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "run_at", "pk")
+def test_ledger_csv_in_chunks_keeps_each_dish_s_running_totals(exposures, manager, monkeypatch):
+    monkeypatch.setattr(exports, "CHUNK", 2)  # a dish's exposures fall in two chunks
+    shown = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "dish__number", "run_at",
+                                                                             "pk")
 
     text = "".join(reports.ledger_csv(shown, manager))
 
-    every = reports.every_exposure({t.cohort_id for t in shown})
+    every = reports.every_exposure({t.dish_id for t in shown})
     rows = reports.ledger_rows(list(shown), every, manager)
     frame = pd.DataFrame([{k: r[k] for k in reports.LEDGER_COLUMNS} for r in rows], columns=reports.LEDGER_COLUMNS)
     assert text == frame_csv(frame, **reports.CSV_OPTIONS)

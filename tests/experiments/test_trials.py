@@ -88,7 +88,7 @@ def test_exposure_limit_refuses_the_fourth_trial(setup, researcher):
     _, cohort, study = setup
     for n in (9, 8, 7):
         record(study, cohort, researcher, at=days_ago(n))
-    with pytest.raises(services.LimitRefused, match="exposure 4 of cohort") as refusal:
+    with pytest.raises(services.LimitRefused, match="exposure 4 of dish") as refusal:
         record(study, cohort, researcher, at=days_ago(6))
     assert refusal.value.overridable
     assert Trial.objects.count() == 3
@@ -97,14 +97,14 @@ def test_exposure_limit_refuses_the_fourth_trial(setup, researcher):
 def test_rest_limit_refuses_a_trial_too_soon_after_the_last(setup, researcher):
     _, cohort, study = setup
     record(study, cohort, researcher, at=days_ago(9))
-    with pytest.raises(services.LimitRefused, match=r"Rest since the last exposure of cohort .* would be 12\.0 h"):
+    with pytest.raises(services.LimitRefused, match=r"Rest since the last exposure of dish C-\d{4}-D1 would be 12\.0 h"):
         record(study, cohort, researcher, at=days_ago(8.5))
 
 
 def test_cumulative_dose_limit(setup, researcher):
     _, cohort, study = setup  # protocol allows 150 mJ/cm² per cohort and 100 per exposure
     record(study, cohort, researcher, at=days_ago(9), irradiance=5, duration=16)  # 80
-    with pytest.raises(services.LimitRefused, match="Cumulative dose of cohort .* would be 160 mJ/cm²"):
+    with pytest.raises(services.LimitRefused, match="Cumulative dose of dish .* would be 160 mJ/cm²"):
         record(study, cohort, researcher, at=days_ago(8), irradiance=5, duration=16)
 
 
@@ -136,12 +136,13 @@ def test_a_managers_override_saves_the_trial_and_opens_a_deviation(setup, resear
     result = record(study, cohort, manager, at=days_ago(6), override_reason="Replacement dish; animals healthy")
     override = Override.objects.get()
     assert override.trial == result.trial and override.recorded_by == manager
-    assert override.breaches == [f"This would be exposure 4 of cohort {cohort.label}; the protocol allows 3."]
+    dish = result.trial.dish
+    assert override.breaches == [f"This would be exposure 4 of dish {dish.label}; the protocol allows 3."]
     deviation = Deviation.objects.get()
     assert override.deviation == deviation == result.deviation
     assert deviation.rule == Deviation.Rule.PROTOCOL_LIMIT
     assert deviation.tank_id == cohort.origin_tank_id
-    assert deviation.subject == f"cohort:{cohort.pk}"
+    assert deviation.subject == f"dish:{dish.pk}"  # the group of animals the limits count
     assert deviation.evidence[0]["reason"] == "Replacement dish; animals healthy"
     assert deviation.evidence[0]["ref"] == f"trial:{result.trial.pk}"
     assert protocol.reference in deviation.summary
@@ -253,11 +254,11 @@ def test_exclude_and_void_need_reasons_and_void_frees_the_exposure(setup, resear
     _, cohort, study = setup
     first = record(study, cohort, researcher, at=days_ago(9)).trial
     services.exclude_trial(user=researcher, trial=first, reason="Clump never formed")
-    assert services.cohort_state(cohort, days_ago(0)).exposures == 1  # excluded trials still exposed animals
+    assert services.dish_state(first.dish, days_ago(0)).exposures == 1  # excluded trials still exposed animals
     with pytest.raises(services.Refused):
         services.void_trial(user=researcher, trial=first, reason="")
     services.void_trial(user=researcher, trial=first, reason="Entered under the wrong study")
-    assert services.cohort_state(cohort, days_ago(0)).exposures == 0
+    assert services.dish_state(first.dish, days_ago(0)).exposures == 0
 
 
 def test_attachment_is_stored_with_its_sha256(setup, researcher, settings, tmp_path):
@@ -274,7 +275,7 @@ def test_attachment_is_stored_with_its_sha256(setup, researcher, settings, tmp_p
 
 
 def test_uv_values_builder_is_inside_the_default_protocol(researcher, protocol):
-    assert services.limits.check_exposure(protocol.terms(), services.limits.CohortState("C", 10, False, 0, None, 0),
+    assert services.limits.check_exposure(protocol.terms(), services.limits.GroupState("C", 10, False, 0, None, 0),
                                           services.limits.Proposal(days_ago(1), 10, "uv", {"dose_mj_cm2": 20.0,
                                                                                            "irradiance_mw_cm2": 2,
                                                                                            "duration_s": 10,
