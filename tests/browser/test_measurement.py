@@ -44,9 +44,11 @@ def trial(transactional_db, settings, tmp_path):
                             needed_on=today - timedelta(days=8), today=today - timedelta(days=9))
     cohort = services.draw(user=researcher, booking=booking, at=timezone.now() - timedelta(days=8))
     study = services.create_study(user=researcher, code="camera", title="Camera study", protocol=protocol,
-                                  conditions=["sham", "UV"], replicates=2, method="block", seed=5, blinded=True)
+                                  conditions=["sham", "UV"], reference_condition="sham", replicates=2, method="block",
+                                  seed=5, blinded=True)
     values = {"vessel": "dish", "animals": 10, "kind": Stimulus.UV, "wavelength_nm": 365, "irradiance_mw_cm2": 2,
               "duration_s": 10, "run_at": timezone.now() - timedelta(days=7)}
+    services.claim_slot(user=researcher, study=study, slot=1)  # only the claimant records a slot
     return services.record_trial(user=researcher, study=study, slot=1, cohort=cohort, values=values).trial
 
 
