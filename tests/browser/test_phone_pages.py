@@ -42,7 +42,9 @@ def demo_lab(transactional_db, monkeypatch):
     flagged = (Check.objects.exclude(flags={}).order_by("-observed_at").first()
                or Check.objects.order_by("-observed_at").first())
     unblinded = Study.objects.filter(blinded=False).order_by("code").first() or Study.objects.order_by("code").first()
-    return {"check": flagged.pk, "study": unblinded.code, "deviation": Deviation.objects.order_by("pk").first().pk,
+    # the unblinded UV study: its analysis (Kaplan-Meier, log-rank, dose-response with the links table)
+    analysed = Study.objects.filter(unblinded_at__isnull=False).order_by("code").first() or unblinded
+    return {"check": flagged.pk, "study": unblinded.code, "analysed": analysed.code, "deviation": Deviation.objects.order_by("pk").first().pk,
             "species": Species.objects.order_by("pk").first().pk,
             # a cohort still in use: its dishes table and the set-up and end forms
             "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk}
@@ -61,6 +63,7 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
         "ravi": [  # researcher
             ("tank page (researcher)", "/tanks/LV-03/", True), ("trials list", "/experiments/", True),
             ("study page", f"/experiments/studies/{ids['study']}/", True),
+            ("study page (analysis)", f"/experiments/studies/{ids['analysed']}/", True),
             ("cohort page", f"/experiments/cohorts/{ids['cohort']}/", True),
             ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),
         ],
