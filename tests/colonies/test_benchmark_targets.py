@@ -96,3 +96,24 @@ def test_a_library_fast_enough_for_the_target_is_no_floor():
                        floor_rows_per_s=12_000.0, floor_cpu_rows_per_s=13_000.0, floor_what="XlsxWriter")
     assert verdict(slow, EXPORT) == ("not met", "10,000 rows/s < 50,000")
     assert verdict(buffered, EXPORT)[0] == "not met"  # the floor excuses the rate, not a response held in memory
+
+
+def test_a_page_over_three_times_its_sql_only_by_the_bare_page_s_cost_reports_that_floor():
+    # 3 x 2 ms SQL + a 5 ms bare page = 11 ms >= 9 ms: the page's own work is within the rule.
+    outcome, detail = verdict(_result("Register", ms=9, sql=2), PAGE, bare_page_ms=5.0)
+    assert outcome == "floor"
+    assert detail == "bare page 5.0 ms + 3 x 2.0 ms SQL >= 9.0 ms; 9 ms > 3 x 2 ms SQL"
+
+
+def test_the_bare_page_does_not_excuse_a_page_doing_more_than_that():
+    assert verdict(_result("Register", ms=20, sql=2), PAGE, bare_page_ms=5.0) == ("not met", "20 ms > 3 x 2 ms SQL")
+    # nor a page over its time as well
+    assert verdict(_result("Today", ms=160, sql=52), PAGE, bare_page_ms=5.0)[0] == "not met"
+
+
+def test_the_table_judges_pages_against_the_bare_page_it_timed():
+    bare = Result("Floor: species list (bare page)", "technician", "floor", runs_ms=[5.0], cpu_ms=[5.0], queries=4,
+                  sql_ms=0.5)
+    page = _result("Register", ms=9, sql=2)
+    assert "floor: bare page 5.0 ms" in table([bare, page])
+    assert judged(page)["verdict"] == "not met"  # without the bare page there is no floor to judge by
