@@ -38,6 +38,8 @@ def _notes(r) -> str:
         parts.append(f"{r.bytes / 2**20:.1f} MiB")
     if r.peak_mib is not None:
         parts.append(f"peak {r.peak_mib:.0f} MiB")
+    if r.template_ms is not None:
+        parts.append(f"template alone {r.template_ms:,.1f} ms")
     if r.floor_rows_per_s:
         parts.append(f"floor: {r.floor_what} alone {r.floor_rows_per_s:,.0f} rows/s "
                      f"({r.floor_cpu_rows_per_s:,.0f} rows/s of CPU)")

@@ -17,6 +17,8 @@ from typing import Callable
 
 from django.db import connection, transaction
 
+from .template_floor import template_alone_ms
+
 
 @dataclass
 class Case:
@@ -92,6 +94,7 @@ class Result:
     floor_rows_per_s: float | None = None  # the library alone (Case.floor), wall time as rows_per_s
     floor_cpu_rows_per_s: float | None = None
     floor_what: str = ""
+    template_ms: float | None = None  # pages: the template engine alone on the page's context (template_floor.py)
 
     @property
     def median_ms(self):
@@ -181,6 +184,11 @@ def measure(case: Case, repeats: int, memory: bool = True) -> Result:
                 result.sql_ms = median[1].replayed_ms()
             except Exception:  # a statement that cannot be replayed alone: keep the execute time
                 pass
+    if case.kind == "page" and result.ok and not case.rollback:
+        try:
+            result.template_ms = template_alone_ms(case.run)
+        except Exception:  # the floor is information; a page that cannot be re-rendered keeps none
+            result.template_ms = None
     if memory and case.kind == "export" and result.ok:
         result.peak_mib = _peak_mib(case)
     if case.floor and result.ok:

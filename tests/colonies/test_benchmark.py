@@ -53,6 +53,10 @@ def test_benchmark_reports_every_page_and_leaves_the_configured_database_alone(t
     xlsx = next(r for r in exports if r["name"] == "Export: checks XLSX")
     assert xlsx["floor_what"] == "XlsxWriter" and xlsx["floor_rows_per_s"] > 0 and xlsx["floor_cpu_rows_per_s"] > 0
     assert sum(1 for r in doc["results"] if r["target"]) >= len(EXPECTED) - 6  # six without a target
+    # Every page that renders a template reports the engine's own time on it, below the page's own time.
+    tank_page = next(r for r in doc["results"] if r["name"].startswith("Tank page"))
+    assert 0 < tank_page["template_ms"] < tank_page["max_ms"]
+    assert today["template_ms"] is not None and "template alone" in printed.getvalue()
     table = printed.getvalue()
     assert "| verdict " in table and "<= 3x SQL" in table
     assert "median ms" in table and "| Today " in table and "Back office: checks list" in table

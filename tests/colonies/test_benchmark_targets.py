@@ -117,3 +117,12 @@ def test_the_table_judges_pages_against_the_bare_page_it_timed():
     page = _result("Register", ms=9, sql=2)
     assert "floor: bare page 5.0 ms" in table([bare, page])
     assert judged(page)["verdict"] == "not met"  # without the bare page there is no floor to judge by
+
+
+def test_the_template_engine_s_own_time_is_part_of_the_floor_and_named():
+    # 3 x 2 ms SQL + 5 ms bare page + 30 ms template alone = 41 ms >= 40 ms
+    page = _result("Tank page", ms=40, sql=2, template_ms=30.0)
+    outcome, detail = verdict(page, PAGE, bare_page_ms=5.0)
+    assert outcome == "floor" and detail.startswith("bare page 5.0 ms + template alone 30.0 ms + 3 x 2.0 ms SQL")
+    # the page's own work beyond both floors is still held to 3x its SQL
+    assert verdict(_result("Tank page", ms=50, sql=2, template_ms=30.0), PAGE, bare_page_ms=5.0)[0] == "not met"
