@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 from colonies.exports import spreadsheet_safe
 
-from .sections import NOTES
+from .sections import HEADINGS, NOTES, exposure_page_row
 
 ZIP_DATE = (2000, 1, 1, 0, 0, 0)  # every entry's timestamp: the ZIP's bytes depend on the contents only
 
@@ -36,12 +36,22 @@ class Section:
     def note(self) -> str:
         return NOTES.get(self.number, "")
 
+    def page_rows(self) -> list[dict]:
+        return [exposure_page_row(r) for r in self.rows] if self.number == "5b" else self.rows
+
     def table(self) -> list[list[tuple[str, str]]]:
         """The rows as the page shows them, (heading, text) per cell: empty cells as a dash, text as it is."""
-        return [[(h, shown(row.get(c))) for h, c in zip(self.headings(), self.columns)] for row in self.rows]
+        rows = self.page_rows()
+        keys = list(rows[0]) if self.number == "5b" and rows else self.columns
+        return [[(h, shown(row.get(c))) for h, c in zip(self._headings(keys), keys)] for row in rows]
 
     def headings(self) -> list[str]:
-        return [c.replace("_", " ") for c in self.columns]
+        rows = self.page_rows()
+        return self._headings(list(rows[0]) if self.number == "5b" and rows else self.columns)
+
+    @staticmethod
+    def _headings(keys) -> list[str]:
+        return [HEADINGS.get(c, c.replace("_", " ")) for c in keys]
 
     @property
     def filename(self) -> str:

@@ -321,3 +321,29 @@ NOTES = {
     "6": "Changes with a reason recorded in the period: corrections and voids of husbandry records, corrected, "
          "excluded and voided trials, voided dishes.",
 }
+
+# Headings the page shows where the CSV's column name reads badly.
+HEADINGS = {"share_within_pct": "within target (%)", "per_1000_animal_days": "per 1,000 animal-days",
+            "lower_95": "95 % interval, lower", "upper_95": "95 % interval, upper", "plan_source": "plan from",
+            "share_of_approved_pct": "share of approved (%)", "open_at_period_end": "open at period end",
+            "median_hours_to_close": "median hours to close", "max_hours_to_close": "longest hours to close"}
+
+
+def _of(value, limit, unit: str = "") -> str:
+    if value is None:
+        return "–"
+    text = f"{value:g}" if isinstance(value, float) else str(value)
+    return f"{text} of {limit:g}{unit}" if limit is not None else text
+
+
+def exposure_page_row(r: dict) -> dict:
+    """An exposure as the page shows it: the limits beside the values (the CSV keeps a column each)."""
+    override = " · ".join(x for x in (r["override_reason"], r["override_breaches"],
+                                      f"by {r['override_by']}" if r["override_by"] else "") if x)
+    return {"dish": r["dish"], "origin tank": r["origin_tank"], "protocol": r["protocol"], "run at": r["run_at"],
+            "study · slot": f"{r['study']} · {r['slot']}", "stimulus and settings": r["settings"],
+            "animals": r["animals"], "exposure": _of(r["exposure_number"], r["max_exposures"]),
+            "cumulative dose (mJ/cm²)": _of(r["cumulative_dose_mj_cm2"], r["max_cumulative_dose_mj_cm2"])
+            if r["cumulative_dose_mj_cm2"] is not None else "hidden (blinded)" if "blinded" in (r["settings"] or "") else "–",
+            "rest (h)": "–" if r["rest_h"] is None else f"{r['rest_h']:g} (least {r['min_rest_h']:g})",
+            "over limit": r["over_limit"] and f"▲ {r['over_limit']}", "override": override}
