@@ -112,6 +112,8 @@ class Protocol(models.Model):
             models.CheckConstraint(condition=within_q("min_rest_hours"), name="protocol_min_rest_bounds"),
             models.CheckConstraint(condition=within_q("max_animals_per_trial", "animals")
                                    & within_q("max_exposures_per_group", "exposures"), name="protocol_maxima_bounds"),
+            models.CheckConstraint(condition=within_q("max_animals_total", "animals"),
+                                   name="protocol_max_animals_total_bounds"),
         ]
 
     def __str__(self):
