@@ -62,7 +62,9 @@ def period_report_pdf(request):
     if report is None:
         return HttpResponseBadRequest(" ".join(m for msgs in form.errors.values() for m in msgs) or "Choose a period.")
     html = render_to_string("experiments/period_report_print.html",
-                            {"report": report, "printed_at": timezone.now(), "user": request.user}, request=request)
+                            {"report": report, "printed_at": timezone.now(), "user": request.user,
+                             "manifest_sha256": files.manifest_sha256(files.zip_bytes(report.sections)[1])},
+                            request=request)
     from weasyprint import HTML
 
     pdf = HTML(string=html, base_url="vermilog-static:/", url_fetcher=_static_fetcher).write_pdf()

@@ -262,3 +262,9 @@ def test_back_office_refuses_an_impossible_approved_number_of_animals(client, su
     assert response.status_code == 200 and "allowed range 1–100000" in response.content.decode()
     with pytest.raises(IntegrityError), transaction.atomic():  # the database refuses it too
         make_protocol(max_animals_total=200000)
+
+
+def test_the_pdf_names_the_manifest_sum_of_the_zip(facility, manager, client):
+    client.force_login(manager)
+    archive = zipfile.ZipFile(io.BytesIO(client.get(reverse("experiments:period-report-zip"), QUERY).content))
+    assert hashlib.sha256(archive.read("MANIFEST")).hexdigest() in _print_html(client)
