@@ -4,6 +4,7 @@ number of tanks, checks or trials, turned into the plain rows experiments/period
 from __future__ import annotations
 
 from dataclasses import dataclass
+from types import SimpleNamespace
 from datetime import date, datetime, time, timedelta
 
 from django.db.models import Exists, OuterRef, Q, Subquery
@@ -244,48 +245,36 @@ def _action(reason: str) -> str:
 
 
 def changes(scope: ReportScope, tanks: list[Tank], period: Period, user) -> list[dict]:
+    """Corrections and voids with a reason in the period: one query per kind of record."""
     in_period = {"history_type": "~", "history_date__gte": period.start, "history_date__lt": period.end}
     codes = {t.pk: t.code for t in tanks}
     out = []
-    for model, label in HUSBANDRY:
-        for pk, tank_id, at, who, reason in (model.history.filter(tank_id__in=list(codes), **in_period)
-                                             .values_list("id", "tank_id", "history_date", "history_user__username",
-                                                          "history_change_reason")):
-            out.append(sections.Change(at, who or "", f"{label} #{pk} · {codes[tank_id]}", _action(reason or ""),
-                                       reason or ""))
-    for pk, tank_id, at, who, reason in (Split.history.filter(source_id__in=list(codes), **in_period)
-                                         .values_list("id", "source_id", "history_date", "history_user__username",
-                                                      "history_change_reason")):
-        out.append(sections.Change(at, who or "", f"Split #{pk} · {codes[tank_id]}", _action(reason or ""), reason or ""))
-    starts = Q()
+    sources = [(model.history.filter(tank_id__in=list(codes), **in_period), "tank_id", label) for model, label in HUSBANDRY]
+    sources.append((Split.history.filter(source_id__in=list(codes), **in_period), "source_id", "Split"))
+    for history, tank_field, label in sources:
+        for pk, tank_id, at, who, reason in history.values_list("id", tank_field, "history_date",
+                                                                "history_user__username", "history_change_reason"):
+            reason = reason or ""
+            out.append(sections.Change(at, who or "", f"{label} #{pk} · {codes[tank_id]}", _action(reason), reason))
+    corrections = Q()
     for prefix in TRIAL_CORRECTIONS:
-        starts |= Q(history_change_reason__startswith=prefix)
-    trial_ids = Trial.objects.filter(scope.trials).values("pk")
-    studies = {}
-    for h in (Trial.history.filter(starts, id__in=trial_ids, **in_period).select_related("history_user")
-              .only("id", "code", "study_id", "run_by_id", "history_date", "history_user__username",
-                    "history_change_reason")):
-        studies.setdefault(h.study_id, None)
-        out.append((h, None))
-    known = {s.pk: s for s in Study.objects.filter(pk__in=list(studies))}
-    result = []
-    for item in out:
-        if isinstance(item, sections.Change):
-            result.append(item)
-            continue
-        h = item[0]
-        study = known[h.study_id]
-        reason = h.history_change_reason or ""
-        seen = not blinding.study_is_blind(study) or (user.pk is not None and h.run_by_id == user.pk)
-        result.append(sections.Change(h.history_date, h.history_user.get_username() if h.history_user else "",
-                                      f"Trial {h.code} · study {study.code}", _action(reason),
-                                      reason if seen else f"{reason.split(':')[0]}: {HIDDEN_REASON}"))
-    for pk, cohort_label, at, who, reason in (Dish.history.filter(id__in=Dish.objects.filter(cohort__in=Cohort.objects.filter(scope.cohorts)).values("pk"),
-                                                                  history_change_reason__startswith="Voided:", **in_period)
-                                              .values_list("id", "number", "history_date", "history_user__username",
-                                                           "history_change_reason")):
-        result.append(sections.Change(at, who or "", f"Dish #{pk}", "voided", reason or ""))
-    return sections.changes(result, when)
+        corrections |= Q(history_change_reason__startswith=prefix)
+    trials = (Trial.history.filter(corrections, id__in=Trial.objects.filter(scope.trials).values("pk"), **in_period)
+              .values_list("history_date", "history_user__username", "code", "run_by_id", "history_change_reason",
+                           "study__code", "study__blinded", "study__unblinded_at"))
+    for at, who, code, run_by_id, reason, study, blinded, unblinded_at in trials:
+        reason = reason or ""
+        # experiments/blinding.py decides, on the few fields it reads: while the study is blind, only the trial's
+        # operator may read why it changed (a reason may name the condition).
+        trial = SimpleNamespace(run_by_id=run_by_id, study=SimpleNamespace(blinded=blinded, unblinded_at=unblinded_at))
+        seen = blinding.may_see_condition(user, trial)
+        out.append(sections.Change(at, who or "", f"Trial {code} · study {study}", _action(reason),
+                                   reason if seen else f"{reason.split(':')[0]}: {HIDDEN_REASON}"))
+    dishes = Dish.objects.filter(cohort__in=Cohort.objects.filter(scope.cohorts)).values("pk")
+    for pk, at, who, reason in (Dish.history.filter(id__in=dishes, history_change_reason__startswith="Voided:", **in_period)
+                                .values_list("id", "history_date", "history_user__username", "history_change_reason")):
+        out.append(sections.Change(at, who or "", f"Dish #{pk}", "voided", reason or ""))
+    return sections.changes(out, when)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -4,7 +4,7 @@ from datetime import date, datetime, timezone as dt_timezone
 
 from colonies.models import Census, Check, DeadRemoval, Deviation, WaterChange
 from experiments import services
-from experiments.models import Protocol
+from experiments.models import Protocol, Trial
 from tests.experiments.builders import make_protocol, make_study, record
 from tests.factories import make_species, make_tank
 
@@ -63,8 +63,12 @@ def build_trials(*, tank, researcher, manager, blind=False, max_total=100):
     dish = services.set_up_dish(user=researcher, cohort=cohort, animals=8, at=at(3, 13))
     conditions = SECRET_LABELS if blind else ("sham", "UV low")
     study = make_study(user=researcher, protocol=protocol, conditions=conditions, replicates=2, blinded=blind)
-    record(study, dish, researcher, at=at(4, 10), now=at(4, 10), animals=8)
+    first = record(study, dish, researcher, at=at(4, 10), now=at(4, 10), animals=8).trial
     record(study, dish, researcher, at=at(5, 12), now=at(5, 12), animals=8)
+    # The operator corrects a score, naming the condition in the reason (an operator knows it).
+    services.score_trial(user=researcher, trial=first, values={"disperse_s": 130, "aggregate_s": 300},
+                         reason=f"re-timed the {first.condition} dish from the video", now=at(6, 9))
+    Trial.history.filter(id=first.pk, history_change_reason__startswith="Outcome corrected").update(history_date=at(6, 9))
     return protocol, study, early, cohort, dish
 
 

@@ -11,7 +11,7 @@ import pytest
 from django.urls import reverse
 from scipy import stats
 
-from experiments.models import PeriodReport
+from experiments.models import PeriodReport, Trial
 from experiments.period_report import queries, render
 from tests.experiments.period_report_fixture import FIRST, LAST, QUERY, SECRET_LABELS, build_facility, build_trials
 
@@ -112,9 +112,20 @@ def test_exposures_carry_running_totals_per_dish(facility, manager):
 
 def test_corrections_and_voids_with_who_when_why(facility, manager):
     rows = _report(manager).section("6").rows
+    condition = Trial.objects.get(slot=1).condition  # the study is not blind: its reasons are shown
     assert [(r["when"], r["who"], r["action"], r["reason"]) for r in rows] == [
         ("2026-11-05 10:00", "tess", "corrected", "Thermometer misread"),
+        ("2026-11-06 09:00", "rhea", "corrected", f"Outcome corrected: re-timed the {condition} dish from the video"),
         ("2026-11-07 09:00", "mona", "voided", "Voided: Entered on the wrong tank")]
+
+
+def test_a_blind_trials_correction_shows_its_kind_not_its_reason(db, technician, manager, researcher):
+    tank = build_facility(technician=technician, manager=manager, researcher=researcher)
+    build_trials(tank=tank, researcher=researcher, manager=manager, blind=True)
+    [row] = [r for r in _report(manager).section("6").rows if r["record"].startswith("Trial")]
+    assert row["reason"] == "Outcome corrected: (hidden while the study is blinded)"
+    [own] = [r for r in _report(researcher).section("6").rows if r["record"].startswith("Trial")]
+    assert own["reason"].startswith("Outcome corrected: re-timed the ")  # the operator ran it: they may read it
 
 
 def test_csvs_are_byte_identical_on_rerun_and_the_manifest_verifies(facility, manager, client):
