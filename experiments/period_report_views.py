@@ -52,7 +52,7 @@ def _static_fetcher(url: str):
         path = finders.find(url[len(prefix):])
         if path:
             return default_url_fetcher("file://" + path)
-    raise ValueError(f"The PDF loads only Vermilog's own static files, not {url} ({settings.STATIC_URL}).")
+    raise ValueError(f"The PDF loads only Vermilog's own static files ({settings.STATIC_URL}), not {url}.")
 
 
 @require_GET
@@ -65,10 +65,7 @@ def period_report_pdf(request):
                             {"report": report, "printed_at": timezone.now(), "user": request.user,
                              "manifest_sha256": files.manifest_sha256(files.zip_bytes(report.sections)[1])},
                             request=request)
-    from weasyprint import HTML
-
-    pdf = HTML(string=html, base_url="vermilog-static:/", url_fetcher=_static_fetcher).write_pdf()
-    response = HttpResponse(pdf, content_type="application/pdf")
+    response = HttpResponse(files.pdf_bytes(html, "vermilog-static:/", _static_fetcher), content_type="application/pdf")
     response["Content-Disposition"] = f'attachment; filename="{_filename(report, "pdf")}"'
     return response
 

@@ -112,8 +112,9 @@ def manifest_sha256(text: str) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def pdf_bytes(html: str, base_url: str) -> bytes:
-    """The printable page as PDF (WeasyPrint lays out the page's own @media print rules)."""
+def pdf_bytes(html: str, base_url: str, url_fetcher) -> bytes:
+    """The printable page as PDF (WeasyPrint lays out the page's own @media print rules); `url_fetcher` reads
+    what the page links (the stylesheet)."""
     from weasyprint import HTML  # imported here: loading Pango costs ~0.3 s, only the PDF needs it
 
-    return HTML(string=html, base_url=base_url).write_pdf()
+    return HTML(string=html, base_url=base_url, url_fetcher=url_fetcher).write_pdf()
