@@ -92,7 +92,7 @@ ROLE_PERMISSIONS: dict[str, list[str]] = {
         *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "deadremoval", "split", "splitpart",
                 "deviation"),
         *_perms("experiments", "view", "booking", "cohort", "dish", "study", "trial", "override", "attachment",
-                "slotclaim"),
+                "slotclaim", "periodreport"),
     ],
 }
 

@@ -12,8 +12,8 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
 
 from . import blinding
-from .models import (Allowance, Attachment, Booking, Cohort, Dish, ImageMeasurement, Override, Protocol, SlotClaim,
-                     Study, Trial)
+from .models import (Allowance, Attachment, Booking, Cohort, Dish, ImageMeasurement, Override, PeriodReport, Protocol,
+                     SlotClaim, Study, Trial)
 
 # What a row must not show to a viewer blinded to it: experiments/blinding.py decides, as on the app's pages.
 BLINDED_TRIAL_FIELDS = blinding.HIDDEN_TRIAL_FIELDS
@@ -39,7 +39,8 @@ class AllowanceInline(NoDeleteMixin, admin.StackedInline):
 
 @admin.register(Protocol)
 class ProtocolAdmin(ReasonAdmin):
-    list_display = ["reference", "title", "status", "approver", "starts_on", "expires_on", "max_exposures_per_group"]
+    list_display = ["reference", "title", "status", "approver", "starts_on", "expires_on", "max_exposures_per_group",
+                    "max_animals_total"]
     list_filter = ["status"]
     search_fields = ["reference", "title", "approver"]
     inlines = [AllowanceInline]
@@ -154,6 +155,15 @@ class DishAdmin(ReadOnlyAdmin):
     @admin.display(description="dish", ordering="cohort_id")
     def label(self, obj):
         return obj.label
+
+
+@admin.register(PeriodReport)
+class PeriodReportAdmin(ReadOnlyAdmin):
+    """Issued period reports: issued (and later signed) in the app, read here."""
+
+    list_display = ["pk", "period_from", "period_to", "scope_label", "issued_by", "issued_at", "manifest_sha256"]
+    list_filter = ["scope"]
+    date_hierarchy = "issued_at"
 
 
 @admin.register(Study)

@@ -67,14 +67,14 @@ def _protocols(manager, today):
         title="Light- and current-driven dispersal of blackworm aggregates", approver="Dr Halvard Pennick, Quillmoor "
         "animal welfare body", approved_on=today - timedelta(days=62), starts_on=today - timedelta(days=60),
         expires_on=today + timedelta(days=305), status=Protocol.Status.APPROVED, max_animals_per_trial=12,
-        max_exposures_per_group=3, min_rest_hours=20, max_cumulative_dose_mj_cm2=150,
+        max_exposures_per_group=3, min_rest_hours=20, max_cumulative_dose_mj_cm2=150, max_animals_total=600,
         notes="Animals are returned to their culture after the last exposure unless retired for histology.")
     old = protocol(
         "QAW-2025-007", [{"kind": Stimulus.THERMAL, "max_temp_step_c": 4.0, "max_temp_rate_c_min": 0.5}],
         title="Warm-step dispersal pilot", approver="Dr Halvard Pennick, Quillmoor animal welfare body",
         approved_on=today - timedelta(days=400), starts_on=today - timedelta(days=390),
         expires_on=today - timedelta(days=20), status=Protocol.Status.APPROVED, max_animals_per_trial=10,
-        max_exposures_per_group=2, min_rest_hours=48)
+        max_exposures_per_group=2, min_rest_hours=48, max_animals_total=120)
     draft = protocol(
         "QAW-2026-044", [{"kind": Stimulus.CHEMICAL, "substance": "caffeine", "max_concentration_um": 200.0}],
         title="Caffeine and clump cohesion (draft, awaiting review)", approver="(pending)",

@@ -94,6 +94,10 @@ class Protocol(models.Model):
         null=True, blank=True, validators=[Within("dose_mj_cm2")],
         help_text="Most light/UV dose one dish of animals may receive in total, mJ/cm². Empty: no light stimulus "
                   "approved.")
+    max_animals_total = models.PositiveIntegerField(
+        null=True, blank=True, validators=[Within("animals")],
+        help_text="Animals the approval allows over the protocol's whole life (drawn from tanks into cohorts). "
+                  "Empty: not set; the period report says so.")
     notes = models.TextField(max_length=MAX_TEXT, blank=True)
     history = HistoricalRecords()
 
@@ -108,6 +112,8 @@ class Protocol(models.Model):
             models.CheckConstraint(condition=within_q("min_rest_hours"), name="protocol_min_rest_bounds"),
             models.CheckConstraint(condition=within_q("max_animals_per_trial", "animals")
                                    & within_q("max_exposures_per_group", "exposures"), name="protocol_maxima_bounds"),
+            models.CheckConstraint(condition=within_q("max_animals_total", "animals"),
+                                   name="protocol_max_animals_total_bounds"),
         ]
 
     def __str__(self):
@@ -955,3 +961,41 @@ class ImageMeasurement(Voidable):
         if self.status != self.Status.DONE:
             return None
         return float(self.window_s) if self.censored else self.dispersal_time_s
+
+
+class PeriodReport(models.Model):
+    """A period report as issued: the period, the scope and the SHA-256 of its ZIP's manifest.
+
+    The manifest lists the SHA-256 of every section's CSV, so this one sum fixes what was issued: the
+    same period and scope on unchanged records gives the same sum again (experiments/period_report/).
+    A signature (issue 12, item 2) attaches to this record.
+    """
+
+    class Scope(models.TextChoices):
+        FACILITY = "facility", "Whole facility"
+        ROOM = "room", "Room"
+        PROTOCOL = "protocol", "Protocol"
+        STUDY = "study", "Study"
+
+    period_from = models.DateField(help_text="First day of the period (lab's local date).")
+    period_to = models.DateField(help_text="Last day of the period, included.")
+    scope = models.CharField(max_length=10, choices=Scope.choices, default=Scope.FACILITY)
+    scope_key = models.CharField(max_length=60, blank=True,
+                                 help_text="The room's id, the protocol's reference or the study's code; empty for the facility.")
+    scope_label = models.CharField(max_length=200, help_text="The scope in words, as printed on the report.")
+    issued_by = _user_fk()
+    issued_at = models.DateTimeField(default=timezone.now)
+    manifest = models.TextField(help_text="The ZIP's MANIFEST: one line per CSV, its SHA-256 and name.")
+    manifest_sha256 = models.CharField(max_length=64, help_text="SHA-256 of the manifest.")
+    history = HistoricalRecords()
+
+    class Meta:
+        ordering = ["-issued_at"]
+        constraints = [models.CheckConstraint(condition=Q(period_to__gte=models.F("period_from")),
+                                              name="period_report_to_after_from")]
+
+    def __str__(self):
+        return f"Period report {self.period_from:%Y-%m-%d} to {self.period_to:%Y-%m-%d} · {self.scope_label}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:period-report-issued", args=[self.pk])

@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import measurement_views, views
+from . import measurement_views, period_report_views, views
 
 app_name = "experiments"
 
@@ -39,4 +39,9 @@ urlpatterns = [
     path("measurements/<int:pk>/void/", measurement_views.measurement_void, name="measurement-void"),
     path("ledger/", views.ledger, name="ledger"),
     path("ledger.csv", views.ledger_csv, name="ledger-csv"),
+    path("reports/period/", period_report_views.period_report, name="period-report"),
+    path("reports/period/report.pdf", period_report_views.period_report_pdf, name="period-report-pdf"),
+    path("reports/period/report.zip", period_report_views.period_report_zip, name="period-report-zip"),
+    path("reports/period/issue/", period_report_views.period_report_issue, name="period-report-issue"),
+    path("reports/period/<int:pk>/", period_report_views.period_report_issued, name="period-report-issued"),
 ]

@@ -303,6 +303,7 @@ def case_admin_protocol(users):
         return {"title": "Light", "reference": f"BI-{next(_unique)}", "approver": "Board",
                 "approved_on": _day(today - timedelta(days=5)), "starts_on": _day(today),
                 "expires_on": _day(today + timedelta(days=300)), "status": "approved", "max_animals_per_trial": "12",
+                "max_animals_total": "400",
                 "max_exposures_per_group": "3", "min_rest_hours": "20", "max_cumulative_dose_mj_cm2": "150",
                 "notes": "", "change_reason": "approved",
                 **_inline("allowances", [{"kind": "uv", "wavelength_min_nm": "340", "wavelength_max_nm": "400",
@@ -312,6 +313,7 @@ def case_admin_protocol(users):
                                           "max_temp_rate_c_min": "", "substance": "", "max_concentration_um": "",
                                           "notes": ""}])}
     fields = {"approved_on": "date", "starts_on": "date", "expires_on": "date", "max_animals_per_trial": "number",
+              "max_animals_total": "number",
               "max_exposures_per_group": "number", "min_rest_hours": "number", "max_cumulative_dose_mj_cm2": "number",
               "allowances-0-wavelength_min_nm": "number", "allowances-0-max_irradiance_mw_cm2": "number",
               "allowances-0-max_pulse_count": "number", "allowances-0-max_temp_step_c": "number",

@@ -4,6 +4,7 @@ import itertools
 import json
 import tempfile
 import time
+from datetime import timedelta
 
 from django.contrib.auth.models import User
 from django.core.cache import cache
@@ -124,6 +125,8 @@ def build_cases() -> list[Case]:
                       notes=f"{fields} fields (rows as one JSON field, as the page script sends); rolled back"))
     cases += _batch_cases(tech, tanks)
     plot_tank = reverse("colonies:tank-plot", args=[tank.code])
+    today = timezone.localdate()
+    period = f"?period_from={today - timedelta(days=29)}&period_to={today}&scope=facility"
     cases += [
         Case("Tank list", TECHNICIAN, _get(tech, reverse("colonies:tank-list"))),
         Case(f"Tank page ({tank.code})", TECHNICIAN, _get(tech, reverse("colonies:tank-detail", args=[tank.code]))),
@@ -147,6 +150,9 @@ def build_cases() -> list[Case]:
              floor=_xlsx_floor),
         Case("Export: deviations CSV", MANAGER, _get(manager, reverse("colonies:deviation-csv"), True), kind="export"),
         Case("Export: ledger CSV", MANAGER, _get(manager, reverse("experiments:ledger-csv"), True), kind="export"),
+        Case("Period report, last 30 days", MANAGER, _get(manager, reverse("experiments:period-report") + period)),
+        Case("Period report ZIP, last 30 days", MANAGER, _get(manager, reverse("experiments:period-report-zip") + period),
+             notes="built in memory (one CSV per section), not streamed"),
         Case("Export: overview health CSV", MANAGER, _get(manager, reverse("colonies:health-overview-csv"), True),
              kind="export"),
         Case(f"Export: tank health CSV ({tank.code})", TECHNICIAN,

@@ -12,6 +12,7 @@ Two checks per page:
 One test walks all the pages (the demo is loaded once; the machine is small); problems are collected
 and reported together, so one run names every page that needs work.
 """
+from datetime import date, timedelta
 from pathlib import Path
 
 import pytest
@@ -69,6 +70,8 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
         ],
         "morwen": [  # manager
             ("deviation register", "/deviations/", True), ("exposure ledger", "/experiments/ledger/", True),
+            ("period report", f"/experiments/reports/period/?period_from={date.today() - timedelta(days=29)}"
+                              f"&period_to={date.today()}&scope=facility", True),
             ("care profile form", f"/species/{ids['species']}/edit/", True),
         ],
     }

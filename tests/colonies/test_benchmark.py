@@ -18,7 +18,8 @@ EXPECTED = [
     "Colony-health overview, new process", "Colony-health overview, nothing cached",
     "Overview figure, first", "Overview figure, cached", "Tank figure (LV-01), first", "Tank figure (LV-01), cached",
     "Labels, all tanks", "Deviation register", "Exposure ledger", "Export: checks CSV", "Export: checks XLSX",
-    "Export: deviations CSV", "Export: ledger CSV", "Export: overview health CSV", "Export: tank health CSV",
+    "Export: deviations CSV", "Export: ledger CSV", "Period report, last 30 days",
+    "Period report ZIP, last 30 days", "Export: overview health CSV", "Export: tank health CSV",
     "Export: study trials CSV", "Export: study Kaplan-Meier CSV", "Export: study dose-response CSV",
     "Job: scan_deviations", "Job: record rules over all checks", "Back office: checks list",
 ]

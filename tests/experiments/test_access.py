@@ -3,7 +3,9 @@
 One table for every URL name of experiments/urls.py; a new page not added here fails
 test_every_experiments_url_name_is_in_the_access_table.
 """
+from datetime import timedelta
 from types import SimpleNamespace
+from urllib.parse import quote
 
 import pytest
 from django.core.files.uploadedfile import SimpleUploadedFile
@@ -44,7 +46,11 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     done = models.ImageMeasurement.objects.create(**measured, frames=frames, frames_done=1, status="done",
                                                   dispersal_time_s=None, censored=True, finished_at=days_ago(1))
     failed = models.ImageMeasurement.objects.create(**measured, status="failed", error="unreadable")
+    issued = models.PeriodReport.objects.create(period_from=today() - timedelta(days=7), period_to=today(),
+                                                scope="facility", scope_label="Whole facility", issued_by=researcher,
+                                                manifest="", manifest_sha256="0" * 64)
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
+                           issued=issued,
                            attachment=attachment, claims=claims, measurement=done, failed=failed, dish=dish,
                            empty_dish=empty_dish, spare=spare)
 
@@ -94,7 +100,16 @@ URLS = {
     "experiments:measurement-csv": lambda w: reverse("experiments:measurement-csv", args=[w.measurement.pk]),
     "experiments:measurement-rerun": lambda w: reverse("experiments:measurement-rerun", args=[w.failed.pk]),
     "experiments:measurement-void": lambda w: reverse("experiments:measurement-void", args=[w.measurement.pk]),
+    "experiments:period-report": lambda w: reverse("experiments:period-report") + _period(),
+    "experiments:period-report-pdf": lambda w: reverse("experiments:period-report-pdf") + _period(),
+    "experiments:period-report-zip": lambda w: reverse("experiments:period-report-zip") + _period(),
+    "experiments:period-report-issue": lambda w: reverse("experiments:period-report-issue"),
+    "experiments:period-report-issued": lambda w: reverse("experiments:period-report-issued", args=[w.issued.pk]),
 }
+
+
+def _period() -> str:
+    return f"?period_from={today() - timedelta(days=7)}&period_to={today()}&scope=facility"
 
 
 def _trial_post(w):
@@ -128,6 +143,8 @@ POST_DATA = {
                                               "threshold": "0.5", "polarity": "dark", "min_area_px": "12"},
     "experiments:measurement-rerun": lambda w: {},
     "experiments:measurement-void": lambda w: {"reason": "Wrong dish"},
+    "experiments:period-report-issue": lambda w: {"period_from": str(today() - timedelta(days=7)),
+                                                  "period_to": str(today()), "scope": "facility"},
 }
 
 ACCESS = [
@@ -169,6 +186,11 @@ ACCESS = [
     ("experiments:measurement-csv", "get", READ),
     ("experiments:measurement-rerun", "post", RUN),
     ("experiments:measurement-void", "post", RUN),
+    ("experiments:period-report", "get", MANAGE),
+    ("experiments:period-report-pdf", "get", MANAGE),
+    ("experiments:period-report-zip", "get", MANAGE),
+    ("experiments:period-report-issue", "post", MANAGE),
+    ("experiments:period-report-issued", "get", MANAGE),
 ]
 
 WRONG_METHODS = [
@@ -184,6 +206,9 @@ WRONG_METHODS = [
     ("experiments:ledger", "post"), ("experiments:ledger-csv", "post"), ("experiments:measurement-new", "get"),
     ("experiments:measurement-progress", "post"), ("experiments:measurement-chart", "post"),
     ("experiments:measurement-csv", "post"), ("experiments:measurement-rerun", "get"), ("experiments:measurement-void", "get"),
+    ("experiments:period-report", "post"), ("experiments:period-report-pdf", "post"),
+    ("experiments:period-report-zip", "post"), ("experiments:period-report-issue", "get"),
+    ("experiments:period-report-issued", "post"),
 ]
 
 
@@ -191,7 +216,7 @@ def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
     return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
                                              models.Override, models.Attachment, models.SlotClaim,
-                                             models.ImageMeasurement))
+                                             models.ImageMeasurement, models.PeriodReport))
 
 
 def _request(client, world, name, method):
@@ -214,7 +239,8 @@ def test_anonymous_is_redirected_to_login_and_nothing_is_saved(client, world, na
     before = _state()
     response = _request(client, world, name, method)
     assert response.status_code == 302
-    assert response["Location"] == f"{reverse('login')}?next={URLS[name](world)}"
+    # Django quotes the next URL (its query string too) as QueryDict.urlencode(safe="/") does.
+    assert response["Location"] == f"{reverse('login')}?next={quote(URLS[name](world), safe='/')}"
     assert _state() == before
 
 

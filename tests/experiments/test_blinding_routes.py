@@ -12,6 +12,7 @@ stimulus values (chosen to appear nowhere else). Each person may see only the tr
 the slots they claimed (experiments/blinding.py). After unblinding everyone sees.
 """
 import re
+from datetime import timedelta
 from types import SimpleNamespace
 
 import pytest
@@ -23,7 +24,7 @@ from django.urls import get_resolver, reverse
 from colonies.models import Deviation
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 from experiments import services
-from experiments.models import CAUTION_ELECTRICAL, CAUTION_UV, ImageMeasurement, Stimulus
+from experiments.models import CAUTION_ELECTRICAL, CAUTION_UV, ImageMeasurement, PeriodReport, Stimulus
 from tests.experiments.builders import (ELECTRICAL, UV, days_ago, make_cohort, make_protocol, make_study, today,
                                         uv_values)
 from tests.factories import make_user
@@ -79,7 +80,12 @@ def world(db, settings, tmp_path):
     services.claim_slot(user=people.operator_b, study=study, slot=slot_of[SHAM])  # claimed, not yet run
     booking = services.book(user=people.owner, protocol=protocol, tank=cohort.origin_tank, animals=5,
                             needed_on=today())
+    period_report = PeriodReport.objects.create(  # an issued period report over the trials' days
+        period_from=today() - timedelta(days=12), period_to=today(), scope=PeriodReport.Scope.STUDY,
+        scope_key=study.code, scope_label=f"Study {study.code}", issued_by=people.manager, manifest="",
+        manifest_sha256="0" * 64)
     return SimpleNamespace(people=people, protocol=protocol, cohort=cohort, study=study, glow=glow, pulse=pulse,
+                           period_report=period_report,
                            attachment=attachment, measurement=measurement, booking=booking, trials=[glow, pulse], slot_of=slot_of,
                            deviation=Deviation.objects.get())
 
@@ -113,7 +119,7 @@ def _values(name: str, param: str, w) -> list:
         by_name = {"attachment-add": w.trials, "attachment": [w.attachment], "measurement-new": w.trials,
                    "dish-new": [w.cohort], "dish-end": [w.cohort]}
         by_prefix = {"protocol": [w.protocol], "booking": [w.booking], "cohort": [w.cohort], "trial": w.trials,
-                     "measurement": [w.measurement], "dish": [w.glow.dish]}
+                     "measurement": [w.measurement], "dish": [w.glow.dish], "period": [w.period_report]}
         objects = by_name.get(name) or by_prefix.get(name.split("-")[0])
         if objects:
             return [o.pk for o in objects]
@@ -133,6 +139,9 @@ def experiments_urls(w) -> list[str]:
         reverse("experiments:ledger") + "?kind=uv", reverse("experiments:ledger") + "?kind=electrical",
         reverse("experiments:ledger-csv") + "?kind=uv", reverse("experiments:ledger") + "?overridden=on",
         reverse("experiments:trial-new", args=[study]) + f"?slot={w.slot_of[SHAM]}",
+        *(reverse("experiments:period-report") + f"?period_from={today() - timedelta(days=12)}&period_to={today()}"
+          + scope for scope in ("&scope=facility", f"&scope=study&study={study}",
+                                f"&scope=protocol&protocol={w.protocol.reference}")),
     ]
 
 
