@@ -22,7 +22,7 @@ from .filters import CheckFilter, TankFilter
 from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
-from .history import history_index, page_entries
+from .history import history_index, page_entries, versions_of
 from .models import Census, Check, DeadRemoval, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
@@ -421,28 +421,14 @@ HISTORY_PAGE_SIZE = 200
 @role_required(*READ_ROLES)
 def check_detail(request, pk):
     check = get_object_or_404(Check.objects.select_related("tank__species", "recorded_by", "voided_by"), pk=pk)
-    history = check.history.select_related("history_user").order_by("-history_date")
     params = check.tank.relevant_parameters()
     return render(request, "colonies/check_detail.html", {
-        "check": check, "history": _diffs(history, params), "params": params,
+        "check": check, "entries": versions_of("Check", check.history.all()), "params": params,
         "flag_text": _flag_text(check),
         "cells": [{"param": p, "value": p.format(check.values().get(p.key)),
                    "side": (check.flags.get(p.key) or {}).get("side")}
                   for p in params + derived.for_habitat(check.tank.species.habitat)],
     })
-
-
-def _diffs(history, params):
-    entries = list(history)
-    out = []
-    for i, h in enumerate(entries):
-        prev = entries[i + 1] if i + 1 < len(entries) else None
-        changes = []
-        if prev is not None:
-            delta = h.diff_against(prev)
-            changes = [(c.field, c.old, c.new) for c in delta.changes if c.field not in ("flags",)]
-        out.append({"h": h, "changes": changes})
-    return out
 
 
 @require_http_methods(["GET", "POST"])
