@@ -7,13 +7,15 @@ written by colonies/history_format.py (labels, units, values the lab's way). The
 (`tank_sources`) and every other record's page use the same two functions.
 """
 from collections import defaultdict
+from collections.abc import Callable
 from typing import NamedTuple
 
 from django.db import models
 from django.db.models import IntegerField, Q, Value
 
 from . import history_format
-from .models import Census, Check, DeadRemoval, Feeding, Split, SplitPart, WaterChange
+from . import derived
+from .models import CareTarget, Census, Check, DeadRemoval, Feeding, MeasurementPlan, Split, SplitPart, WaterChange
 
 FIELD_SKIP = {"flags", "history_id", "history_date", "history_change_reason", "history_type", "history_user"}
 TYPE_WORD = {"+": "created", "~": "changed", "-": "deleted"}
@@ -23,6 +25,7 @@ class Source(NamedTuple):
     label: str
     versions: models.QuerySet  # a history model's queryset
     hidden: frozenset = frozenset()  # fields the viewer may not see (experiments/blinding.py)
+    name: Callable | None = None  # version -> how the entry names its record (default: "<label> #<id>")
 
 
 def diff(new, old, skip=frozenset()) -> list[tuple[str, object, object]]:
@@ -59,7 +62,8 @@ def _entries_for(source: Source) -> list[dict]:
         prev = None
         for h in versions:
             out.append({"when": h.history_date, "who": h.history_user,
-                        "who_name": h.history_user.get_username() if h.history_user else "system", "what": f"{source.label} #{h.id}",
+                        "who_name": h.history_user.get_username() if h.history_user else "system",
+                        "what": source.name(h) if source.name else f"{source.label} #{h.id}",
                         "action": _action(h, prev), "reason": h.history_change_reason or "",
                         "changes": [] if prev is None else diff(h, prev, source.hidden),
                         "object_id": h.id, "history_id": h.history_id})
@@ -89,6 +93,17 @@ def tank_sources(tank) -> list[Source]:
             (DeadRemoval, "Dead removed"))),
         Source("Split", Split.history.filter(Q(source_id=tank.pk) | Q(id__in=split_ids))),
         Source("Split part", SplitPart.history.filter(Q(destination_id=tank.pk) | Q(split__source_id=tank.pk))),
+    ]
+
+
+def species_sources(species) -> list[Source]:
+    """The species' care profile: the species row, its care targets and its measurement plans."""
+    return [
+        Source("Species", species.history.all(), name=lambda h: "Care profile"),
+        Source("Care target", CareTarget.history.filter(species_id=species.pk),
+               name=lambda h: f"Care target: {derived.label_for(h.parameter).label_with_unit}"),
+        Source("Measurement plan", MeasurementPlan.history.filter(species_id=species.pk),
+               name=lambda h: f"Measurement plan: {derived.label_for(h.parameter).label_with_unit}"),
     ]
 
 

@@ -15,14 +15,15 @@ from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import batch, check_export, derived, due_readings, health_forms, health_series, parameters, prefill, round_rows, services
+from . import (batch, check_export, derived, due_readings, health_forms, health_series, history_format, parameters, prefill,
+               round_rows, services)
 from . import labels as labels_module
 from .export_stream import csv_response
 from .filters import CheckFilter, TankFilter
 from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
-from .history import history_index, page_entries, versions_of
+from .history import history_index, page_entries, species_sources, versions_of
 from .models import Census, Check, DeadRemoval, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
@@ -488,10 +489,19 @@ def species_list(request):
 def species_detail(request, pk):
     species = get_object_or_404(Species, pk=pk)
     targets = {t.parameter: t for t in species.targets.all()}
-    rows = [(p, targets.get(p.key)) for p in species.relevant_parameters()]
+    # Measured parameters, then the values derived from them (a target on DO % saturation or NH3).
+    rows = [(p, targets.get(p.key), getattr(p, "method", "")) for p in
+            (*species.relevant_parameters(), *derived.for_habitat(species.habitat))]
     plans = [(parameters.BY_KEY[key], plan) for key, plan in species.plans().items()]
-    return render(request, "colonies/species_detail.html", {"species": species, "rows": rows, "plans": plans,
-                                                             "sources": sorted(species.sources.items())})
+    sources = species_sources(species)
+    changes = Paginator(history_index(sources), SPECIES_HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
+    return render(request, "colonies/species_detail.html", {
+        "species": species, "rows": rows, "plans": plans,
+        "sources": [(history_format.key_label(Species, k), v) for k, v in sorted(species.sources.items())],
+        "entries": page_entries(sources, changes.object_list), "page": changes})
+
+
+SPECIES_HISTORY_PAGE_SIZE = 50
 
 
 @require_http_methods(["GET", "POST"])
