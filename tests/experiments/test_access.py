@@ -94,6 +94,11 @@ URLS = {
     "experiments:measurement-csv": lambda w: reverse("experiments:measurement-csv", args=[w.measurement.pk]),
     "experiments:measurement-rerun": lambda w: reverse("experiments:measurement-rerun", args=[w.failed.pk]),
     "experiments:measurement-void": lambda w: reverse("experiments:measurement-void", args=[w.measurement.pk]),
+    "experiments:protocol-history": lambda w: reverse("experiments:protocol-history", args=[w.protocol.pk]),
+    "experiments:booking-history": lambda w: reverse("experiments:booking-history", args=[w.booking.pk]),
+    "experiments:cohort-history": lambda w: reverse("experiments:cohort-history", args=[w.cohort.pk]),
+    "experiments:study-history": lambda w: reverse("experiments:study-history", args=[w.study.code]),
+    "experiments:trial-history": lambda w: reverse("experiments:trial-history", args=[w.trial.pk]),
 }
 
 
@@ -169,6 +174,11 @@ ACCESS = [
     ("experiments:measurement-csv", "get", READ),
     ("experiments:measurement-rerun", "post", RUN),
     ("experiments:measurement-void", "post", RUN),
+    ("experiments:protocol-history", "get", READ),
+    ("experiments:booking-history", "get", READ),
+    ("experiments:cohort-history", "get", READ),
+    ("experiments:study-history", "get", READ),
+    ("experiments:trial-history", "get", READ),
 ]
 
 WRONG_METHODS = [
@@ -184,6 +194,8 @@ WRONG_METHODS = [
     ("experiments:ledger", "post"), ("experiments:ledger-csv", "post"), ("experiments:measurement-new", "get"),
     ("experiments:measurement-progress", "post"), ("experiments:measurement-chart", "post"),
     ("experiments:measurement-csv", "post"), ("experiments:measurement-rerun", "get"), ("experiments:measurement-void", "get"),
+    ("experiments:protocol-history", "post"), ("experiments:booking-history", "post"), ("experiments:cohort-history", "post"),
+    ("experiments:study-history", "post"), ("experiments:trial-history", "delete"),
 ]
 
 
