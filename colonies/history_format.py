@@ -106,7 +106,7 @@ def key_label(model: type[models.Model] | None, key: str) -> str:
     if model is not None:
         return field_label(model, key)
     entry = parameters.BY_KEY.get(key) or derived.BY_KEY.get(key)
-    return entry.label_with_unit if entry else _words(key)
+    return entry.label_with_unit if entry else _from_name(key, numeric=True).heading
 
 
 def number_text(value: float | int, decimals: int | None = None) -> str:
