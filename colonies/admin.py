@@ -47,9 +47,11 @@ class ReadableHistoryHelper(HistoricalRecordContextHelper):
 
     def context_for_delta_changes(self, delta):
         # The library gives related rows as objects here (prefetched with the versions).
+        # The library's own preparation turns many-to-many rows into the related objects.
         return [{"field": c.label, "old": conditional_escape(c.old), "new": conditional_escape(c.new)}
-                for c in (history_format.change(self.model, ch.field, ch.old, ch.new) for ch in delta.changes
-                          if ch.field not in self.hidden and ch.field != "flags")]
+                for c in (history_format.change(self.model, ch.field, self.prepare_delta_change_value(ch, ch.old),
+                                                self.prepare_delta_change_value(ch, ch.new))
+                          for ch in delta.changes if ch.field not in self.hidden and ch.field != "flags")]
 
 
 class HistoryAdmin(NoDeleteMixin, SimpleHistoryAdmin):

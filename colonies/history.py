@@ -12,10 +12,12 @@ from typing import NamedTuple
 
 from django.db import models
 from django.db.models import IntegerField, Q, Value
+from simple_history.utils import get_m2m_reverse_field_name
 
 from . import history_format
 from . import derived
-from .models import CareTarget, Census, Check, DeadRemoval, Feeding, MeasurementPlan, Split, SplitPart, WaterChange
+from .models import (CareTarget, Census, Check, DeadRemoval, Feeding, MeasurementPlan, Split, SplitPart,
+                     TankMeasurementPlan, WaterChange)
 
 FIELD_SKIP = {"flags", "history_id", "history_date", "history_change_reason", "history_type", "history_user"}
 TYPE_WORD = {"+": "created", "~": "changed", "-": "deleted"}
@@ -28,10 +30,32 @@ class Source(NamedTuple):
     name: Callable | None = None  # version -> how the entry names its record (default: "<label> #<id>")
 
 
-def diff(new, old, skip=frozenset()) -> list[tuple[str, object, object]]:
-    """(field, old value, new value) of every field that changed between two versions (FKs as ids)."""
-    return [(c.field, c.old, c.new) for c in new.diff_against(old).changes
-            if c.field not in FIELD_SKIP and c.field not in skip]
+def diff(new, old, skip=frozenset(), m2m=None) -> list[tuple[str, object, object]]:
+    """(field, old value, new value) of every field that changed between two versions (FKs as ids).
+    Many-to-many fields (a tank's lineage) from `m2m`, {(history_id, field): ids}, read by `_m2m_ids`
+    in one query per field for all versions: the library's diff reads them twice per version."""
+    m2m_names = [f.name for f in new._history_m2m_fields]
+    changes = [(c.field, c.old, c.new) for c in new.diff_against(old, excluded_fields=m2m_names).changes
+               if c.field not in FIELD_SKIP and c.field not in skip]
+    for name in m2m_names:
+        before, after = (m2m or {}).get((old.history_id, name), ()), (m2m or {}).get((new.history_id, name), ())
+        if before != after and name not in skip:
+            changes.append((name, before, after))
+    return changes
+
+
+def _m2m_ids(history_model, versions) -> dict[tuple[int, str], tuple]:
+    """{(history_id, m2m field): sorted ids of the related rows in that version}: one query per field."""
+    out: dict[tuple[int, str], tuple] = {}
+    for field in history_model._history_m2m_fields:
+        meta = history_model._meta  # the library names the version's through table <HistoricalModel>_<field>
+        through = meta.apps.get_model(meta.app_label, f"{history_model.__name__}_{field.name}")
+        target = get_m2m_reverse_field_name(field)
+        rows = through.objects.filter(history_id__in=[v.history_id for v in versions]).values_list(
+            "history_id", f"{target}_id").order_by("history_id", f"{target}_id")
+        for history_id, related_id in rows:
+            out[(history_id, field.name)] = out.get((history_id, field.name), ()) + (related_id,)
+    return out
 
 
 def readable(model, raw_lists) -> list[list[history_format.Change]]:
@@ -43,6 +67,8 @@ def readable(model, raw_lists) -> list[list[history_format.Change]]:
             field = model._meta.get_field(name)
             if isinstance(field, models.ForeignKey):
                 wanted[field.related_model].update(v for v in (old, new) if v is not None)
+            elif isinstance(field, models.ManyToManyField):
+                wanted[field.related_model].update((*old, *new))
     related = {}
     for related_model, ids in wanted.items():
         for pk, obj in related_model._default_manager.select_related().in_bulk(ids).items():
@@ -53,6 +79,7 @@ def readable(model, raw_lists) -> list[list[history_format.Change]]:
 
 def _entries_for(source: Source) -> list[dict]:
     entries = list(source.versions.select_related("history_user").order_by("id", "-history_date"))
+    m2m = _m2m_ids(source.versions.model, entries) if entries and entries[0]._history_m2m_fields else {}
     by_object: dict[int, list] = {}
     for h in entries:
         by_object.setdefault(h.id, []).append(h)
@@ -65,7 +92,7 @@ def _entries_for(source: Source) -> list[dict]:
                         "who_name": h.history_user.get_username() if h.history_user else "system",
                         "what": source.name(h) if source.name else f"{source.label} #{h.id}",
                         "action": _action(h, prev), "reason": h.history_change_reason or "",
-                        "changes": [] if prev is None else diff(h, prev, source.hidden),
+                        "changes": [] if prev is None else diff(h, prev, source.hidden, m2m),
                         "object_id": h.id, "history_id": h.history_id})
             prev = h
     model = source.versions.model.instance_type
@@ -88,6 +115,7 @@ def tank_sources(tank) -> list[Source]:
     return [
         Source("Tank", tank.history.all()),
         Source("Tank target", tank.target_overrides.model.history.filter(tank_id=tank.pk)),
+        Source("Tank measurement plan", TankMeasurementPlan.history.filter(tank_id=tank.pk)),
         *(Source(label, model.history.filter(tank_id=tank.pk)) for model, label in (
             (Check, "Check"), (Feeding, "Feeding"), (WaterChange, "Water change"), (Census, "Census"),
             (DeadRemoval, "Dead removed"))),

@@ -150,13 +150,17 @@ def value_text(model: type[models.Model], name: str, value: Any,
 
     A foreign key's value is either the related object (str of it) or its id, looked up in
     `related` as {(related model, id): text}."""
-    if value is None or value == "":
+    if value is None or value == "" or value == () or value == []:
         return EMPTY
     info = field_info(model, name)
     try:
         field = model._meta.get_field(name)
     except Exception:
         field = None
+    if isinstance(field, models.ManyToManyField):  # ids, or the library's rows in the back office
+        if isinstance(value, (list, tuple)) and all(isinstance(v, int) for v in value):
+            return ", ".join(sorted((related or {}).get((field.related_model, v), f"#{v}") for v in value)) or EMPTY
+        return ", ".join(str(v) for v in value) or EMPTY
     if isinstance(field, models.ForeignKey):
         if not isinstance(value, (int, str)):  # the related object itself (or the library's DeletedObject)
             return str(value)
