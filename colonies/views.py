@@ -450,7 +450,8 @@ def check_edit(request, pk):
         services.update_check(user=request.user, check=check, row=form.row(), reason=reason.cleaned_data["reason"])
         messages.success(request, f"Check corrected; the earlier values stay in its history.")
         return redirect(check)
-    return render(request, "colonies/check_edit.html", {"check": check, "form": form, "reason": reason},
+    return render(request, "colonies/check_edit.html", {"check": check, "form": form, "reason": reason,
+                                                        "entries": versions_of("Check", check.history.all())},
                   status=400 if request.method == "POST" else 200)
 
 
@@ -470,7 +471,9 @@ def record_void(request, kind, pk):
         services.void_record(user=request.user, record=record, reason=form.cleaned_data["reason"])
         messages.success(request, f"Voided: {record}. It stays in the tank's history.")
         return redirect(record.tank)
-    return render(request, "colonies/void.html", {"record": record, "form": form, "kind": kind},
+    return render(request, "colonies/void.html", {"record": record, "form": form, "kind": kind,
+                                                  "entries": versions_of(model._meta.verbose_name.capitalize(),
+                                                                         record.history.all())},
                   status=400 if request.method == "POST" else 200)
 
 

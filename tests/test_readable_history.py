@@ -99,7 +99,7 @@ def world(db, technician, researcher, manager, superuser, settings, tmp_path):
     TankTarget.objects.create(tank=tank, parameter="temp_c", low=18, high=22, reason="warm room")
     TankMeasurementPlan.objects.create(tank=tank, parameter="ph", cadence="daily", reason="new culture")
     check = make_check(tank, user=technician, ph=7.0, temp_c=20.0, conductivity_us_cm=464.0)
-    Feeding.objects.create(tank=tank, recorded_by=technician, food="liver paste", amount=1.0, unit="g")
+    feeding = Feeding.objects.create(tank=tank, recorded_by=technician, food="liver paste", amount=1.0, unit="g")
     WaterChange.objects.create(tank=tank, recorded_by=technician, percent=50, source_water="tap, aged")
     Census.objects.create(tank=tank, recorded_by=technician, method=Census.Method.DIRECT, direct_count=100,
                           estimate=100, estimate_lower=100, estimate_upper=100)
@@ -123,7 +123,7 @@ def world(db, technician, researcher, manager, superuser, settings, tmp_path):
                                     requested_by=researcher, frames=[{"t_s": 0.0, "clusters": 1}])
     booking = services.book(user=researcher, protocol=protocol, tank=cohort.origin_tank, animals=5,
                             needed_on=timezone.localdate())
-    return SimpleNamespace(species=species, tank=tank, check=check, deviation=deviation, protocol=protocol,
+    return SimpleNamespace(species=species, tank=tank, check=check, feeding=feeding, deviation=deviation, protocol=protocol,
                            cohort=cohort, study=study, trial=trial, booking=booking, technician=technician,
                            researcher=researcher, manager=manager, superuser=superuser)
 
@@ -145,6 +145,8 @@ def app_pages(w) -> dict[str, tuple[list[type], frozenset]]:
             [TankTarget, TankMeasurementPlan, Feeding, WaterChange, Census, DeadRemoval, Split, SplitPart,
              type(w.tank), type(w.check)], frozenset()),
         reverse("colonies:check-detail", args=[w.check.pk]): ([type(w.check)], frozenset()),
+        reverse("colonies:check-edit", args=[w.check.pk]): ([type(w.check)], frozenset()),
+        reverse("colonies:void", args=["feeding", w.feeding.pk]): ([Feeding], frozenset()),
         reverse("colonies:deviation-detail", args=[w.deviation.pk]): ([Deviation], frozenset({"evidence"})),
         reverse("colonies:species-detail", args=[w.species.pk]): ([type(w.species), CareTarget, MeasurementPlan],
                                                                   frozenset()),
