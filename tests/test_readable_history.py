@@ -16,7 +16,7 @@ from types import SimpleNamespace
 import pytest
 from django.apps import apps
 from django.contrib import admin
-from django.contrib.auth.models import User
+from django.core.files.uploadedfile import SimpleUploadedFile
 from django.db import connection, models
 from django.test.utils import CaptureQueriesContext
 from django.urls import reverse
@@ -29,7 +29,7 @@ from colonies.models import (CareTarget, Census, DeadRemoval, Deviation, Feeding
 from experiments import services
 from experiments.models import Attachment, ImageMeasurement, Override, Study
 from tests.experiments.builders import make_cohort, make_protocol, make_stocked_tank, make_study, record
-from tests.factories import make_check, make_species, make_tank, make_user
+from tests.factories import make_check, make_species, make_tank
 
 PNG = b"\x89PNG\r\n\x1a\n" + b"\x00" * 16  # the PNG signature (ISO/IEC 15948 §5.2)
 
@@ -93,7 +93,8 @@ def change_every_field(obj, stamp) -> set[str]:
 @pytest.fixture
 def world(db, technician, researcher, manager, superuser, settings, tmp_path):
     settings.MEDIA_ROOT = tmp_path
-    species = make_species(targets={"ph": (6.0, 8.0), "do_pct_sat": (30.0, None)}, sources={"feeding_interval_days": "x"})
+    species = make_species(targets={"ph": (6.0, 8.0), "do_pct_sat": (30.0, None)},
+                           sources={"feeding_interval_days": "x"})
     MeasurementPlan.objects.create(species=species, parameter="ph", cadence="daily")
     tank = make_tank(species=species, code="RH-01")
     TankTarget.objects.create(tank=tank, parameter="temp_c", low=18, high=22, reason="warm room")
@@ -116,15 +117,14 @@ def world(db, technician, researcher, manager, superuser, settings, tmp_path):
     trial = record(study, cohort, researcher).trial
     Override.objects.create(trial=trial, cohort=cohort, protocol=protocol, recorded_by=manager, reason="agreed",
                             breaches=["rest: 2 h < 20 h"])
-    from django.core.files.uploadedfile import SimpleUploadedFile
     services.add_attachment(user=researcher, trial=trial, kind="photo", upload=SimpleUploadedFile("d.png", PNG))
     ImageMeasurement.objects.create(trial=trial, source="photos", sha256="0" * 64, threshold=0.5, window_s=600,
                                     frames_total=1, frames_done=1, status="done", censored=True,
                                     requested_by=researcher, frames=[{"t_s": 0.0, "clusters": 1}])
     booking = services.book(user=researcher, protocol=protocol, tank=cohort.origin_tank, animals=5,
                             needed_on=timezone.localdate())
-    return SimpleNamespace(species=species, tank=tank, check=check, feeding=feeding, deviation=deviation, protocol=protocol,
-                           cohort=cohort, study=study, trial=trial, booking=booking, technician=technician,
+    return SimpleNamespace(species=species, tank=tank, check=check, feeding=feeding, deviation=deviation,
+                           protocol=protocol, cohort=cohort, study=study, trial=trial, booking=booking, technician=technician,
                            researcher=researcher, manager=manager, superuser=superuser)
 
 
