@@ -35,8 +35,8 @@ def diff(new, old, skip=frozenset(), m2m=None) -> list[tuple[str, object, object
     Many-to-many fields (a tank's lineage) from `m2m`, {(history_id, field): ids}, read by `_m2m_ids`
     in one query per field for all versions: the library's diff reads them twice per version."""
     m2m_names = [f.name for f in new._history_m2m_fields]
-    changes = [(c.field, c.old, c.new) for c in new.diff_against(old, excluded_fields=m2m_names).changes
-               if c.field not in FIELD_SKIP and c.field not in skip]
+    changes = [(c.field, c.old, c.new)
+               for c in new.diff_against(old, excluded_fields={*m2m_names, *skip, *FIELD_SKIP}).changes]
     for name in m2m_names:
         before, after = (m2m or {}).get((old.history_id, name), ()), (m2m or {}).get((new.history_id, name), ())
         if before != after and name not in skip:
@@ -175,10 +175,14 @@ def record_history(subject) -> list[dict]:
 
 def versions_of(label: str, versions, hidden=frozenset(), limit: int | None = None, no_user: str = "") -> list[dict]:
     """The newest `limit` (or all) versions of one record, for the history section of its own page.
-    `no_user`: who made a version saved by no person (the deviation rules)."""
-    sources = [Source(label, versions, frozenset(hidden))]
-    rows = history_index(sources)
-    entries = page_entries(sources, list(rows if limit is None else rows[:limit]))
+    Loads those and the one before them only (a deviation may have hundreds of versions, each with
+    its evidence list). `no_user`: who made a version saved by no person (the deviation rules)."""
+    hidden = frozenset(hidden)
+    newest = versions.order_by("-history_date", "-history_id").values_list("history_id", flat=True)
+    ids = list(newest if limit is None else newest[:limit + 1])
+    source = Source(label, versions.filter(history_id__in=ids).defer(*hidden), hidden)
+    entries = sorted(_entries_for(source), key=lambda e: (e["when"], e["history_id"]), reverse=True)
+    entries = entries if limit is None else entries[:limit]
     for entry in entries:
         if no_user and entry["who"] is None:
             entry["who_name"] = no_user

@@ -253,3 +253,16 @@ def test_a_lineage_change_shows_the_founding_tanks_by_code(client, world):
     client.force_login(world.technician)
     text = visible_text(client.get(reverse("colonies:tank-history", args=[target.code])))
     assert f"Founded from : {history_format.EMPTY} → RH-01" in text
+
+
+def test_a_deviation_page_shows_its_newest_versions_each_against_the_one_before(client, world, monkeypatch):
+    from colonies import deviation_views
+    monkeypatch.setattr(deviation_views, "HISTORY_SHOWN", 3)
+    start = timezone.now() + timedelta(minutes=1)
+    for i in range(5):
+        change_every_field(world.deviation, start + timedelta(seconds=i))
+    client.force_login(world.technician)
+    entries = client.get(reverse("colonies:deviation-detail", args=[world.deviation.pk])).context["entries"]
+    assert len(entries) == 3 and all(e["action"] == "changed" and e["changes"] for e in entries)
+    assert [e["when"] for e in entries] == sorted((e["when"] for e in entries), reverse=True)
+    assert entries[-1]["when"] == start + timedelta(seconds=2)  # the oldest shown still has its changes
