@@ -65,7 +65,10 @@ def _other_value(model, field, current):
     if isinstance(field, models.DateField):
         return (current or timezone.localdate()) + timedelta(days=1)
     if isinstance(field, (models.CharField, models.TextField, models.FileField)):
-        return f"{current or ''}x"
+        current = current or ""
+        if field.max_length and len(current) >= field.max_length:  # full: change the last character instead
+            return current[:-1] + ("y" if current.endswith("x") else "x")
+        return f"{current}x"
     return None
 
 
