@@ -10,9 +10,11 @@ from django.contrib import admin
 from django.contrib.auth.admin import GroupAdmin, UserAdmin
 from django.contrib.auth.models import Group, User
 from django.core.exceptions import PermissionDenied
+from django.utils.html import conditional_escape
 from simple_history.admin import SimpleHistoryAdmin
+from simple_history.template_utils import HistoricalRecordContextHelper
 
-from . import services
+from . import history_format, services
 from .forms import CareTargetForm, MeasurementPlanForm, TankMeasurementPlanForm, TankTargetForm, reason_field
 from .models import (CareTarget, Census, Check, DeadRemoval, Deviation, Feeding, MeasurementPlan, Room, Species, Split,
                      SplitPart, Tank, TankMeasurementPlan, TankTarget, WaterChange)
@@ -35,10 +37,30 @@ class NoDeleteMixin:
         return actions
 
 
+class ReadableHistoryHelper(HistoricalRecordContextHelper):
+    """The back office's list of changes between versions, written as the app's pages write them
+    (colonies/history_format.py): labels and units, values the lab's way. `hidden`: fields left out."""
+
+    def __init__(self, model, historical_record, *, hidden=frozenset()):
+        super().__init__(model, historical_record)
+        self.hidden = hidden
+
+    def context_for_delta_changes(self, delta):
+        # The library gives related rows as objects here (prefetched with the versions).
+        # The library's own preparation turns many-to-many rows into the related objects.
+        return [{"field": c.label, "old": conditional_escape(c.old), "new": conditional_escape(c.new)}
+                for c in (history_format.change(self.model, ch.field, self.prepare_delta_change_value(ch, ch.old),
+                                                self.prepare_delta_change_value(ch, ch.new))
+                          for ch in delta.changes if ch.field not in self.hidden and ch.field != "flags")]
+
+
 class HistoryAdmin(NoDeleteMixin, SimpleHistoryAdmin):
     """Base of every back-office page with a history: read the versions, never revert to one."""
 
     object_history_list_template = "admin/vermilog_history_list.html"
+
+    def get_historical_record_context_helper(self, request, historical_record):
+        return ReadableHistoryHelper(self.model, historical_record)
 
     def revert_disabled(self, request, obj=None):
         return True

@@ -15,6 +15,7 @@ from . import deviation_export
 from .export_stream import csv_response
 from .filters import DeviationFilter
 from .forms import reason_field
+from .history import versions_of
 from .models import Deviation
 from .idempotency import once_per_submission
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
@@ -89,11 +90,20 @@ def register_csv(request):
 @role_required(TECHNICIAN, RESEARCHER)
 def detail(request, pk):
     dev = get_object_or_404(_register_qs(), pk=pk)
-    history = dev.history.select_related("history_user").order_by("-history_date")[:50]
+    history = _history(dev)
     return render(request, "colonies/deviation_detail.html",
                   # Actions typed with the flagged values are the starting point: nobody types them twice.
-                  {"dev": dev, "form": CloseForm(initial={"corrective_action": dev.corrective_action}), "history": history,
+                  {"dev": dev, "form": CloseForm(initial={"corrective_action": dev.corrective_action}), "entries": history,
                    "evidence": _evidence_rows(dev), "close_refusal": dev.close_refusal(request.user)})
+
+
+def _history(dev):
+    """The deviation's newest versions; its evidence list is the table above, so its changes show as the count."""
+    return versions_of("Deviation", dev.history.all(), hidden={"evidence"}, limit=HISTORY_SHOWN,
+                       no_user="rule engine")
+
+
+HISTORY_SHOWN = 50
 
 
 @require_POST
@@ -127,7 +137,7 @@ def close(request, pk):
         else:
             messages.success(request, f"Closed: {dev}.")
             return redirect(dev)
-    history = dev.history.select_related("history_user").order_by("-history_date")[:50]
+    history = _history(dev)
     return render(request, "colonies/deviation_detail.html",
-                  {"dev": dev, "form": form, "history": history, "evidence": _evidence_rows(dev), "close_refusal": None},
+                  {"dev": dev, "form": form, "entries": history, "evidence": _evidence_rows(dev), "close_refusal": None},
                   status=400)

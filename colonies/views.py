@@ -15,14 +15,15 @@ from django.utils.html import escape, format_html_join
 from django.utils.safestring import mark_safe
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
 
-from . import batch, check_export, derived, due_readings, health_forms, health_series, parameters, prefill, round_rows, services
+from . import (batch, check_export, derived, due_readings, health_forms, health_series, history_format, parameters, prefill,
+               round_rows, services)
 from . import labels as labels_module
 from .export_stream import csv_response
 from .filters import CheckFilter, TankFilter
 from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
-from .history import history_index, page_entries
+from .history import history_index, page_entries, species_sources, versions_of
 from .models import Census, Check, DeadRemoval, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
@@ -421,28 +422,14 @@ HISTORY_PAGE_SIZE = 200
 @role_required(*READ_ROLES)
 def check_detail(request, pk):
     check = get_object_or_404(Check.objects.select_related("tank__species", "recorded_by", "voided_by"), pk=pk)
-    history = check.history.select_related("history_user").order_by("-history_date")
     params = check.tank.relevant_parameters()
     return render(request, "colonies/check_detail.html", {
-        "check": check, "history": _diffs(history, params), "params": params,
+        "check": check, "entries": versions_of("Check", check.history.all()), "params": params,
         "flag_text": _flag_text(check),
         "cells": [{"param": p, "value": p.format(check.values().get(p.key)),
                    "side": (check.flags.get(p.key) or {}).get("side")}
                   for p in params + derived.for_habitat(check.tank.species.habitat)],
     })
-
-
-def _diffs(history, params):
-    entries = list(history)
-    out = []
-    for i, h in enumerate(entries):
-        prev = entries[i + 1] if i + 1 < len(entries) else None
-        changes = []
-        if prev is not None:
-            delta = h.diff_against(prev)
-            changes = [(c.field, c.old, c.new) for c in delta.changes if c.field not in ("flags",)]
-        out.append({"h": h, "changes": changes})
-    return out
 
 
 @require_http_methods(["GET", "POST"])
@@ -463,7 +450,8 @@ def check_edit(request, pk):
         services.update_check(user=request.user, check=check, row=form.row(), reason=reason.cleaned_data["reason"])
         messages.success(request, f"Check corrected; the earlier values stay in its history.")
         return redirect(check)
-    return render(request, "colonies/check_edit.html", {"check": check, "form": form, "reason": reason},
+    return render(request, "colonies/check_edit.html", {"check": check, "form": form, "reason": reason,
+                                                        "entries": versions_of("Check", check.history.all())},
                   status=400 if request.method == "POST" else 200)
 
 
@@ -483,7 +471,9 @@ def record_void(request, kind, pk):
         services.void_record(user=request.user, record=record, reason=form.cleaned_data["reason"])
         messages.success(request, f"Voided: {record}. It stays in the tank's history.")
         return redirect(record.tank)
-    return render(request, "colonies/void.html", {"record": record, "form": form, "kind": kind},
+    return render(request, "colonies/void.html", {"record": record, "form": form, "kind": kind,
+                                                  "entries": versions_of(model._meta.verbose_name.capitalize(),
+                                                                         record.history.all())},
                   status=400 if request.method == "POST" else 200)
 
 
@@ -502,10 +492,19 @@ def species_list(request):
 def species_detail(request, pk):
     species = get_object_or_404(Species, pk=pk)
     targets = {t.parameter: t for t in species.targets.all()}
-    rows = [(p, targets.get(p.key)) for p in species.relevant_parameters()]
+    # Measured parameters, then the values derived from them (a target on DO % saturation or NH3).
+    rows = [(p, targets.get(p.key), getattr(p, "method", "")) for p in
+            (*species.relevant_parameters(), *derived.for_habitat(species.habitat))]
     plans = [(parameters.BY_KEY[key], plan) for key, plan in species.plans().items()]
-    return render(request, "colonies/species_detail.html", {"species": species, "rows": rows, "plans": plans,
-                                                             "sources": sorted(species.sources.items())})
+    sources = species_sources(species)
+    changes = Paginator(history_index(sources), SPECIES_HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
+    return render(request, "colonies/species_detail.html", {
+        "species": species, "rows": rows, "plans": plans,
+        "sources": [(history_format.key_label(Species, k), v) for k, v in sorted(species.sources.items())],
+        "entries": page_entries(sources, changes.object_list), "page": changes})
+
+
+SPECIES_HISTORY_PAGE_SIZE = 50
 
 
 @require_http_methods(["GET", "POST"])

@@ -3,13 +3,11 @@
 Bookings, cohorts, dishes, studies and trials are made in the app's own screens, which apply the protocol
 and welfare rules; here they can only be read. Nothing can be deleted.
 """
-import dataclasses
 
 from django.contrib import admin
 from django.db.models import BooleanField, Case, Value, When
-from simple_history.template_utils import HistoricalRecordContextHelper
 
-from colonies.admin import HistoryAdmin, NoDeleteMixin, ReasonAdmin
+from colonies.admin import HistoryAdmin, NoDeleteMixin, ReadableHistoryHelper, ReasonAdmin
 
 from . import blinding
 from .models import (Allowance, Attachment, Booking, Cohort, Dish, ImageMeasurement, Override, PeriodReport, Protocol,
@@ -91,21 +89,9 @@ class BlindedAdmin(ReadOnlyAdmin):
         if pk not in cache:
             current = self.model._default_manager.filter(pk=pk).first()
             cache[pk] = current is None or self.hides(request, current)
-        if cache[pk]:
-            return _BlindedHistoryHelper(self.model, historical_record, hidden=self.blinded_fields)
-        return super().get_historical_record_context_helper(request, historical_record)
-
-
-class _BlindedHistoryHelper(HistoricalRecordContextHelper):
-    """The history's list of changes between versions, without the blinded fields."""
-
-    def __init__(self, model, historical_record, *, hidden):
-        super().__init__(model, historical_record)
-        self.hidden = hidden
-
-    def context_for_delta_changes(self, delta):
-        kept = [c for c in delta.changes if c.field not in self.hidden]
-        return super().context_for_delta_changes(dataclasses.replace(delta, changes=kept))
+        # The history's list of changes between versions, without the blinded fields.
+        return ReadableHistoryHelper(self.model, historical_record,
+                                     hidden=self.blinded_fields if cache[pk] else frozenset())
 
 
 def _marked_blind(request, queryset, prefix: str = ""):

@@ -24,10 +24,10 @@ PAGES = {  # demo user: [(file stem, path)]
                ("tank-LV-03", "/tanks/LV-03/"), ("tank-LV-03-health", "/tanks/LV-03/health/"),
                ("feeding-fw-1", "/husbandry/feeding/?room=fw-1"), ("water-changes-due", "/husbandry/water-change/?due=1"),
                ("dead-removed-pl-1", "/husbandry/dead-removed/?room=pl-1"),
-               ("colony-health", "/health/"), ("species", "/species/")],
+               ("colony-health", "/health/"), ("species", "/species/"), ("tank-LV-03-history", "/tanks/LV-03/history/")],
     "ravi": [("tank-LV-03-researcher", "/tanks/LV-03/"), ("trials", "/experiments/"),
              ("study", "/experiments/studies/uv-dispersal-01/"), ("calendar", "/experiments/bookings/calendar/")],
-    "morwen": [("deviations", "/deviations/"), ("ledger", "/experiments/ledger/")],
+    "morwen": [("deviations", "/deviations/"), ("ledger", "/experiments/ledger/"), ("species-1", "/species/1/")],
 }
 
 

@@ -60,12 +60,14 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
             ("check detail", f"/checks/{ids['check']}/", True), ("species list", "/species/", True),
             ("species page", f"/species/{ids['species']}/", True), ("deviation", f"/deviations/{ids['deviation']}/", True),
             ("colony health", "/health/", True), ("tank health", "/tanks/LV-03/health/", True),
+            ("tank history", "/tanks/LV-03/history/", True),
         ],
         "ravi": [  # researcher
             ("tank page (researcher)", "/tanks/LV-03/", True), ("trials list", "/experiments/", True),
             ("study page", f"/experiments/studies/{ids['study']}/", True),
             ("study page (analysis)", f"/experiments/studies/{ids['analysed']}/", True),
             ("cohort page", f"/experiments/cohorts/{ids['cohort']}/", True),
+            ("cohort history", f"/experiments/cohorts/{ids['cohort']}/history/", True),
             ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),
         ],
         "morwen": [  # manager

@@ -50,9 +50,11 @@ def test_check_page_shows_the_correction_in_its_history(client, technician, chec
 
     response = client.get(reverse("colonies:check-detail", args=[check.pk]))
 
-    newest = response.context["history"][0]
-    assert newest["h"].history_change_reason == "Typo"
-    assert ("ph", 9.0, 7.5) in newest["changes"]
+    newest = response.context["entries"][0]
+    assert newest["reason"] == "Typo"
+    # pH with the registry's two decimals (colonies/parameters.py), under its label, not the column name
+    assert ("pH", "9.00", "7.50") in [(c.label, c.old, c.new) for c in newest["changes"]]
+    assert "<strong class=\"field\">pH</strong>: 9.00 → 7.50" in response.content.decode()
 
 
 @pytest.mark.parametrize("reason", ["", "   "])

@@ -1,4 +1,6 @@
 """Species care profiles: read by everyone with a role, edited by managers with a reason."""
+import re
+
 import pytest
 from django.urls import reverse
 
@@ -30,11 +32,46 @@ def test_species_page_shows_targets_and_sources(client, researcher, species):
 
     text = page_text(response)
     assert "test value" in text  # the care target's source
-    assert ("feeding_interval_days", "lab setting") in response.context["sources"]
-    rows = {p.key: t for p, t in response.context["rows"]}
+    assert ("Feeding interval (days)", "lab setting") in response.context["sources"]
+    assert "feeding_interval_days" not in text
+    rows = {p.key: t for p, t, _ in response.context["rows"]}
     assert (rows["ph"].low, rows["ph"].high) == (6.0, 8.0)
     assert rows["temp_c"] is None
     assert "salinity" not in rows  # marine only
+
+
+def test_species_page_shows_derived_targets_with_their_source_and_method(client, researcher, db):
+    from colonies import care_defaults, derived
+    blackworm = Species.objects.get(scientific_name="Lumbriculus variegatus")  # installed by the migrations
+    client.force_login(researcher)
+
+    response = client.get(reverse("colonies:species-detail", args=[blackworm.pk]))
+
+    rows = {p.key: (t, method) for p, t, method in response.context["rows"]}
+    target, method = rows["do_pct_sat"]
+    # OECD TG 225 (2007): dissolved oxygen not below 30 % of air saturation (the default profile's source)
+    assert (target.low, target.high) == (30.0, None) and target.source.startswith(care_defaults.OECD_225)
+    assert method == derived.BY_KEY["do_pct_sat"].method
+    assert rows["nh3_mg_l"] == (None, derived.BY_KEY["nh3_mg_l"].method)  # shown, with no target set
+    text = " ".join(re.sub(r"<[^>]+>", " ", page_text(response)).split())  # what a reader sees
+    assert "Oxygen saturation (% air sat.) derived ≥ 30 % air sat." in text
+    assert "Emerson et al. 1975" in text and care_defaults.OECD_225 in text
+
+
+def test_species_page_shows_its_change_history_readably(client, manager, species):
+    client.force_login(manager)
+    data = species_edit_data(species, reason="Aligned with SOP v3", census_interval_days=7)
+    row = next(k for k, v in data.items() if k.startswith("targets-") and v == "do_pct_sat").rsplit("-", 1)[0]
+    data[f"{row}-low"] = "40"
+    assert client.post(reverse("colonies:species-edit", args=[species.pk]), data).status_code == 302
+
+    response = client.get(reverse("colonies:species-detail", args=[species.pk]))
+
+    changes = {(e["what"], c.label, c.old, c.new) for e in response.context["entries"] for c in e["changes"]}
+    assert ("Care profile", "Census interval", "14 days", "7 days") in changes
+    assert ("Care target: Oxygen saturation (% air sat.)", "Low", "30", "40") in changes
+    text = page_text(response)
+    assert "Aligned with SOP v3" in text and "census_interval_days" not in text
 
 
 def test_manager_edits_profile_and_adds_a_target_with_a_reason(client, manager, species):

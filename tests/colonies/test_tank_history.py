@@ -32,7 +32,7 @@ def test_history_pages_hold_every_version_newest_first_with_the_correction_diff(
     assert [e["when"] for e in entries] == sorted((e["when"] for e in entries), reverse=True)
     newest = entries[0]
     assert newest["action"] == "changed" and newest["reason"] == "Misread the meter"
-    assert ("ph", 7.0, 7.4) in newest["changes"]
+    assert ("pH", "7.00", "7.40") in [(c.label, c.old, c.new) for c in newest["changes"]]
     assert entries == record_history(tank)
 
 

@@ -105,6 +105,11 @@ URLS = {
     "experiments:period-report-zip": lambda w: reverse("experiments:period-report-zip") + _period(),
     "experiments:period-report-issue": lambda w: reverse("experiments:period-report-issue"),
     "experiments:period-report-issued": lambda w: reverse("experiments:period-report-issued", args=[w.issued.pk]),
+    "experiments:protocol-history": lambda w: reverse("experiments:protocol-history", args=[w.protocol.pk]),
+    "experiments:booking-history": lambda w: reverse("experiments:booking-history", args=[w.booking.pk]),
+    "experiments:cohort-history": lambda w: reverse("experiments:cohort-history", args=[w.cohort.pk]),
+    "experiments:study-history": lambda w: reverse("experiments:study-history", args=[w.study.code]),
+    "experiments:trial-history": lambda w: reverse("experiments:trial-history", args=[w.trial.pk]),
 }
 
 
@@ -191,6 +196,11 @@ ACCESS = [
     ("experiments:period-report-zip", "get", MANAGE),
     ("experiments:period-report-issue", "post", MANAGE),
     ("experiments:period-report-issued", "get", MANAGE),
+    ("experiments:protocol-history", "get", READ),
+    ("experiments:booking-history", "get", READ),
+    ("experiments:cohort-history", "get", READ),
+    ("experiments:study-history", "get", READ),
+    ("experiments:trial-history", "get", READ),
 ]
 
 WRONG_METHODS = [
@@ -209,6 +219,8 @@ WRONG_METHODS = [
     ("experiments:period-report", "post"), ("experiments:period-report-pdf", "post"),
     ("experiments:period-report-zip", "post"), ("experiments:period-report-issue", "get"),
     ("experiments:period-report-issued", "post"),
+    ("experiments:protocol-history", "post"), ("experiments:booking-history", "post"), ("experiments:cohort-history", "post"),
+    ("experiments:study-history", "post"), ("experiments:trial-history", "delete"),
 ]
 
 
