@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import measurement_views, views
+from . import measurement_views, methods_views, views
 
 app_name = "experiments"
 
@@ -20,6 +20,9 @@ urlpatterns = [
     path("studies/new/", views.study_new, name="study-new"),
     path("studies/<slug:code>/", views.study_detail, name="study-detail"),
     path("studies/<slug:code>/unblind/", views.study_unblind, name="study-unblind"),
+    path("studies/<slug:code>/methods/", methods_views.study_methods, name="study-methods"),
+    path("studies/<slug:code>/methods.md", methods_views.study_methods_markdown, name="study-methods-md"),
+    path("studies/<slug:code>/validity/", methods_views.study_validity, name="study-validity"),
     path("studies/<slug:code>/trials.csv", views.study_csv, name="study-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.csv", views.study_chart_csv, name="study-chart-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.<slug:fmt>", views.study_chart, name="study-chart"),
