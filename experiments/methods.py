@@ -457,7 +457,8 @@ def adverse_events(d: Draft) -> Section:
     paragraphs = [text, f"Dead animals removed from the source tanks in the period: {tank_deaths}."]
     rules = Counter((r, sev) for _tank, r, sev in d.husbandry.deviations)
     if rules:
-        paragraphs.append(f"{_n(len(d.husbandry.deviations), 'deviation')} opened in the period: " + "; ".join(
+        paragraphs.append(f"{_n(len(d.husbandry.deviations), 'deviation')} on the source tanks or the study's "
+                          f"dishes: " + "; ".join(
             f"{r} ({sev.lower()}) × {n}" for (r, sev), n in sorted(rules.items())) + ".")
     else:
         paragraphs.append("No deviation was opened on the source tanks or the study's dishes in the period.")
@@ -467,8 +468,8 @@ def adverse_events(d: Draft) -> Section:
         paragraphs.append(f"{_n(len(overrides), 'trial')} went beyond a protocol limit with a manager's override "
                           f"(reasons: {reasons}).")
     return Section("16", "Animal care and monitoring (adverse events)", paragraphs,
-                   f"Trials' 24 h counts and dish ends; checks and dead-removal records of the source tanks, "
-                   f"deviations opened {_period(d)}.")
+                   f"Trials' 24 h counts and dish ends; checks, dead-removal records and deviations of the source "
+                   f"tanks {_period(d)}; deviations about the study's dishes.")
 
 
 def validity_section(d: Draft) -> Section | None:

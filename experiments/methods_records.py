@@ -152,8 +152,9 @@ def _husbandry(tanks: dict, dish_ids, first, last):
                DeadRemoval.objects.current().filter(**window).values("tank__code", "observed_at", "count")]
     subjects = [f"dish:{pk}" for pk in dish_ids]
     deviations = [(r["tank__code"] or "", Deviation.Rule(r["rule"]).label, Deviation.Severity(r["severity"]).label)
-                  for r in Deviation.objects.filter(Q(tank_id__in=ids) | Q(subject__in=subjects),
-                                                    opened_at__gte=start, opened_at__lt=end)
+                  # the tanks' deviations of the period; the dishes' whenever opened (an override's may come later)
+                  for r in Deviation.objects.filter(Q(tank_id__in=ids, opened_at__gte=start, opened_at__lt=end)
+                                                    | Q(subject__in=subjects))
                   .order_by("opened_at", "pk").values("tank__code", "rule", "severity")]
     return methods.Husbandry(checks=checks, feedings=feedings, water_changes=changes,
                              censuses=sorted(censuses + list(before.values())), deaths=deaths,

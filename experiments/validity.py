@@ -185,8 +185,12 @@ class Result:
     evidence: str
 
 
-def _fmt(value: float) -> str:
-    return f"{value:.4g}"
+# Decimals as the registry shows each reading (colonies/parameters.py; oxygen saturation as colonies/derived.py).
+DECIMALS = {"temp_c": 1, "ph": 2, "do_mg_l": 2, "do_pct_sat": 0}
+
+
+def _fmt(value: float, key: str) -> str:
+    return f"{value:.{DECIMALS[key]}f}"
 
 
 def _survival(c: dict, ev: Evidence) -> tuple[str, str]:
@@ -222,14 +226,14 @@ def _floor(c: dict, ev: Evidence, key: str, floor_name: str, unit: str) -> tuple
     low, at = min(values)
     below = [v for v in values if v[0] < floor]
     status = NOT_MET if below else MET
-    return status, (f"{len(values)} checks with {floor_name} ({ev.where()}): lowest {_fmt(low)} {unit} ({at}); "
+    return status, (f"{len(values)} checks with {floor_name} ({ev.where()}): lowest {_fmt(low, key)} {unit} ({at}); "
                     f"{len(below)} below {floor:g} {unit}.")
 
 
-def _band(values: list[tuple[float, str]], low: float, high: float, unit: str, what: str) -> tuple[int, str]:
+def _band(values: list[tuple[float, str]], low: float, high: float, key: str, unit: str, what: str) -> tuple[int, str]:
     outside = [v for v in values if not low <= v[0] <= high]
     lo, hi = min(values), max(values)
-    text = (f"{len(values)} {what}: {_fmt(lo[0])}–{_fmt(hi[0])}{unit} (lowest {lo[1]}, highest {hi[1]}); "
+    text = (f"{len(values)} {what}: {_fmt(lo[0], key)}–{_fmt(hi[0], key)}{unit} (lowest {lo[1]}, highest {hi[1]}); "
             f"{len(outside)} outside the band")
     return len(outside), text
 
@@ -242,7 +246,7 @@ def _temperature(c: dict, ev: Evidence) -> tuple[str, str]:
     parts, outside = [], 0
     for values, what in ((checks, f"checks of the source tanks ({ev.where()})"), (arenas, "trial arenas")):
         if values:
-            n, text = _band(values, c["low_c"], c["high_c"], " °C", what)
+            n, text = _band(values, c["low_c"], c["high_c"], "temp_c", " °C", what)
             outside += n
             parts.append(text)
     return (NOT_MET if outside else MET), "; ".join(parts) + "."
@@ -252,7 +256,7 @@ def _ph(c: dict, ev: Evidence) -> tuple[str, str]:
     values = _readings(ev, "ph")
     if not values:
         return CANNOT_TELL, f"No check recorded pH ({ev.where()})."
-    n, text = _band(values, c["low"], c["high"], "", f"checks with pH ({ev.where()})")
+    n, text = _band(values, c["low"], c["high"], "ph", "", f"checks with pH ({ev.where()})")
     return (NOT_MET if n else MET), text + "."
 
 

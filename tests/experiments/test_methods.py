@@ -112,7 +112,8 @@ def test_sample_size_exclusions_and_adverse_events_count_the_trials():
     # 24 h counts on AAAA (1 dead of 10) and CCCC (0 of 8); DDDD has none.
     assert "Dead at 24 h: 1 of 18 animals in 2 trials with a count (1 without one)" in adverse
     assert "Dead animals removed from the source tanks in the period: 3." in adverse
-    assert "2 deviations opened in the period" in adverse and "CCCC: Nebula-override" in adverse
+    assert "2 deviations on the source tanks or the study's dishes: Protocol limit overridden (major) × 1; " \
+        "Reading outside care target (minor) × 1." in adverse and "CCCC: Nebula-override" in adverse
     # Scored trials AAAA (opal ran, tess scored), CCCC (opal both), DDDD (tess): 2 of 3 by another person.
     assert "2 of 3 scored trials were scored by someone other than their operator (required for this study)." \
         in s["5"].paragraphs

@@ -125,7 +125,7 @@ def test_study_page_states_each_criterion_with_its_evidence(client, researcher, 
     assert results["temperature_band"].status == "not met"
     assert "3 checks of the source tanks" in results["temperature_band"].evidence
     assert "3 trial arenas: 20.7–20.9 °C" in results["temperature_band"].evidence  # 20 + day/10, days 7-9
-    assert results["oxygen_floor"].status == "met" and "lowest 6 mg/L" in results["oxygen_floor"].evidence
+    assert results["oxygen_floor"].status == "met" and "lowest 6.00 mg/L" in results["oxygen_floor"].evidence
     assert results["ph_band"].status == "met"
     ref = [t for t in study.trials.all() if t.condition == SHAM]
     animals, dead = sum(t.animals for t in ref), sum(t.mortality_24h for t in ref)

@@ -69,7 +69,7 @@ def test_oxygen_floor_met_not_met_and_cannot_tell():
     # Lowest DO 3.5 mg/L on 3 Nov (2 checks with a reading): >= 3 met, >= 4 not met (one below).
     met = _one({"kind": "oxygen_floor", "min_mg_l": 3}, _evidence(checks=CHECKS))
     assert met.status == MET
-    assert "2 checks with dissolved oxygen (tanks LV-1, 2026-11-02 to 2026-11-04): lowest 3.5 mg/L " \
+    assert "2 checks with dissolved oxygen (tanks LV-1, 2026-11-02 to 2026-11-04): lowest 3.50 mg/L " \
            "(LV-1 2026-11-03 09:00); 0 below 3 mg/L." == met.evidence
     not_met = _one({"kind": "oxygen_floor", "min_mg_l": 4}, _evidence(checks=CHECKS))
     assert (not_met.status, "1 below 4 mg/L" in not_met.evidence) == (NOT_MET, True)
@@ -89,7 +89,7 @@ def test_temperature_band_reads_the_tanks_and_the_trial_arenas():
     # Tanks 20.0-23.0 °C and arenas 21.0-24.5 °C (the voided trial's 40 °C left out): within 19-25, not 19-24.
     wide = _one({"kind": "temperature_band", "low_c": 19, "high_c": 25}, _evidence(checks=CHECKS, trials=arenas))
     assert wide.status == MET
-    assert "3 checks of the source tanks" in wide.evidence and "2 trial arenas: 21–24.5 °C" in wide.evidence
+    assert "3 checks of the source tanks" in wide.evidence and "2 trial arenas: 21.0–24.5 °C" in wide.evidence
     narrow = _one({"kind": "temperature_band", "low_c": 19, "high_c": 24}, _evidence(checks=CHECKS, trials=arenas))
     assert narrow.status == NOT_MET and "trial CCCC" in narrow.evidence
     assert _one({"kind": "temperature_band", "low_c": 19, "high_c": 25}, _evidence()).status == CANNOT_TELL
