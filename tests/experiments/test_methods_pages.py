@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from django.urls import reverse
 
-from colonies.models import Census, Feeding, WaterChange
+from colonies.models import Census, Deviation, Feeding, WaterChange
 from colonies.roles import RESEARCHER
 from experiments import methods, methods_records, services
 from experiments.models import Study
@@ -74,6 +74,20 @@ def test_draft_numbers_equal_those_computed_from_the_records(client, researcher,
     assert "3 checks, 3 feedings, 1 water change, 2 censuses" in text
     assert f"seed {SEED}" in text and "Lumbriculus" not in text  # the species is the test species, by name
     assert study.protocol.reference in text
+
+
+def test_adverse_events_count_the_dishes_deviations_whenever_opened_and_the_tanks_in_the_period(
+        client, researcher, study):
+    dish = study.trials.first().dish
+    tank = dish.cohort.origin_tank
+    rule = Deviation.Rule
+    Deviation.objects.create(rule=rule.PROTOCOL_LIMIT, subject=dish.subject, severity=Deviation.Severity.MAJOR,
+                             opened_at=days_ago(1), last_seen_at=days_ago(1), summary="Rest limit overridden")
+    Deviation.objects.create(tank=tank, rule=rule.MISSED_CHECK, opened_at=days_ago(30), last_seen_at=days_ago(30),
+                             summary="No check")  # before the period: not this study's
+    text = _text(client, researcher, study, "experiments:study-methods-md")
+    assert "Protocol limit overridden (major) × 1" in text
+    assert rule.MISSED_CHECK.label not in text
 
 
 def test_the_download_is_markdown_named_by_the_study(client, researcher, study):
