@@ -87,8 +87,9 @@ def study_design(d: Draft) -> Section:
         groups = f"{_n(k, 'condition')}: " + ", ".join(s.conditions)
         if s.reference:
             groups += f"; every condition was compared with the reference condition '{s.reference}'"
-    text = (f"The study ({s.code}: {s.title}) compared {groups}. The experimental unit was the dish: one trial "
-            f"exposed one dish of animals to one condition, and each dish's animals were counted as one unit.")
+    text = (f"The study ({s.code}: {s.title}) compared {groups}. The experimental unit was the trial: one dish of "
+            f"animals exposed to one condition and scored as one unit (a dish may be exposed in more than one trial; "
+            f"item 2 says how often).")
     if s.question:
         text += f" Question, recorded before allocation: {s.question}"
     return Section("1", "Study design", [text], f"Study {s.code} (conditions, allocation of {s.slots} slots).")
@@ -97,11 +98,17 @@ def study_design(d: Draft) -> Section:
 def sample_size(d: Draft) -> Section:
     s = d.study
     trials = _counting(d)
-    animals = sum(t.animals for t in trials)
-    dishes, cohorts = {t.dish for t in trials}, {t.cohort for t in trials}
-    text = (f"{s.slots} dishes were planned ({len(s.conditions)} conditions × {s.replicates} replicates). "
-            f"{_n(len(trials), 'trial')} were recorded (voided trials not counted), using {animals} animals in "
-            f"{_n(len(dishes), 'dish', 'dishes')} from {_n(len(cohorts), 'cohort')}.")
+    in_arenas = sum(t.animals for t in trials)
+    dish_animals = {t.dish: t.dish_animals for t in trials}  # each dish's animals counted once
+    cohorts = {t.cohort for t in trials}
+    exposures = list(Counter(t.dish for t in trials).values())
+    text = (f"{s.slots} trials were planned ({len(s.conditions)} conditions × {s.replicates} replicates), the trial "
+            f"being the unit. {_n(len(trials), 'trial')} were recorded (voided trials not counted), on "
+            f"{_n(len(dish_animals), 'dish', 'dishes')} holding {sum(dish_animals.values())} animals in all, from "
+            f"{_n(len(cohorts), 'cohort')}.")
+    if exposures:
+        text += (f" Trials per dish: {_median_range(exposures, 1)}; the arenas held {in_arenas} animals summed over "
+                 f"the trials (an animal exposed twice counts twice).")
     paragraphs = [text]
     if not s.blind and trials:
         per = defaultdict(lambda: [0, 0])
@@ -109,11 +116,11 @@ def sample_size(d: Draft) -> Section:
             per[t.condition][0] += 1
             per[t.condition][1] += t.animals
         paragraphs.append("Per condition: " + "; ".join(
-            f"{c}: {_n(per[c][0], 'dish', 'dishes')}, {per[c][1]} animals" for c in s.conditions) + ".")
+            f"{c}: {_n(per[c][0], 'trial')}, {per[c][1]} animals in the arenas" for c in s.conditions) + ".")
     paragraphs.append(TO_WRITE.format("how the sample size was decided (a priori calculation, if any)"))
     return Section("2", "Sample size", paragraphs,
-                   f"{_n(len(trials), 'trial record')} of study {s.code} (Trial.animals summed; dishes "
-                   f"{', '.join(sorted(dishes)) or 'none'}).")
+                   f"{_n(len(trials), 'trial record')} of study {s.code} (Trial.animals summed); dishes "
+                   f"{', '.join(sorted(dish_animals)) or 'none'} (Dish.animals).")
 
 
 def exclusions(d: Draft) -> Section:
@@ -194,9 +201,9 @@ def outcome_measures(d: Draft) -> Section:
     text = (f"Primary outcome: {s.primary_outcome}. A clump still together when the {s.window_s} s observation "
             f"window ended was recorded as censored at {s.window_s} s. Secondary outcome: animals dead 24 h after "
             f"the trial.")
-    how = (f"Of {_n(len(trials), 'scored trial')}, {manual} were timed by eye, {accepted} took the time measured "
-           f"from the dish's images as proposed and {overridden} were measured from images and corrected by "
-           f"the scorer.")
+    how = (f"Of {_n(len(trials), 'scored trial')}, {manual} were scored by eye (no image measurement used), "
+           f"{accepted} took the time measured from the dish's images as proposed and {overridden} were measured "
+           f"from images and corrected by the scorer.")
     paragraphs = [text, how]
     if d.measuring.count:
         settings = "; ".join(f"{k} {v}" for k, v in sorted(d.measuring.settings.items()))
@@ -291,7 +298,8 @@ def husbandry(d: Draft) -> Section:
         for p in parameters.PARAMETERS:
             values = [c[2][p.key] for c in checks if c[2].get(p.key) is not None]
             if values:
-                water.append(f"{p.label.lower() if p.key != 'ph' else 'pH'} {_median_range(values, p.decimals, p.unit)}")
+                name = "pH" if p.key == "ph" else p.label.lower()
+                water.append(f"{name} {_median_range(values, p.decimals, p.unit)}")
         text = (f"Tank {tank.code} ({tank.species}; {tank.room}; {_num(tank.volume_l, 1)} L, {tank.system}"
                 f"{', ' + tank.substrate if tank.substrate else ''}): ")
         text += ("water " + "; ".join(water) + ". ") if water else "no water reading in the period. "
@@ -299,7 +307,8 @@ def husbandry(d: Draft) -> Section:
             foods = Counter(f[2] for f in feeds)
             gaps = _intervals_days([f[1] for f in feeds])
             units = Counter(f[4] for f in feeds).most_common(1)[0][0]
-            text += (f"Fed {_n(len(feeds), 'time')} ({', '.join(foods)}; amount {_median_range([f[3] for f in feeds], 2, units)}"
+            amounts = _median_range([f[3] for f in feeds], 2, units)
+            text += (f"Fed {_n(len(feeds), 'time')} ({', '.join(foods)}; amount {amounts}"
                      + (f"; every {_median_range(gaps, 1, 'days')}" if gaps else "") + "). ")
         else:
             text += "No feeding recorded in the period. "
@@ -315,7 +324,8 @@ def husbandry(d: Draft) -> Section:
             text += "No water change recorded in the period. "
         if censuses:
             densities = [c[2] / tank.volume_l for c in censuses]
-            text += f"Stocking density from {_n(len(censuses), 'census', 'censuses')}: {_median_range(densities, 0, 'animals/L')}."
+            text += (f"Stocking density from {_n(len(censuses), 'census', 'censuses')}: "
+                     f"{_median_range(densities, 0, 'animals/L')}.")
         else:
             text += "No census: stocking density unknown."
         paragraphs.append(text)
@@ -332,8 +342,8 @@ def adverse_events(d: Draft) -> Section:
     counted = [t for t in trials if t.mortality_24h is not None]
     dead = sum(t.mortality_24h for t in counted)
     animals = sum(t.animals for t in counted)
-    text = (f"Dead at 24 h: {dead} of {animals} animals in {_n(len(counted), 'trial')} with a count "
-            f"({len(trials) - len(counted)} without one)")
+    text = (f"Dead 24 h after a trial: {dead} in {_n(len(counted), 'trial')} with a count, whose arenas held "
+            f"{animals} animals ({_n(len(trials) - len(counted), 'trial')} without a count)")
     text += f"; {_n(d.dishes_died, 'dish', 'dishes')} ended as died." if d.dishes_died else "."
     tank_deaths = sum(n for _t, _at, n in d.husbandry.deaths)
     paragraphs = [text, f"Dead animals removed from the source tanks in the period: {tank_deaths}."]

@@ -117,7 +117,8 @@ def _trial_row(t: Trial, blind: bool, decision: dict) -> methods.TrialRow:
     return methods.TrialRow(
         code=t.code, slot=t.slot, condition="" if blind else t.condition, animals=t.animals,
         run_at=_local(t.run_at), run_by=t.run_by.get_username(), dish=t.dish.label, cohort=t.cohort.label,
-        tank=t.cohort.origin_tank.code, voided=t.is_voided, void_reason="" if blind else t.void_reason,
+        tank=t.cohort.origin_tank.code, dish_animals=t.dish.animals, voided=t.is_voided,
+        void_reason="" if blind else t.void_reason,
         excluded=t.is_excluded, exclusion_reason="" if blind else t.exclusion_reason, scored=t.is_scored,
         censored=t.censored, scored_by=t.scored_by.get_username() if t.scored_by else "",
         mortality_24h=t.mortality_24h, vessel=t.vessel, arena_diameter_mm=t.arena_diameter_mm,

@@ -46,12 +46,13 @@ class TrialRow:
     code: str
     slot: int
     condition: str  # "" while blind
-    animals: int
+    animals: int  # in the arena for this trial
     run_at: datetime
     run_by: str
     dish: str
     cohort: str
     tank: str
+    dish_animals: int = 0  # put in the trial's dish
     voided: bool = False
     void_reason: str = ""
     excluded: bool = False

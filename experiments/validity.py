@@ -292,8 +292,9 @@ def form_rows(criteria: list[dict]) -> list[dict]:
     for kind, spec in CRITERIA.items():
         values = declared.get(kind, spec.defaults)
         rows.append({"kind": kind, "label": spec.label, "guideline": spec.guideline, "used": kind in declared,
-                     "fields": [{"name": f"{kind}.{name}", "label": b.label, "unit": b.unit, "value": f"{values[name]:g}",
-                                 "min": f"{b.minimum:g}", "max": f"{b.maximum:g}"} for name, b in spec.fields.items()]})
+                     "fields": [{"name": f"{kind}.{name}", "label": b.label, "unit": b.unit,
+                                 "value": f"{values[name]:g}", "min": f"{b.minimum:g}", "max": f"{b.maximum:g}"}
+                                for name, b in spec.fields.items()]})
     return rows
 
 

@@ -29,12 +29,13 @@ STUDY = StudyFacts(
     protocol_title="Aggregation", protocol_approver="Welfare body", protocol_approved_on=date(2026, 10, 1))
 
 TRIALS = [
-    TrialRow("AAAA", 1, "Sable-sham", 10, _at(3), "opal", "C-0001-D1", "C-0001", "LV-1", scored=True, scored_by="tess",
+    TrialRow("AAAA", 1, "Sable-sham", 10, _at(3), "opal", "C-0001-D1", "C-0001", "LV-1", dish_animals=10, scored=True,
+             scored_by="tess",
              mortality_24h=1, water_temp_c=20.0, arena_diameter_mm=90, stimulus="None", measured="accepted"),
-    TrialRow("CCCC", 2, "Obsidian-glow", 8, _at(4), "opal", "C-0001-D1", "C-0001", "LV-1", scored=True,
+    TrialRow("CCCC", 2, "Obsidian-glow", 8, _at(4), "opal", "C-0001-D1", "C-0001", "LV-1", dish_animals=10, scored=True,
              scored_by="opal", mortality_24h=0, water_temp_c=21.0, arena_diameter_mm=90,
              stimulus="UV 2.345 mW/cm²", overridden=True, override_reason="Nebula-override"),
-    TrialRow("DDDD", 3, "Obsidian-glow", 12, _at(5), "opal", "C-0002-D1", "C-0002", "LV-2", scored=True,
+    TrialRow("DDDD", 3, "Obsidian-glow", 12, _at(5), "opal", "C-0002-D1", "C-0002", "LV-2", dish_animals=12, scored=True,
              scored_by="tess", mortality_24h=None, water_temp_c=23.0, excluded=True,
              exclusion_reason="Clump split at the Obsidian-glow lamp", stimulus="UV 2.345 mW/cm²"),
     TrialRow("EEEE", 4, "Sable-sham", 10, _at(5), "opal", "C-0002-D2", "C-0002", "LV-2", voided=True,
@@ -100,17 +101,21 @@ def test_husbandry_numbers_equal_those_computed_from_the_rows():
 
 def test_sample_size_exclusions_and_adverse_events_count_the_trials():
     s = _sections(_draft())
-    # Not voided: AAAA, CCCC, DDDD -> 3 trials, 10 + 8 + 12 = 30 animals, dishes C-0001-D1 and C-0002-D1.
-    assert "3 trials were recorded (voided trials not counted), using 30 animals in 2 dishes from 2 cohorts" \
-        in s["2"].paragraphs[0]
-    assert "Per condition: Sable-sham: 1 dish, 10 animals; Obsidian-glow: 2 dishes, 20 animals." in s["2"].paragraphs
+    # Not voided: AAAA, CCCC, DDDD -> 3 trials on dishes C-0001-D1 (10 animals, 2 trials) and C-0002-D1 (12 animals,
+    # 1 trial): 22 distinct animals; trials per dish median (1 + 2) / 2 = 1.5; arenas 10 + 8 + 12 = 30.
+    assert "4 trials were planned (2 conditions × 2 replicates), the trial being the unit. 3 trials were recorded " \
+           "(voided trials not counted), on 2 dishes holding 22 animals in all, from 2 cohorts. Trials per dish: " \
+           "median 1.5 (range 1.0–2.0, n = 2); the arenas held 30 animals summed over the trials" in s["2"].paragraphs[0]
+    assert "Per condition: Sable-sham: 1 trial, 10 animals in the arenas; Obsidian-glow: 2 trials, 20 animals in the " \
+           "arenas." in s["2"].paragraphs
     exclusions = " ".join(s["3"].paragraphs)
     assert "1 trial excluded: DDDD (Obsidian-glow): Clump split" in exclusions
     assert "1 trial voided as recorded in error (not exposures, not analysed): EEEE: Entered twice." in exclusions
     assert "Trials analysed (n per condition): Sable-sham 1, Obsidian-glow 1." in exclusions
     adverse = " ".join(s["16"].paragraphs)
     # 24 h counts on AAAA (1 dead of 10) and CCCC (0 of 8); DDDD has none.
-    assert "Dead at 24 h: 1 of 18 animals in 2 trials with a count (1 without one)" in adverse
+    assert "Dead 24 h after a trial: 1 in 2 trials with a count, whose arenas held 18 animals (1 trial without a " \
+           "count)" in adverse
     assert "Dead animals removed from the source tanks in the period: 3." in adverse
     assert "2 deviations on the source tanks or the study's dishes: Protocol limit overridden (major) × 1; " \
         "Reading outside care target (minor) × 1." in adverse and "CCCC: Nebula-override" in adverse
@@ -121,7 +126,7 @@ def test_sample_size_exclusions_and_adverse_events_count_the_trials():
 
 def test_outcome_measures_say_how_each_score_was_made():
     text = " ".join(_sections(_draft())["6"].paragraphs)
-    assert "Of 3 scored trials, 2 were timed by eye, 1 took the time measured from the dish's images" in text
+    assert "Of 3 scored trials, 2 were scored by eye (no image measurement used), 1 took the time measured from the dish's images" in text
     assert "scikit-image 0.24.0" in text and "threshold 0.5" in text
 
 
@@ -150,7 +155,7 @@ def test_nothing_per_condition_reaches_the_text_while_blind():
     for secret in BLIND_SECRETS:
         assert secret not in text, secret
     assert "2 conditions (labels [withheld while the study is blind])" in text
-    assert "3 trials were recorded" in text  # pooled numbers stay
+    assert "3 trials were recorded" in text and "holding 22 animals" in text  # pooled numbers stay
     assert "1 trial went beyond a protocol limit with a manager's override (reasons: [withheld" in text
 
 

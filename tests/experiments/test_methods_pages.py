@@ -68,9 +68,11 @@ def test_draft_numbers_equal_those_computed_from_the_records(client, researcher,
     assert "Fed 3 times (spirulina; amount median 0.20 g (range 0.10–0.30 g, n = 3); every median 1.0 days" in text
     # Census 1000 before the period and 800 in it, tank 2 L: 500 and 400 animals/L.
     assert "median 450 animals/L (range 400–500 animals/L, n = 2)" in text
-    # Three trials of 10 animals from one cohort of 30; dead at 24 h 1 + 0 + 2 = 3 of 30.
-    assert "3 trials were recorded (voided trials not counted), using 30 animals in 1 dish from 1 cohort" in text
-    assert "Dead at 24 h: 3 of 30 animals in 3 trials with a count (0 without one)" in text
+    # Three trials of 10 animals on one dish holding the cohort's 30; dead at 24 h 1 + 0 + 2 = 3.
+    assert "3 trials were recorded (voided trials not counted), on 1 dish holding 30 animals in all, from 1 cohort." \
+        in text
+    assert "Trials per dish: median 3.0 (range 3.0–3.0, n = 1)" in text
+    assert "Dead 24 h after a trial: 3 in 3 trials with a count, whose arenas held 30 animals" in text
     assert "3 checks, 3 feedings, 1 water change, 2 censuses" in text
     assert f"seed {SEED}" in text and "Lumbriculus" not in text  # the species is the test species, by name
     assert study.protocol.reference in text

@@ -99,7 +99,8 @@ def test_ph_band_six_to_nine():
     # pH 7.0 and 9.4 (one check without pH): 9.4 is outside OECD's 6-9 (from memory), inside 6-9.5.
     assert _one({"kind": "ph_band", "low": 6, "high": 9}, _evidence(checks=CHECKS)).status == NOT_MET
     assert _one({"kind": "ph_band", "low": 6, "high": 9.5}, _evidence(checks=CHECKS)).status == MET
-    assert _one({"kind": "ph_band", "low": 6, "high": 9}, _evidence(checks=[_check(2, temp_c=20)])).status == CANNOT_TELL
+    no_ph = _evidence(checks=[_check(2, temp_c=20)])
+    assert _one({"kind": "ph_band", "low": 6, "high": 9}, no_ph).status == CANNOT_TELL
 
 
 # --- validation --------------------------------------------------------------------------------------
