@@ -54,10 +54,11 @@ def study_validity(request, code):
         methods_records.set_validity_criteria(user=request.user, study=study,
                                               criteria=validity.criteria_from_form(request.POST))
         messages.success(request, f"Validity criteria of study {study.code} saved.")
+        return redirect(study.get_absolute_url() + "#validity")
     except validity.CriteriaError as error:
         for text in error.errors.values():
             messages.error(request, text)
         messages.error(request, "Nothing was changed.")
     except services.Refused as refusal:
         messages.error(request, str(refusal))
-    return redirect(study.get_absolute_url() + "#validity")
+    return redirect(study)  # the messages show at the top of the page
