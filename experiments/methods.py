@@ -157,11 +157,11 @@ def randomisation(d: Draft) -> Section:
     s = d.study
     how = ("the run order of all condition × replicate pairs was shuffled together (simple randomisation)"
            if s.method == "simple" else
-           "the run order was randomised in permuted blocks: each block held one dish per condition in random "
+           "the run order was randomised in permuted blocks: each block held one trial per condition in random "
            "order, so every condition ran once before any ran again")
     seed = WITHHELD if s.blind else str(s.seed)
     when = f" on {_day(s.allocated_at)}" if s.allocated_at else ""
-    text = (f"Dishes were allocated to conditions at random: {how}. The sequence was generated{when} by "
+    text = (f"Trials were allocated to conditions at random: {how}. The sequence was generated{when} by "
             f"{s.generator or 'the generator recorded with the study'} with seed {seed}, and the realised "
             f"allocation list of {s.slots} slots was stored with the study.")
     return Section("4", "Randomisation", [text],
