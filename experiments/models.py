@@ -491,6 +491,9 @@ class Study(models.Model):
     scorer_not_operator = models.BooleanField(
         default=False, verbose_name="Scorer must not be the operator",
         help_text="The person who ran a trial (and so knows its condition) may not score it; another person does.")
+    validity_criteria = models.JSONField(
+        default=list, blank=True,
+        help_text="Validity criteria the study declares (experiments/validity.py), fixed once it is unblinded.")
     outcomes_locked_at = models.DateTimeField(null=True, blank=True)
     unblinded_at = models.DateTimeField(null=True, blank=True)
     unblinded_by = _user_fk(null=True, blank=True)

@@ -1,6 +1,6 @@
 from django.urls import path
 
-from . import history_views, measurement_views, period_report_views, views
+from . import history_views, measurement_views, methods_views, period_report_views, views
 
 app_name = "experiments"
 
@@ -24,6 +24,9 @@ urlpatterns = [
     path("studies/<slug:code>/", views.study_detail, name="study-detail"),
     path("studies/<slug:code>/history/", history_views.study_history, name="study-history"),
     path("studies/<slug:code>/unblind/", views.study_unblind, name="study-unblind"),
+    path("studies/<slug:code>/methods/", methods_views.study_methods, name="study-methods"),
+    path("studies/<slug:code>/methods.md", methods_views.study_methods_markdown, name="study-methods-md"),
+    path("studies/<slug:code>/validity/", methods_views.study_validity, name="study-validity"),
     path("studies/<slug:code>/trials.csv", views.study_csv, name="study-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.csv", views.study_chart_csv, name="study-chart-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.<slug:fmt>", views.study_chart, name="study-chart"),

@@ -21,7 +21,7 @@ from colonies.models import REASON_MAX_CHARS, Room
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
-from . import blinding, charts, filetypes, measuring, reports, services
+from . import blinding, charts, filetypes, measuring, methods_records, reports, services, validity
 from .filters import LedgerFilter
 from .forms import (AttachmentForm, BookingForm, CalendarForm, CohortEndForm, DishEndForm, DishForm, DrawForm,
                     ReasonForm, ScoreForm, StudyForm, TrialForm, errors_text)
@@ -416,7 +416,9 @@ def study_detail(request, code):
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
            "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
            "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided),
-           "image_agreement": measuring.study_agreement(study, trials)}  # pooled: shown while blinded too
+           "image_agreement": measuring.study_agreement(study, trials),  # pooled: shown while blinded too
+           "validity": methods_records.validity_for(study, trials), "may_draft": has_role(request.user, *RUN),
+           "validity_rows": validity.form_rows(study.validity_criteria)}
     frame = reports.tidy_frame(trials)
     if blind:
         ctx["preview"] = reports.pooled_preview(frame)

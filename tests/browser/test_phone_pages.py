@@ -45,7 +45,8 @@ def demo_lab(transactional_db, monkeypatch):
     unblinded = Study.objects.filter(blinded=False).order_by("code").first() or Study.objects.order_by("code").first()
     # the unblinded UV study: its analysis (Kaplan-Meier, log-rank, dose-response with the links table)
     analysed = Study.objects.filter(unblinded_at__isnull=False).order_by("code").first() or unblinded
-    return {"check": flagged.pk, "study": unblinded.code, "analysed": analysed.code, "deviation": Deviation.objects.order_by("pk").first().pk,
+    blind = Study.objects.filter(blinded=True, unblinded_at__isnull=True).order_by("code").first() or analysed
+    return {"check": flagged.pk, "study": unblinded.code, "analysed": analysed.code, "blind": blind.code, "deviation": Deviation.objects.order_by("pk").first().pk,
             "species": Species.objects.order_by("pk").first().pk,
             # a cohort still in use: its dishes table and the set-up and end forms
             "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk}
@@ -66,6 +67,9 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
             ("tank page (researcher)", "/tanks/LV-03/", True), ("trials list", "/experiments/", True),
             ("study page", f"/experiments/studies/{ids['study']}/", True),
             ("study page (analysis)", f"/experiments/studies/{ids['analysed']}/", True),
+            ("study page (blind, validity form)", f"/experiments/studies/{ids['blind']}/", True),
+            ("methods draft (blind)", f"/experiments/studies/{ids['blind']}/methods/", True),
+            ("methods draft", f"/experiments/studies/{ids['analysed']}/methods/", True),
             ("cohort page", f"/experiments/cohorts/{ids['cohort']}/", True),
             ("cohort history", f"/experiments/cohorts/{ids['cohort']}/history/", True),
             ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),

@@ -84,6 +84,9 @@ URLS = {
     "experiments:study-csv": lambda w: reverse("experiments:study-csv", args=[w.study.code]),
     "experiments:study-chart": lambda w: reverse("experiments:study-chart", args=[w.study.code, "km", "svg"]),
     "experiments:study-chart-csv": lambda w: reverse("experiments:study-chart-csv", args=[w.study.code, "km"]),
+    "experiments:study-methods": lambda w: reverse("experiments:study-methods", args=[w.study.code]),
+    "experiments:study-methods-md": lambda w: reverse("experiments:study-methods-md", args=[w.study.code]),
+    "experiments:study-validity": lambda w: reverse("experiments:study-validity", args=[w.study.code]),
     "experiments:trial-new": lambda w: reverse("experiments:trial-new", args=[w.study.code]),
     "experiments:slot-claim": lambda w: reverse("experiments:slot-claim", args=[w.study.code, 4]),
     "experiments:slot-release": lambda w: reverse("experiments:slot-release", args=[w.study.code, 3]),
@@ -138,6 +141,7 @@ POST_DATA = {
                                         "method": "block",
                                         "observation_window_s": 600, "blinded": "on"},
     "experiments:study-unblind": lambda w: {"reason": "All scored"},
+    "experiments:study-validity": lambda w: {"use": ["ph_band"], "ph_band.low": "6", "ph_band.high": "9"},
     "experiments:trial-new": _trial_post,
     "experiments:slot-claim": lambda w: {},
     "experiments:slot-release": lambda w: {"reason": "Operator away this week"},
@@ -173,6 +177,9 @@ ACCESS = [
     ("experiments:study-csv", "get", READ),  # blinded: conditions only on the reader's own trials
     ("experiments:study-chart", "get", READ),  # blinded: pooled
     ("experiments:study-chart-csv", "get", READ),
+    ("experiments:study-methods", "get", RUN),  # blinded: pooled numbers only
+    ("experiments:study-methods-md", "get", RUN),
+    ("experiments:study-validity", "post", RUN),  # the owner or a manager
     ("experiments:trial-new", "get", RUN),
     ("experiments:trial-new", "post", RUN),
     ("experiments:slot-claim", "post", RUN),
@@ -210,6 +217,7 @@ WRONG_METHODS = [
     ("experiments:dish-new", "get"), ("experiments:dish-end", "get"), ("experiments:dish-void", "get"),
     ("experiments:study-new", "put"), ("experiments:study-detail", "post"), ("experiments:study-unblind", "get"),
     ("experiments:study-csv", "post"), ("experiments:study-chart", "post"), ("experiments:study-chart-csv", "post"),
+    ("experiments:study-methods", "post"), ("experiments:study-methods-md", "post"), ("experiments:study-validity", "get"),
     ("experiments:trial-new", "delete"), ("experiments:slot-claim", "get"), ("experiments:slot-release", "get"),
     ("experiments:trial-detail", "post"), ("experiments:trial-score", "put"),
     ("experiments:trial-set-aside", "get"), ("experiments:attachment-add", "get"), ("experiments:attachment", "post"),

@@ -29,6 +29,7 @@ FORMS = {
     "experiments:dish-void": False,
     "experiments:study-new": False,  # the study code is taken by the first
     "experiments:study-unblind": False,
+    "experiments:study-validity": True,  # saving the same criteria again is another history entry
     "experiments:trial-new": False,  # the slot is taken by the first
     "experiments:slot-claim": False,  # claiming a slot one holds changes nothing
     "experiments:slot-release": False,  # the claim is released by the first
@@ -115,7 +116,8 @@ PAGES = {
     # void the empty dish, set up a dish, end a dish (the cohort's own end waits for its open dishes)
     "experiments:cohort-detail": (lambda w: w.cohort.get_absolute_url(), 3),
     "experiments:study-new": (lambda w: reverse("experiments:study-new"), 1),
-    "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 1),
+    # unblind; declare the validity criteria
+    "experiments:study-detail": (lambda w: w.study.get_absolute_url(), 2),
     # three open slots to claim, two claims to release, the trial form for the slots claimed
     "experiments:trial-new": (lambda w: reverse("experiments:trial-new", args=[w.study.code]), 6),
     # attach, exclude, void, measure images; and the world's two measurements: void each, re-run the failed one
