@@ -310,4 +310,15 @@ def build(kind: str, key: str, period: Period, user) -> Report:
         Section("5a", "exposures-by-dish", "Exposures per dish", exp_summary, sections.COLUMNS["5a"]),
         Section("5b", "exposures", "Every exposure against its protocol's limits", exp_rows, sections.COLUMNS["5b"]),
         Section("6", "corrections", "Corrections and voids", changes(scope, tanks, period, user), sections.COLUMNS["6"]),
-    ])
+    ] + ([Section("7", "validity", "Validity checks of the study", validity(scope), sections.COLUMNS["7"])]
+         if scope.kind == "study" else []))
+
+
+def validity(scope: ReportScope) -> list[dict]:
+    """The study's declared validity criteria judged on its records, as its page shows them (two queries)."""
+    from ..methods_records import validity_for
+
+    study = Study.objects.get(code=scope.key)
+    trials = list(Trial.objects.filter(study=study).select_related("cohort__origin_tank").order_by("pk"))
+    return [{"criterion": r.label, "requirement": r.requirement, "result": r.status, "evidence": r.evidence,
+             "modelled_on": r.guideline} for r in validity_for(study, trials)]

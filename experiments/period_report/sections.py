@@ -289,6 +289,7 @@ COLUMNS = {
     "5a": ["dish", "protocol", "exposures", "over_limit", "with_override"],
     "5b": EXPOSURE_COLUMNS,
     "6": ["when", "who", "record", "action", "reason"],
+    "7": ["criterion", "requirement", "result", "evidence", "modelled_on"],
 }
 
 # What each section counts and how, printed under its heading (the module docstring in words for readers).
@@ -320,6 +321,9 @@ NOTES = {
           "dose or override reason.",
     "6": "Changes with a reason recorded in the period: corrections and voids of husbandry records, corrected, "
          "excluded and voided trials, voided dishes.",
+    "7": "A study's report only: the validity criteria the study declared, each met, not met or cannot tell, "
+         "judged on all the study's trials and its source tanks' checks over the study's own period (as on the "
+         "study page; experiments/validity.py). Reference survival cannot be told while the study is blind.",
 }
 
 # Headings the page shows where the CSV's column name reads badly.

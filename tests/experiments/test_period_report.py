@@ -279,3 +279,21 @@ def test_the_pdf_names_the_manifest_sum_of_the_zip(facility, manager, client):
     client.force_login(manager)
     archive = zipfile.ZipFile(io.BytesIO(client.get(reverse("experiments:period-report-zip"), QUERY).content))
     assert hashlib.sha256(archive.read("MANIFEST")).hexdigest() in _print_html(client)
+
+
+def test_a_study_report_adds_its_validity_checks_as_the_study_page_judges_them(facility, manager):
+    from experiments.methods_records import validity_for
+    from experiments.models import Study
+
+    protocol_ref = _report(manager).section("4").rows[0]["protocol"]
+    code = _report(manager, "protocol", protocol_ref).section("5b").rows[0]["study"]
+    study = Study.objects.get(code=code)
+    study.validity_criteria = [{"kind": "ph_band", "low": 6.0, "high": 8.0}]
+    study.save()
+    [row] = _report(manager, "study", code).section("7").rows
+    [expected] = validity_for(study, list(study.trials.select_related("cohort__origin_tank")))
+    assert row == {"criterion": expected.label, "requirement": expected.requirement, "result": expected.status,
+                   "evidence": expected.evidence, "modelled_on": expected.guideline}
+    assert row["result"] in ("met", "not met", "cannot tell")
+    # Other scopes have no section 7 (validity is a study's own).
+    assert [s.number for s in _report(manager).sections][-1] == "6"
