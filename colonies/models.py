@@ -481,6 +481,14 @@ def tank_url(code: str) -> str:
     return _tank_url_pattern(get_script_prefix(), get_urlconf()).replace(_CODE_SLOT, code)
 
 
+def tank_url_writer():
+    """tank_url for a list: the script prefix and URL configuration looked up once, not per tank (thread-local
+    lookups, 3 ms at 400 tanks)."""
+    pattern = _tank_url_pattern(get_script_prefix(), get_urlconf())
+    safe = _URL_SAFE_CODE.match
+    return lambda code: pattern.replace(_CODE_SLOT, code) if safe(code or "") else tank_url(code)
+
+
 @receiver(setting_changed)
 def _forget_tank_url(*, setting, **kwargs):
     if setting == "ROOT_URLCONF":
