@@ -21,7 +21,7 @@ from .filters import CheckFilter, TankFilter
 from .flags import describe
 from .forms import (CareTargetFormSet, CensusForm, CheckEntryForm, FeedingForm, MeasurementPlanFormSet, ObservedAtForm, ReasonForm,
                     SpeciesForm, WaterChangeForm)
-from .history import history_index, page_entries
+from .history import history_index, history_sources, page_entries
 from .models import Census, Check, DeadRemoval, Deviation, Feeding, Room, Species, Submission, Tank, WaterChange, pk_url_writer, tank_url_writer
 from .idempotency import once_per_submission
 from .round_post import ROWS_FIELD, PayloadError, filled_codes, round_data
@@ -436,8 +436,9 @@ def _flash_check(request, check):
 def tank_history(request, code):
     tank = _get_tank(code)
     # Counted and sliced in the database; only the page's versions (and the ones before them) are loaded.
-    page = Paginator(history_index(tank), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
-    return render(request, "colonies/history.html", {"tank": tank, "entries": page_entries(tank, page.object_list),
+    sources = history_sources(tank)
+    page = Paginator(history_index(tank, sources), HISTORY_PAGE_SIZE).get_page(request.GET.get("page"))
+    return render(request, "colonies/history.html", {"tank": tank, "entries": page_entries(tank, page.object_list, sources),
                                                      "page": page})
 
 

@@ -46,7 +46,7 @@ def test_dates_and_moments_are_written_the_labs_way_in_its_zone(settings):
 
 @pytest.mark.django_db
 @pytest.mark.parametrize("zone", ["UTC", "Europe/Berlin", "America/New_York", "Asia/Kolkata"])
-@pytest.mark.parametrize("name", ["DATETIME_FORMAT", "SHORT_DATETIME_FORMAT", "DATE_FORMAT", "TIME_FORMAT"])
+@pytest.mark.parametrize("name", ["DATETIME_FORMAT", "SHORT_DATETIME_FORMAT", "DATE_FORMAT", "TIME_FORMAT", "d M Y H:i:s"])
 def test_moment_formatter_writes_what_django_date_format_writes(settings, zone, name):
     # Reference: Django's own django.utils.formats.date_format on the moment in the lab's zone; moments
     # over a year at odd hours, across both daylight-saving changes, month and year ends.
