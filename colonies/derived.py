@@ -161,6 +161,10 @@ class RawEquivalent:
     text: str
 
 
+# The latest readings raw_equivalents reads (a page for one tank loads only these: Tank.last_readings).
+EQUIVALENT_INPUTS = ("temp_c", "ph", "salinity")
+
+
 def raw_equivalents(targets: dict, last: Readings, habitat: str) -> dict[str, RawEquivalent]:
     out: dict[str, RawEquivalent] = {}
     temp = last.get("temp_c")

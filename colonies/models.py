@@ -333,10 +333,10 @@ class TankQuerySet(models.QuerySet):
         return self.annotate(last_check_at=Subquery(
             Check.objects.current().filter(tank=OuterRef("pk")).order_by("-observed_at").values("observed_at")[:1]))
 
-    def with_last_readings(self):
-        """Annotate last_<key> with each parameter's most recent non-empty value (one query)."""
+    def with_last_readings(self, keys=None):
+        """Annotate last_<key> with each parameter's (or each of `keys`) most recent non-empty value (one query)."""
         annotations = {}
-        for p in parameters.PARAMETERS:
+        for p in parameters.PARAMETERS if keys is None else [parameters.BY_KEY[key] for key in keys]:
             annotations[f"last_{p.key}"] = Subquery(
                 Check.objects.current()
                 .filter(tank=OuterRef("pk"), **{f"{p.key}__isnull": False})
@@ -438,6 +438,15 @@ class Tank(models.Model):
         """The rack: the position's text before its first comma ("rack 2" of "rack 2, shelf B"), or ""."""
         return self.position.split(",", 1)[0].strip()
 
+    def last_readings(self, keys) -> dict[str, float | None]:
+        """The most recent non-empty value of each parameter in `keys` (of those this tank measures) as
+        {"last_<key>": value}, the names with_last_readings() gives them. One query; none when no key applies."""
+        keys = [p.key for p in self.relevant_parameters() if p.key in keys]
+        if not keys:
+            return {}
+        names = [f"last_{key}" for key in keys]
+        return Tank.objects.filter(pk=self.pk).with_last_readings(keys).values(*names).first() or dict.fromkeys(names)
+
     def due(self, now=None) -> list[dict]:
         """What is due on this tank, from the with_last_events() annotations (no query if annotated)."""
         now = now or timezone.now()
@@ -479,6 +488,25 @@ def tank_url(code: str) -> str:
     if not _URL_SAFE_CODE.match(code or ""):
         return reverse("colonies:tank-detail", args=[code])
     return _tank_url_pattern(get_script_prefix(), get_urlconf()).replace(_CODE_SLOT, code)
+
+
+def tank_url_writer():
+    """tank_url for a list: the script prefix and URL configuration looked up once, not per tank (thread-local
+    lookups, 3 ms at 400 tanks)."""
+    pattern = _tank_url_pattern(get_script_prefix(), get_urlconf())
+    safe = _URL_SAFE_CODE.match
+    return lambda code: pattern.replace(_CODE_SLOT, code) if safe(code or "") else tank_url(code)
+
+
+_PK_SLOT = 987654321012  # a pk no table reaches, replaced by the real one
+
+
+def pk_url_writer(viewname: str):
+    """pk -> the address of `viewname` for that pk, from one reverse(): for a page that links many records (the tank
+    page's 30 checks took 2 ms of reverse() calls from its template)."""
+    pattern = reverse(viewname, args=[_PK_SLOT])
+    slot = str(_PK_SLOT)
+    return lambda pk: pattern.replace(slot, str(int(pk)))
 
 
 @receiver(setting_changed)

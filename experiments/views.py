@@ -17,7 +17,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from colonies.export_stream import csv_response
 from colonies.exports import frame_chunks
-from colonies.models import REASON_MAX_CHARS, Room
+from colonies.models import REASON_MAX_CHARS, Room, pk_url_writer
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
@@ -266,7 +266,7 @@ def _cohort_page(request, cohort, end_form=None, dish_form=None, dish_end_form=N
     trials = list(cohort.trials.counting().select_related(*TRIAL_RELATED).order_by("dish__number", "run_at", "pk"))
     dishes = list(cohort.dishes.select_related("set_up_by", "ended_by", "voided_by", "returned_to"))
     protocol = cohort.protocol
-    rows = reports.ledger_rows(trials, trials, request.user)
+    rows = _with_links(reports.ledger_rows(trials, trials, request.user))
     dish_rows = reports.dish_rows(dishes, trials, protocol, request.user)
     free = cohort.size - sum(d.animals for d in dishes if not d.is_voided)
     open_dishes = [d for d in dishes if d.is_open]
@@ -800,8 +800,14 @@ def attachment(request, pk):
 # ---------------------------------------------------------------------------------------------
 # Exposure ledger (managers)
 # ---------------------------------------------------------------------------------------------
+# What ledger_rows reads of an exposure: not who ran or scored it (their ids are enough), nor the study's
+# allocation or the trial's clusters (JSON the ledger never shows): ~60 fewer instances and JSON reads a page.
+LEDGER_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "override__recorded_by")
+
+
 def _ledger_filter(request):
-    qs = Trial.objects.counting().select_related(*TRIAL_RELATED).order_by("cohort_id", "dish__number", "run_at", "pk")
+    qs = (Trial.objects.counting().select_related(*LEDGER_RELATED).defer("clusters", "study__allocation")
+          .order_by("cohort_id", "dish__number", "run_at", "pk"))
     return LedgerFilter(request.GET or None, queryset=qs, request=request)
 
 
@@ -812,7 +818,19 @@ def _ledger(request):
     ledger_filter = _ledger_filter(request)
     shown = list(ledger_filter.qs[:LEDGER_PAGE_ROWS])
     every = reports.every_exposure({t.dish_id for t in shown})
-    return ledger_filter, reports.ledger_rows(shown, every, request.user)
+    return ledger_filter, _with_links(reports.ledger_rows(shown, every, request.user))
+
+
+def _with_links(rows: list[dict]) -> list[dict]:
+    """Each exposure row's links to its cohort, dish and trial (experiments/_exposure_rows.html), from one reverse()
+    each rather than three per row from the template (96 reverse() calls, ~4 ms, on the ledger at 400 tanks)."""
+    cohort_url, trial_url = pk_url_writer("experiments:cohort-detail"), pk_url_writer("experiments:trial-detail")
+    for r in rows:
+        trial = r["trial"]
+        r["cohort_url"] = cohort_url(trial.cohort_id)
+        r["dish_url"] = f"{r['cohort_url']}#dish-{trial.dish.number}"  # as Dish.get_absolute_url
+        r["trial_url"] = trial_url(trial.pk)
+    return rows
 
 
 @require_GET

@@ -8,10 +8,10 @@ from zoneinfo import ZoneInfo
 
 import pytest
 from django.urls import reverse
-from django.utils import timezone
+from django.utils import formats, timezone
 
 from tests.factories import make_room, make_tank
-from vermilog.lab_time import lab_date, lab_moment, zone_label
+from vermilog.lab_time import lab_date, lab_moment, moment_formatter, zone_label
 
 BASE_DIR = Path(__file__).resolve().parent.parent
 
@@ -45,6 +45,30 @@ def test_dates_and_moments_are_written_the_labs_way_in_its_zone(settings):
 
 
 @pytest.mark.django_db
+@pytest.mark.parametrize("zone", ["UTC", "Europe/Berlin", "America/New_York", "Asia/Kolkata"])
+@pytest.mark.parametrize("name", ["DATETIME_FORMAT", "SHORT_DATETIME_FORMAT", "DATE_FORMAT", "TIME_FORMAT", "d M Y H:i:s"])
+def test_moment_formatter_writes_what_django_date_format_writes(settings, zone, name):
+    # Reference: Django's own django.utils.formats.date_format on the moment in the lab's zone; moments
+    # over a year at odd hours, across both daylight-saving changes, month and year ends.
+    settings.TIME_ZONE = zone
+    write = moment_formatter(name)
+    start = datetime(2025, 12, 31, 22, 59, tzinfo=ZoneInfo("UTC"))
+    for step in range(0, 400 * 24, 7):
+        moment = start + timezone.timedelta(hours=step, minutes=step % 60)
+        assert write(moment) == formats.date_format(timezone.localtime(moment), name), moment
+
+
+def test_moment_formatter_falls_back_to_django_for_other_format_characters(monkeypatch):
+    original = formats.get_format
+    # weekday name and 12-hour time: not in the formatter's own table
+    monkeypatch.setattr(formats, "get_format", lambda name, *args, **kwargs:
+                        "D, d M Y P" if name == "DATETIME_FORMAT" else original(name, *args, **kwargs))
+    moment = datetime(2026, 7, 15, 13, 5, tzinfo=ZoneInfo("UTC"))
+
+    # from Django's date format reference: D = "Wed", P = "1:05 p.m."
+    assert moment_formatter("DATETIME_FORMAT")(moment) == "Wed, 15 Jul 2026 1:05 p.m."
+
+
 def test_sign_in_page_and_signed_in_pages_name_the_same_zone(client, technician, settings):
     settings.TIME_ZONE = "America/Chicago"
     anonymous = _footer(client.get(reverse("login")))
