@@ -90,7 +90,7 @@ ROLE_PERMISSIONS: dict[str, list[str]] = {
         *_perms("experiments", "view add change", "protocol", "allowance"),
         # records: read here, entered and corrected in the app
         *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "deadremoval", "split", "splitpart",
-                "deviation"),
+                "deviation", "signature"),
         *_perms("experiments", "view", "booking", "cohort", "dish", "study", "trial", "override", "attachment",
                 "slotclaim"),
     ],
