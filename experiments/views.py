@@ -29,7 +29,8 @@ from .models import Attachment, Booking, Cohort, Dish, Protocol, SlotClaim, Stim
 
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
-TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "run_by", "scored_by", "override__recorded_by")
+TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "protocol_version", "run_by", "scored_by",
+                 "override__recorded_by")
 
 
 def _error_text(error) -> str:

@@ -421,7 +421,7 @@ def test_ledger_stimulus_filter_does_not_pick_out_blinded_trials(client, researc
     assert [r["trial"] for r in everything.context["rows"]] == [trial]  # the exposure is in the ledger...
     by_kind = client.get(reverse("experiments:ledger"), {"kind": trial.kind})
     assert by_kind.context["rows"] == []  # ...but filtering by its stimulus would reveal the condition
-    services.unblind(user=study.owner, study=study, reason="analysis done")
+    services.unblind(user=study.owner, study=study, reason="analysis done", password="pw")
     by_kind = client.get(reverse("experiments:ledger"), {"kind": trial.kind})
     assert [r["trial"] for r in by_kind.context["rows"]] == [trial]
 
