@@ -19,6 +19,7 @@ from django.utils import timezone
 from colonies.models import Signature
 from colonies.roles import MANAGER, has_role
 from colonies.signatures import sign
+from vermilog.lab_time import lab_date
 
 from .models import ALLOWANCE_FIELDS, VERSION_FIELDS, Allowance, Protocol, ProtocolVersion, allowance_values
 
@@ -159,3 +160,16 @@ def expiring(today, days: int = EXPIRY_NOTICE_DAYS) -> list[Protocol]:
                                         expires_on__lte=today + timedelta(days=days))
                 .order_by("expires_on", "reference"))
 
+
+
+def today_notices(today) -> list:
+    """Today's notices (colonies/today_hooks.py): approved protocols expiring within EXPIRY_NOTICE_DAYS."""
+    from colonies.today_hooks import Notice
+
+    out = []
+    for p in expiring(today):
+        days = (p.expires_on - today).days
+        when = "today" if days == 0 else f"in {days} day{'s' if days != 1 else ''}"
+        out.append(Notice(f"Protocol {p.reference} expires {when} ({lab_date(p.expires_on)})", p.get_absolute_url(),
+                          p.title))
+    return out

@@ -1,12 +1,17 @@
 from django.urls import path
 
-from . import measurement_views, views
+from . import measurement_views, protocol_views, views
 
 app_name = "experiments"
 
 urlpatterns = [
     path("", views.index, name="index"),
-    path("protocols/<int:pk>/", views.protocol_detail, name="protocol-detail"),
+    path("protocols/", protocol_views.protocol_list, name="protocol-list"),
+    path("protocols/new/", protocol_views.protocol_new, name="protocol-new"),
+    path("protocols/<int:pk>/", protocol_views.protocol_detail, name="protocol-detail"),
+    path("protocols/<int:pk>/amend/", protocol_views.protocol_amend, name="protocol-amend"),
+    path("protocols/<int:pk>/approve/", protocol_views.protocol_approve, name="protocol-approve"),
+    path("protocols/<int:pk>/suspend/", protocol_views.protocol_suspend, name="protocol-suspend"),
     path("bookings/new/", views.booking_new, name="booking-new"),
     path("bookings/calendar/", views.calendar, name="calendar"),
     path("bookings/<int:pk>/", views.booking_detail, name="booking-detail"),
