@@ -11,7 +11,8 @@ from django.urls import get_resolver, reverse
 
 from experiments import models
 from experiments.models import Cohort
-from tests.experiments.builders import days_ago, make_cohort, make_study, record, today
+from tests.experiments import protocol_posts
+from tests.experiments.builders import days_ago, make_cohort, make_protocol, make_study, record, today
 from tests.experiments.dish_pictures import png, ring
 
 READ = {"technician", "researcher", "manager"}
@@ -44,9 +45,10 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     done = models.ImageMeasurement.objects.create(**measured, frames=frames, frames_done=1, status="done",
                                                   dispersal_time_s=None, censored=True, finished_at=days_ago(1))
     failed = models.ImageMeasurement.objects.create(**measured, status="failed", error="unreadable")
+    draft = make_protocol(status=models.Protocol.Status.DRAFT, approved_on=None)  # to approve
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
                            attachment=attachment, claims=claims, measurement=done, failed=failed, dish=dish,
-                           empty_dish=empty_dish, spare=spare)
+                           empty_dish=empty_dish, spare=spare, draft=draft)
 
 
 def _hand_over_slot_2(w, user):
@@ -62,6 +64,11 @@ PREPARE = {("experiments:trial-new", "post", "manager"): _hand_over_slot_2}
 URLS = {
     "experiments:index": lambda w: reverse("experiments:index"),
     "experiments:protocol-detail": lambda w: reverse("experiments:protocol-detail", args=[w.protocol.pk]),
+    "experiments:protocol-list": lambda w: reverse("experiments:protocol-list"),
+    "experiments:protocol-new": lambda w: reverse("experiments:protocol-new"),
+    "experiments:protocol-amend": lambda w: reverse("experiments:protocol-amend", args=[w.protocol.pk]),
+    "experiments:protocol-approve": lambda w: reverse("experiments:protocol-approve", args=[w.draft.pk]),
+    "experiments:protocol-suspend": lambda w: reverse("experiments:protocol-suspend", args=[w.protocol.pk]),
     "experiments:booking-new": lambda w: reverse("experiments:booking-new"),
     "experiments:calendar": lambda w: reverse("experiments:calendar"),
     "experiments:booking-detail": lambda w: reverse("experiments:booking-detail", args=[w.booking.pk]),
@@ -104,6 +111,10 @@ def _trial_post(w):
 
 
 POST_DATA = {
+    "experiments:protocol-new": lambda w: protocol_posts.new_protocol(),
+    "experiments:protocol-amend": lambda w: protocol_posts.amend_protocol(w.protocol, {"max_exposures_per_group": 2}),
+    "experiments:protocol-approve": lambda w: {"approved_on": today().isoformat(), "password": "pw"},
+    "experiments:protocol-suspend": lambda w: {"reason": "Welfare review pending", "password": "pw"},
     "experiments:booking-new": lambda w: {"protocol": w.protocol.pk, "species": w.tank.species_id, "animals": 5,
                                           "needed_on": today().isoformat(), "tank": w.tank.pk, "action": "book"},
     "experiments:booking-cancel": lambda w: {"reason": "Not needed"},
@@ -117,7 +128,7 @@ POST_DATA = {
                                         "conditions": "a\nb", "reference_condition": "a", "replicates": 2,
                                         "method": "block",
                                         "observation_window_s": 600, "blinded": "on"},
-    "experiments:study-unblind": lambda w: {"reason": "All scored"},
+    "experiments:study-unblind": lambda w: {"reason": "All scored", "password": "pw"},
     "experiments:trial-new": _trial_post,
     "experiments:slot-claim": lambda w: {},
     "experiments:slot-release": lambda w: {"reason": "Operator away this week"},
@@ -133,6 +144,13 @@ POST_DATA = {
 ACCESS = [
     ("experiments:index", "get", READ),
     ("experiments:protocol-detail", "get", READ),
+    ("experiments:protocol-list", "get", RUN),
+    ("experiments:protocol-new", "get", MANAGE),
+    ("experiments:protocol-new", "post", MANAGE),
+    ("experiments:protocol-amend", "get", MANAGE),
+    ("experiments:protocol-amend", "post", MANAGE),
+    ("experiments:protocol-approve", "post", MANAGE),
+    ("experiments:protocol-suspend", "post", MANAGE),
     ("experiments:booking-new", "get", RUN),
     ("experiments:booking-new", "post", RUN),
     ("experiments:calendar", "get", READ),
@@ -172,7 +190,9 @@ ACCESS = [
 ]
 
 WRONG_METHODS = [
-    ("experiments:index", "post"), ("experiments:protocol-detail", "post"), ("experiments:booking-new", "put"),
+    ("experiments:index", "post"), ("experiments:protocol-detail", "post"), ("experiments:protocol-list", "post"),
+    ("experiments:protocol-new", "put"), ("experiments:protocol-amend", "delete"), ("experiments:protocol-approve", "get"),
+    ("experiments:protocol-suspend", "get"), ("experiments:booking-new", "put"),
     ("experiments:calendar", "post"), ("experiments:booking-detail", "post"), ("experiments:booking-cancel", "get"),
     ("experiments:booking-draw", "get"), ("experiments:cohort-detail", "post"), ("experiments:cohort-end", "get"),
     ("experiments:dish-new", "get"), ("experiments:dish-end", "get"), ("experiments:dish-void", "get"),
@@ -189,7 +209,7 @@ WRONG_METHODS = [
 
 def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
-    return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
+    return tuple(m.history.count() for m in (models.Protocol, models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
                                              models.Override, models.Attachment, models.SlotClaim,
                                              models.ImageMeasurement))
 

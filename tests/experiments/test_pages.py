@@ -280,7 +280,7 @@ def test_blinded_study_shows_codes_not_conditions_to_all_but_the_operator_until_
     client.force_login(manager)
     assert trial.condition in page_text(client.get(trial.get_absolute_url()))
     client.force_login(researcher)
-    client.post(reverse("experiments:study-unblind", args=[study.code]), {"reason": "All dishes scored"})
+    client.post(reverse("experiments:study-unblind", args=[study.code]), {"reason": "All dishes scored", "password": "pw"})
     assert trial.condition in page_text(client.get(study.get_absolute_url()))
 
 
