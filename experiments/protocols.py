@@ -93,6 +93,7 @@ def amend(*, user, protocol: Protocol, values: dict, allowances: list[dict], rea
         if protocol.status == Protocol.Status.CLOSED:
             raise Refused(f"Protocol {protocol.reference} is closed; it cannot be amended.")
         values = {k: v for k, v in values.items() if k != "reference"}  # the reference names the protocol
+        _first_version(protocol, now)  # the terms before this amendment, if never written
         _apply(protocol, values, allowances, user, f"Amended: {reason}")
         version = _snapshot(protocol, user=user, at=now, reason=reason, approval_reference=approval_reference)
         if protocol.signatures.exists():
@@ -111,8 +112,7 @@ def approve(*, user, protocol: Protocol, password: str, approved_on=None) -> Pro
         protocol.approved_on = approved_on or protocol.approved_on or timezone.localdate()
         protocol.full_clean()
         _save(protocol, user, "Approved (signed)")
-        if not protocol.versions.exists():
-            _snapshot(protocol, user=user, at=timezone.now(), reason="Terms at approval")
+        _first_version(protocol, timezone.now())
         sign(user=user, password=password, meaning=Signature.Meaning.APPROVED, obj=protocol)
     return protocol
 
@@ -146,11 +146,16 @@ def version_at(protocol: Protocol, at: datetime) -> ProtocolVersion:
     if found is not None:
         return found
     with transaction.atomic():
-        locked = Protocol.objects.select_for_update().get(pk=protocol.pk)
-        found = locked.versions.order_by("number").first()
-        if found is None:
-            start = timezone.make_aware(datetime.combine(locked.starts_on, time.min))
-            found = _snapshot(locked, user=None, at=min(start, at), reason="Terms as first used")
+        return _first_version(Protocol.objects.select_for_update().get(pk=protocol.pk), at)
+
+
+def _first_version(locked: Protocol, at: datetime) -> ProtocolVersion:
+    """Version 1 of a protocol saved without one, from its terms as saved, in force from the start of its first
+    day (or `at`, if earlier); the existing first version otherwise. Call with the protocol row locked."""
+    found = locked.versions.order_by("number").first()
+    if found is None:
+        start = timezone.make_aware(datetime.combine(locked.starts_on, time.min))
+        found = _snapshot(locked, user=None, at=min(start, at), reason="The terms as they stood when first used")
     return found
 
 
