@@ -47,7 +47,7 @@ def _at(day, hour, minute, tz):
     return timezone.make_aware(datetime.combine(day, time(hour, minute)), tz)
 
 
-def _protocols(manager, today):
+def _protocols(manager, today, password):
     def protocol(reference, allowances, **fields):
         p = Protocol(reference=reference, **fields)
         p._history_user, p._change_reason = manager, "Entered from the approval letter"
@@ -59,7 +59,7 @@ def _protocols(manager, today):
         start = timezone.make_aware(datetime.combine(p.starts_on, time(9, 0)))
         protocols.version_at(p, start)  # version 1, in force from its first day
         if p.status == Protocol.Status.APPROVED:  # approved in the app, signed on the day of the approval
-            sign(user=manager, password=DEMO_PASSWORD, meaning=Signature.Meaning.APPROVED, obj=p)
+            sign(user=manager, password=password, meaning=Signature.Meaning.APPROVED, obj=p)
             p.signatures.update(signed_at=timezone.make_aware(datetime.combine(p.approved_on, time(11, 30))))
         return p
 
@@ -111,12 +111,13 @@ def _clusters(rng, dispersed_at: float | None, animals: int) -> list[dict]:
 
 
 @transaction.atomic
-def load(*, seed: int, now, users: dict) -> dict:
+def load(*, seed: int, now, users: dict, password: str = DEMO_PASSWORD) -> dict:
+    """`password`: the manager's and the researcher's, to sign approvals and the unblinding as people do."""
     rng = random.Random(seed)
     tz = timezone.get_current_timezone()
     today = timezone.localdate(now)
     ravi, manager = users["researcher"][0], users["manager"][0]
-    main, _old, _draft = _protocols(manager, today)
+    main, _old, _draft = _protocols(manager, today, password)
     tanks = list(Tank.objects.filter(code__in=[f"LV-{i:02d}" for i in range(1, 11)]).order_by("code"))
     if len(tanks) < 10:
         raise ValueError("The trials demo needs tanks LV-01..LV-10 from the colonies demo.")
@@ -189,7 +190,7 @@ def load(*, seed: int, now, users: dict) -> dict:
     # Photo series of some dishes, measured before unblinding (experiments/demo_imaging.py).
     image_series = demo_imaging.add_series(study=study, user=ravi, seed=seed)
     unblinded_at = _at(start + timedelta(days=5), 16, 0, tz)
-    services.unblind(user=ravi, study=study, at=unblinded_at, password=DEMO_PASSWORD,
+    services.unblind(user=ravi, study=study, at=unblinded_at, password=password,
                      reason="All 30 trials scored; primary analysis as planned.")
     study.signatures.update(signed_at=unblinded_at)  # signed when it happened in the scenario
 

@@ -12,6 +12,7 @@ from simple_history.utils import bulk_create_with_history
 from colonies import derived
 from colonies.deviations import severity_outside
 from colonies.models import Deviation, Tank
+from colonies.benchmark.synthetic import PASSWORD
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 
 ACTIONS = {  # invented corrective actions, by cause
@@ -139,7 +140,7 @@ def trials(rng, f, seed: int, now) -> dict:
     lv = set(Tank.objects.filter(code__in=[f"LV-{i:02d}" for i in range(1, 11)]).values_list("code", flat=True))
     if len(lv) == 10:
         trials_demo.load(seed=seed, now=now, users={k: v for k, v in f.users.items()
-                                                    if k in (RESEARCHER, MANAGER)})
+                                                    if k in (RESEARCHER, MANAGER)}, password=PASSWORD)
     manager, researchers = f.users[MANAGER][0], f.users[RESEARCHER]
     protocol = _protocol(f, manager)
     days = (f.today - f.start).days

@@ -41,7 +41,7 @@ def test_the_model_refuses_a_technician_too(technician, override_deviation):
 
 def test_a_manager_closes_the_override_deviation(client, manager, override_deviation):
     client.force_login(manager)
-    assert "Close deviation" in client.get(override_deviation.get_absolute_url()).content.decode()
+    assert "Sign and close deviation" in client.get(override_deviation.get_absolute_url()).content.decode()
     response = client.post(reverse("colonies:deviation-close", args=[override_deviation.pk]),
                            {"corrective_action": "Reviewed with the welfare officer; animals retired", "password": "pw"})
     assert response.status_code == 302

@@ -328,12 +328,12 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
     booking = Booking.objects.first()
     # Counts include the session, the user and the role lookup.
     pages = {
-        reverse("experiments:index"): 8, study.get_absolute_url(): 6,  # 6: with the image-agreement query
+        reverse("experiments:index"): 8, study.get_absolute_url(): 7,  # 7: with image agreement and signatures
         reverse("experiments:study-csv", args=[study.code]): 5,
         reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
         reverse("experiments:ledger"): 7, reverse("experiments:ledger-csv"): 5,
         reverse("experiments:calendar"): 6, cohort.get_absolute_url(): 7,
-        booking.get_absolute_url(): 8, protocol.get_absolute_url(): 7,
+        booking.get_absolute_url(): 8, protocol.get_absolute_url(): 9,  # 9: with its versions and signatures
     }
     for url, limit in pages.items():
         with django_assert_max_num_queries(limit):
@@ -351,7 +351,7 @@ def test_blinded_page_query_counts_do_not_grow_with_the_data(client, manager, re
     study.blinded = True
     study.save()
     client.force_login(manager)
-    pages = {study.get_absolute_url(): 6,  # 6: the image-vs-scorer agreement reads the measurements
+    pages = {study.get_absolute_url(): 7,  # 7: the image-vs-scorer agreement reads the measurements; signatures
              reverse("experiments:study-csv", args=[study.code]): 5,
              reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
              reverse("experiments:study-chart-csv", args=[study.code, "km"]): 5,
@@ -372,13 +372,14 @@ def test_booking_form_names_an_impossible_number(client, researcher, protocol, t
     assert "Animals 0 is not possible: allowed range 1–100000." in page_text(response)
 
 
-def test_back_office_lists_and_adds_protocols_but_deletes_nothing(client, superuser, researcher, bench):
+def test_back_office_lists_protocols_but_adds_and_deletes_nothing(client, superuser, researcher, bench):
     cohort, study = bench
     record(study, cohort, researcher, at=days_ago(9))
     client.force_login(superuser)
     for model in ("protocol", "booking", "cohort", "dish", "study", "trial", "override", "attachment"):
         assert client.get(reverse(f"admin:experiments_{model}_changelist")).status_code == 200
-    assert client.get(reverse("admin:experiments_protocol_add")).status_code == 200
+    # Protocols are entered, amended and approved (signed) in the app's pages: the back office only shows them.
+    assert client.get(reverse("admin:experiments_protocol_add")).status_code == 403
     assert client.get(reverse("admin:experiments_protocol_delete", args=[study.protocol_id])).status_code == 403
 
 
