@@ -98,7 +98,7 @@ def test_suspending_is_signed_and_stops_new_work(client, manager):
     protocol.refresh_from_db()
     assert protocol.status == Protocol.Status.SUSPENDED
     assert protocol.signatures.get().meaning == Signature.Meaning.SUSPENDED
-    assert "Suspended" in protocol.problem(timezone.localdate())
+    assert "is suspended, not approved" in protocol.problem(timezone.localdate())
     assert "meaning: suspended" in page_text(client.get(protocol.get_absolute_url()))
 
 
