@@ -22,7 +22,9 @@ class ProtocolForm(NamedErrorsMixin, forms.ModelForm):
         model = Protocol
         fields = ["reference", *TERM_FIELDS]
         widgets = {"starts_on": DATE, "expires_on": DATE, "notes": forms.Textarea(attrs={"rows": 3})}
-        labels = {"approver": "Approval body and approver"}
+        labels = {"approver": "Approval body and approver", "max_animals_per_trial": "Most animals per trial",
+                  "max_exposures_per_group": "Most exposures per dish", "min_rest_hours": "Least rest between exposures, h",
+                  "max_cumulative_dose_mj_cm2": "Most cumulative light dose per dish, mJ/cm²"}
 
     def __init__(self, *args, amending: bool = False, **kwargs):
         super().__init__(*args, **kwargs)
@@ -35,6 +37,14 @@ class AllowanceForm(NamedErrorsMixin, forms.ModelForm):
         model = Allowance
         fields = ALLOWANCE_FIELDS
         widgets = {"notes": forms.Textarea(attrs={"rows": 2})}
+        labels = {"kind": "Stimulus type", "wavelength_min_nm": "Shortest wavelength, nm",
+                  "wavelength_max_nm": "Longest wavelength, nm", "max_irradiance_mw_cm2": "Most irradiance, mW/cm²",
+                  "max_duration_s": "Longest exposure, s", "max_dose_mj_cm2": "Most dose per exposure, mJ/cm²",
+                  "max_voltage_v": "Most voltage, V", "max_field_v_cm": "Most field strength, V/cm",
+                  "max_pulse_width_ms": "Longest pulse, ms", "max_pulse_count": "Most pulses",
+                  "max_temp_step_c": "Largest temperature step, °C", "max_temp_rate_c_min": "Fastest ramp, °C/min",
+                  "max_concentration_um": "Highest concentration, µM", "substance": "Substance (chemical)",
+                  "notes": "Notes (mechanical: what is approved)"}
 
     def __init__(self, *args, **kwargs):
         super().__init__(*args, **kwargs)

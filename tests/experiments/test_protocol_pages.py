@@ -11,6 +11,7 @@ from django.utils import timezone
 from colonies.models import Signature
 from experiments import protocols
 from experiments.models import Allowance, Protocol, ProtocolVersion
+from experiments.validators import outside_message
 from tests.experiments import protocol_posts
 from tests.experiments.builders import UV, make_protocol
 from tests.factories import page_text
@@ -58,7 +59,8 @@ def test_an_impossible_maximum_is_refused_naming_the_field_and_nothing_is_saved(
                            protocol_posts.new_protocol(allowances=[BLUE], max_animals_per_trial=0))
 
     assert response.status_code == 400
-    assert "Max animals per trial" in page_text(response) or "animals" in str(response.context["form"].errors)
+    assert response.context["form"].errors["max_animals_per_trial"] == [outside_message("animals", 0)]
+    assert "Most animals per trial" in page_text(response)
     assert _saved() == before
 
 
