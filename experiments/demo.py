@@ -90,7 +90,8 @@ def _protocols(manager, today, password):
     protocol(  # shows on Today: it expires within 30 days
         "QAW-2025-019", [{"kind": Stimulus.LIGHT, "wavelength_min_nm": 450, "wavelength_max_nm": 650,
                           "max_irradiance_mw_cm2": 2.0, "max_duration_s": 60}],
-        title="White-light avoidance in juvenile cultures", approver="Dr Halvard Pennick, Quillmoor animal welfare body",
+        title="White-light avoidance in juvenile cultures",
+        approver="Dr Halvard Pennick, Quillmoor animal welfare body",
         approved_on=today - timedelta(days=340), starts_on=today - timedelta(days=330),
         expires_on=today + timedelta(days=18), status=Protocol.Status.APPROVED, max_animals_per_trial=10,
         max_exposures_per_group=2, min_rest_hours=24)

@@ -23,7 +23,8 @@ class ProtocolForm(NamedErrorsMixin, forms.ModelForm):
         fields = ["reference", *TERM_FIELDS]
         widgets = {"starts_on": DATE, "expires_on": DATE, "notes": forms.Textarea(attrs={"rows": 3})}
         labels = {"approver": "Approval body and approver", "max_animals_per_trial": "Most animals per trial",
-                  "max_exposures_per_group": "Most exposures per dish", "min_rest_hours": "Least rest between exposures, h",
+                  "max_exposures_per_group": "Most exposures per dish",
+                  "min_rest_hours": "Least rest between exposures, h",
                   "max_cumulative_dose_mj_cm2": "Most cumulative light dose per dish, mJ/cm²"}
 
     def __init__(self, *args, amending: bool = False, **kwargs):

@@ -3,7 +3,6 @@ approve and suspend (experiments/protocols.py writes; approving, suspending and 
 protocol are signed)."""
 from django.contrib import messages
 from django.core.exceptions import ValidationError
-from django.db.models import Prefetch
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import timezone
 from django.views.decorators.http import require_GET, require_http_methods, require_POST
@@ -15,7 +14,7 @@ from colonies.signature_forms import SigningForm
 from colonies.signatures import signatures_for
 
 from . import protocols
-from .models import Protocol, ProtocolVersion
+from .models import Protocol
 from .protocol_forms import (TERM_FIELDS, AmendForm, ApproveForm, ProtocolForm, SuspendForm, allowance_formset,
                              allowance_values)
 

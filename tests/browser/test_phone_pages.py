@@ -34,7 +34,7 @@ def demo_lab(transactional_db, monkeypatch):
 
     from colonies import demo
     from colonies.models import Check, Deviation, Species
-    from experiments.models import Cohort, Study
+    from experiments.models import Cohort, Protocol, Study
 
     monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
     call_command("load_demo", "--seed", "7", stdout=open("/dev/null", "w"))
@@ -47,7 +47,10 @@ def demo_lab(transactional_db, monkeypatch):
     return {"check": flagged.pk, "study": unblinded.code, "analysed": analysed.code, "deviation": Deviation.objects.order_by("pk").first().pk,
             "species": Species.objects.order_by("pk").first().pk,
             # a cohort still in use: its dishes table and the set-up and end forms
-            "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk}
+            "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk,
+            # a signed protocol: signature block, versions, the suspend form
+            "protocol": Protocol.objects.filter(signatures__isnull=False).order_by("pk").first().pk,
+            "closed_deviation": Deviation.objects.filter(status="closed").order_by("pk").first().pk}
 
 
 def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
@@ -66,10 +69,14 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
             ("study page (analysis)", f"/experiments/studies/{ids['analysed']}/", True),
             ("cohort page", f"/experiments/cohorts/{ids['cohort']}/", True),
             ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),
+            ("protocol list", "/experiments/protocols/", True),
         ],
         "morwen": [  # manager
             ("deviation register", "/deviations/", True), ("exposure ledger", "/experiments/ledger/", True),
             ("care profile form", f"/species/{ids['species']}/edit/", True),
+            ("protocol page", f"/experiments/protocols/{ids['protocol']}/", True),
+            ("protocol amend", f"/experiments/protocols/{ids['protocol']}/amend/", True),
+            ("signed deviation", f"/deviations/{ids['closed_deviation']}/", True),
         ],
     }
 

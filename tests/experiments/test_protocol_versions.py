@@ -35,7 +35,8 @@ def _amend(protocol, manager, **kwargs):
 
 @pytest.fixture
 def setting(db, researcher, manager):
-    protocol = make_protocol()  # UV ≤ 5 mW/cm², ≤ 100 mJ/cm² per exposure, ≤ 150 mJ/cm² per dish, 3 exposures, 20 h rest
+    # UV ≤ 5 mW/cm², ≤ 100 mJ/cm² per exposure, ≤ 150 mJ/cm² per dish, 3 exposures, 20 h rest
+    protocol = make_protocol()
     tank = make_stocked_tank(user=researcher)
     cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, animals=30, at=days_ago(6))
     study = make_study(user=researcher, protocol=protocol, replicates=3)

@@ -42,7 +42,8 @@ def test_unblinding_is_signed_and_shown_and_a_later_change_of_an_outcome_is_dete
     client.force_login(researcher)
     assert "Your password" in page_text(client.get(blind_study.get_absolute_url()))
 
-    client.post(reverse("experiments:study-unblind", args=[blind_study.code]), {"reason": "All scored", "password": "pw"})
+    client.post(reverse("experiments:study-unblind", args=[blind_study.code]),
+                {"reason": "All scored", "password": "pw"})
 
     blind_study.refresh_from_db()
     assert not blind_study.is_blind and blind_study.is_locked
