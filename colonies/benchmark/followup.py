@@ -12,7 +12,6 @@ from simple_history.utils import bulk_create_with_history
 from colonies import derived
 from colonies.deviations import severity_outside
 from colonies.models import Deviation, Tank
-from colonies.benchmark.synthetic import PASSWORD
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN
 
 ACTIONS = {  # invented corrective actions, by cause
@@ -136,6 +135,8 @@ def trials(rng, f, seed: int, now) -> dict:
     """The demo's protocols, cohorts and two studies (if LV-01..LV-10 exist), then bulk bookings."""
     from experiments import demo as trials_demo
     from experiments.models import Booking, Cohort, Study, Trial
+
+    from .synthetic import PASSWORD  # synthetic imports this module; its users sign the demo's approvals
     counts = {}
     lv = set(Tank.objects.filter(code__in=[f"LV-{i:02d}" for i in range(1, 11)]).values_list("code", flat=True))
     if len(lv) == 10:
