@@ -507,6 +507,24 @@ def unblind(*, user, study: Study, reason: str, password: str, at: datetime | No
         return study
 
 
+def lock_outcomes(*, user, study: Study, password: str, at: datetime | None = None) -> Study:
+    """The owner or a manager locks the outcomes of a study that is not blinded (a blinded one is locked by
+    unblinding), signed ("outcomes locked"): no trials, scores or exclusions after it; late outcomes
+    (LATE_OUTCOME_FIELDS) stay recordable, as after unblinding."""
+    if not may_unblind(user, study):
+        raise PermissionDenied("Only the study's owner or a manager may lock its outcomes.")
+    with transaction.atomic():
+        study = Study.objects.select_for_update().get(pk=study.pk)
+        if study.is_locked:
+            raise Refused(f"Study {study.code} has locked outcomes already.")
+        if study.is_blind:
+            raise Refused(f"Study {study.code} is blinded: its outcomes are locked when it is unblinded.")
+        study.outcomes_locked_at = at or timezone.now()
+        _save(study, user, "Outcomes locked (signed)")
+        sign(user=user, password=password, meaning=Signature.Meaning.LOCKED, obj=study)
+        return study
+
+
 # ---------------------------------------------------------------------------------------------
 # Claims: "I will run slot N"
 # ---------------------------------------------------------------------------------------------

@@ -25,6 +25,7 @@ urlpatterns = [
     path("studies/new/", views.study_new, name="study-new"),
     path("studies/<slug:code>/", views.study_detail, name="study-detail"),
     path("studies/<slug:code>/unblind/", views.study_unblind, name="study-unblind"),
+    path("studies/<slug:code>/lock/", views.study_lock, name="study-lock"),
     path("studies/<slug:code>/trials.csv", views.study_csv, name="study-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.csv", views.study_chart_csv, name="study-chart-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.<slug:fmt>", views.study_chart, name="study-chart"),

@@ -408,6 +408,9 @@ def study_detail(request, code):
            "is_owner": request.user.pk == study.owner_id,
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
            "signing": SigningForm(meaning=Signature.Meaning.UNBLINDED), "signatures": signatures_for(study),
+           "may_lock": (not blind and not study.is_locked and has_role(request.user, *RUN)
+                        and services.may_unblind(request.user, study)),
+           "lock_signing": SigningForm(meaning=Signature.Meaning.LOCKED),
            "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
            "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided),
            "image_agreement": measuring.study_agreement(study, trials)}  # pooled: shown while blinded too
@@ -434,6 +437,21 @@ def study_unblind(request, code):
         services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"],
                          password=request.POST.get("password", ""))
         messages.success(request, f"Study {study.code} unblinded and signed; outcomes are locked.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    except ValidationError as refusal:  # the signature's password
+        messages.error(request, " ".join(refusal.messages))
+    return redirect(study)
+
+
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def study_lock(request, code):
+    study = _get_study(code)
+    try:
+        services.lock_outcomes(user=request.user, study=study, password=request.POST.get("password", ""))
+        messages.success(request, f"Study {study.code}: outcomes locked and signed.")
     except services.Refused as refusal:
         messages.error(request, str(refusal))
     except ValidationError as refusal:  # the signature's password

@@ -46,9 +46,10 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
                                                   dispersal_time_s=None, censored=True, finished_at=days_ago(1))
     failed = models.ImageMeasurement.objects.create(**measured, status="failed", error="unreadable")
     draft = make_protocol(status=models.Protocol.Status.DRAFT, approved_on=None)  # to approve
+    open_study = make_study(user=researcher, protocol=protocol, code="access-open", blinded=False)  # to lock
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
                            attachment=attachment, claims=claims, measurement=done, failed=failed, dish=dish,
-                           empty_dish=empty_dish, spare=spare, draft=draft)
+                           empty_dish=empty_dish, spare=spare, draft=draft, open_study=open_study)
 
 
 def _hand_over_slot_2(w, user):
@@ -82,6 +83,7 @@ URLS = {
     "experiments:study-new": lambda w: reverse("experiments:study-new"),
     "experiments:study-detail": lambda w: reverse("experiments:study-detail", args=[w.study.code]),
     "experiments:study-unblind": lambda w: reverse("experiments:study-unblind", args=[w.study.code]),
+    "experiments:study-lock": lambda w: reverse("experiments:study-lock", args=[w.open_study.code]),
     "experiments:study-csv": lambda w: reverse("experiments:study-csv", args=[w.study.code]),
     "experiments:study-chart": lambda w: reverse("experiments:study-chart", args=[w.study.code, "km", "svg"]),
     "experiments:study-chart-csv": lambda w: reverse("experiments:study-chart-csv", args=[w.study.code, "km"]),
@@ -129,6 +131,7 @@ POST_DATA = {
                                         "method": "block",
                                         "observation_window_s": 600, "blinded": "on"},
     "experiments:study-unblind": lambda w: {"reason": "All scored", "password": "pw"},
+    "experiments:study-lock": lambda w: {"password": "pw"},
     "experiments:trial-new": _trial_post,
     "experiments:slot-claim": lambda w: {},
     "experiments:slot-release": lambda w: {"reason": "Operator away this week"},
@@ -166,6 +169,7 @@ ACCESS = [
     ("experiments:study-new", "post", RUN),
     ("experiments:study-detail", "get", READ),
     ("experiments:study-unblind", "post", RUN),  # the owner, or a manager who must see
+    ("experiments:study-lock", "post", RUN),  # the owner or a manager
     ("experiments:study-csv", "get", READ),  # blinded: conditions only on the reader's own trials
     ("experiments:study-chart", "get", READ),  # blinded: pooled
     ("experiments:study-chart-csv", "get", READ),
@@ -197,6 +201,7 @@ WRONG_METHODS = [
     ("experiments:booking-draw", "get"), ("experiments:cohort-detail", "post"), ("experiments:cohort-end", "get"),
     ("experiments:dish-new", "get"), ("experiments:dish-end", "get"), ("experiments:dish-void", "get"),
     ("experiments:study-new", "put"), ("experiments:study-detail", "post"), ("experiments:study-unblind", "get"),
+    ("experiments:study-lock", "get"),
     ("experiments:study-csv", "post"), ("experiments:study-chart", "post"), ("experiments:study-chart-csv", "post"),
     ("experiments:trial-new", "delete"), ("experiments:slot-claim", "get"), ("experiments:slot-release", "get"),
     ("experiments:trial-detail", "post"), ("experiments:trial-score", "put"),

@@ -29,6 +29,7 @@ FORMS = {
     "experiments:dish-void": False,
     "experiments:study-new": False,  # the study code is taken by the first
     "experiments:study-unblind": False,
+    "experiments:study-lock": False,  # locked already
     "experiments:trial-new": False,  # the slot is taken by the first
     "experiments:slot-claim": False,  # claiming a slot one holds changes nothing
     "experiments:slot-release": False,  # the claim is released by the first

@@ -1,4 +1,4 @@
-"""Unblinding (which locks a study's outcomes) is signed: the password is re-entered; a wrong one unblinds
+"""Unblinding (which locks a study's outcomes) and locking an open study's outcomes are signed: the password is re-entered; a wrong one unblinds
 nothing; the signature is shown on the study page and a later change of a locked outcome is detectable."""
 import pytest
 from django.urls import reverse
@@ -55,3 +55,24 @@ def test_unblinding_is_signed_and_shown_and_a_later_change_of_an_outcome_is_dete
     Trial.objects.filter(study=blind_study).update(disperse_s=5)  # a locked outcome changed behind the app's back
     assert [s.current for s in signatures_for(Study.objects.get(pk=blind_study.pk))] == [False]
     assert "record changed since this signature" in page_text(client.get(blind_study.get_absolute_url()))
+
+
+def test_locking_an_open_studys_outcomes_is_signed_and_a_wrong_password_locks_nothing(client, researcher, protocol,
+                                                                                    tank):
+    cohort = make_cohort(user=researcher, protocol=protocol, tank=tank, animals=24, at=days_ago(6))
+    study = make_study(user=researcher, protocol=protocol, blinded=False, replicates=1)
+    record(study, cohort, researcher, at=days_ago(4))
+    client.force_login(researcher)
+    url = reverse("experiments:study-lock", args=[study.code])
+    assert "Sign and lock outcomes" in page_text(client.get(study.get_absolute_url()))
+    before = _state(study)
+
+    assert "Password:" in page_text(client.post(url, {"password": "wrong"}, follow=True))
+    assert _state(study) == before and not study.is_locked
+
+    client.post(url, {"password": "pw"})
+    study.refresh_from_db()
+    assert study.is_locked
+    assert study.signatures.get().meaning == Signature.Meaning.LOCKED
+    page = page_text(client.get(study.get_absolute_url()))
+    assert "meaning: outcomes locked" in page and "Sign and lock outcomes" not in page
