@@ -16,8 +16,8 @@ from simple_history.template_utils import HistoricalRecordContextHelper
 
 from . import history_format, services
 from .forms import CareTargetForm, MeasurementPlanForm, TankMeasurementPlanForm, TankTargetForm, reason_field
-from .models import (CareTarget, Census, Check, DeadRemoval, Deviation, Feeding, MeasurementPlan, Room, Species, Split,
-                     SplitPart, Tank, TankMeasurementPlan, TankTarget, WaterChange)
+from .models import (CareTarget, Census, Check, DeadRemoval, Deviation, Feeding, MeasurementPlan, Room, Signature,
+                     Species, Split, SplitPart, Tank, TankMeasurementPlan, TankTarget, WaterChange)
 
 NO_REVERT = ("Past versions cannot be restored or edited: a correction is a new version with its own reason, "
              "made in the app or on the record's change page.")
@@ -260,3 +260,19 @@ class AccountAdmin(NoDeleteMixin, UserAdmin):
 @admin.register(Group)
 class RoleGroupAdmin(NoDeleteMixin, GroupAdmin):
     pass
+
+
+@admin.register(Signature)
+class SignatureAdmin(NoDeleteMixin, admin.ModelAdmin):
+    """Signatures are read here, never added, changed or deleted (they are made by signing in the app)."""
+
+    list_display = ["signed_at", "signer_name", "meaning", "content_type", "object_id", "content_sha256"]
+    list_filter = ["meaning", "content_type"]
+    search_fields = ["signer_name", "signer_username", "content_sha256"]
+    date_hierarchy = "signed_at"
+
+    def has_add_permission(self, request):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False

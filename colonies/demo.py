@@ -3,6 +3,7 @@
 Everything here is made up (facility, people, numbers). Deterministic for a given seed and
 "today": the same seed on the same day gives the same records.
 """
+import hashlib
 import math
 import random
 from datetime import datetime, time, timedelta
@@ -15,9 +16,10 @@ from simple_history.utils import bulk_create_with_history
 
 from scipy.optimize import brentq
 
-from . import care_defaults, chemistry, deviations, schedules
+from . import care_defaults, chemistry, deviations, schedules, signatures
 from .flags import flags_for
-from .models import CareTarget, Census, Check, Deviation, Feeding, Room, Species, Tank, TankTarget, WaterChange
+from .models import (CareTarget, Census, Check, Deviation, Feeding, Room, Signature, Species, Tank, TankTarget,
+                     WaterChange)
 from .roles import MANAGER, RESEARCHER, TECHNICIAN
 from .services import apply_estimate
 
@@ -262,11 +264,16 @@ def _deviations(rng, checks, techs, manager, now):
             action = _action_for(dev) or "Checked the tank and its equipment; all normal at the next check."
             who = manager if dev.severity == Deviation.Severity.MAJOR else rng.choice(techs)
             dev.acknowledge(user=who)
-            dev.close(user=who, corrective_action=action)
-            # Back-date the answer to when it happened in the scenario (the history keeps the edit).
+            dev.close(user=who, corrective_action=action, password=DEMO_PASSWORD)
+            # Back-date the answer to when it happened in the scenario (the history keeps the edit), and
+            # its signature with it: signed then, over the record as it was then.
             delay = timedelta(hours=rng.uniform(1, 30))
             Deviation.objects.filter(pk=dev.pk).update(acknowledged_at=dev.last_seen_at + delay / 3,
                                                       closed_at=dev.last_seen_at + delay)
+            dev.refresh_from_db()
+            text = signatures.canonical(dev.signed_content())
+            Signature.objects.filter(object_id=dev.pk, content_type__model="deviation").update(
+                signed_at=dev.closed_at, content=text, content_sha256=hashlib.sha256(text.encode()).hexdigest())
         elif dev.rule in (Deviation.Rule.OUT_OF_TARGET, Deviation.Rule.MORTALITY) and rng.random() < 0.5:
             dev.acknowledge(user=rng.choice(techs))
 

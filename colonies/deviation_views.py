@@ -5,7 +5,7 @@ from datetime import datetime
 import pandas as pd
 from django import forms
 from django.contrib import messages
-from django.core.exceptions import PermissionDenied
+from django.core.exceptions import PermissionDenied, ValidationError
 from django.db.models import Count, F
 from django.shortcuts import get_object_or_404, redirect, render
 from django.utils import formats
@@ -16,7 +16,9 @@ from .export_stream import csv_response
 from .filters import DeviationFilter
 from .forms import reason_field
 from .history import versions_of
-from .models import Deviation
+from .models import Deviation, Signature
+from .signature_forms import SigningForm
+from .signatures import signatures_for
 from .idempotency import once_per_submission
 from .roles import MANAGER, RESEARCHER, TECHNICIAN, role_required
 
@@ -54,7 +56,14 @@ EVIDENCE_TIME = re.compile(r"\d{4}-\d{2}-\d{2} \d{2}:\d{2}")
 
 
 def _register_qs():
-    return Deviation.objects.select_related("tank__room", "closed_by", "acknowledged_by")
+    return Deviation.objects.select_related("tank__room", "closed_by", "acknowledged_by").prefetch_related("signatures")
+
+
+def _detail(request, dev, form, signing, status=200):
+    return render(request, "colonies/deviation_detail.html",
+                  {"dev": dev, "form": form, "signing": signing, "entries": _history(dev), "evidence": _evidence_rows(dev),
+                   "close_refusal": dev.close_refusal(request.user), "signatures": signatures_for(dev)},
+                  status=status)
 
 
 @require_GET
@@ -90,11 +99,9 @@ def register_csv(request):
 @role_required(TECHNICIAN, RESEARCHER)
 def detail(request, pk):
     dev = get_object_or_404(_register_qs(), pk=pk)
-    history = _history(dev)
-    return render(request, "colonies/deviation_detail.html",
-                  # Actions typed with the flagged values are the starting point: nobody types them twice.
-                  {"dev": dev, "form": CloseForm(initial={"corrective_action": dev.corrective_action}), "entries": history,
-                   "evidence": _evidence_rows(dev), "close_refusal": dev.close_refusal(request.user)})
+    # Actions typed with the flagged values are the starting point: nobody types them twice.
+    return _detail(request, dev, CloseForm(initial={"corrective_action": dev.corrective_action}),
+                   SigningForm(meaning=Signature.Meaning.CLOSED))
 
 
 def _history(dev):
@@ -129,15 +136,16 @@ def close(request, pk):
     if refusal:
         raise PermissionDenied(refusal)
     form = CloseForm(request.POST)
-    if form.is_valid():
+    signing = SigningForm(request.POST, meaning=Signature.Meaning.CLOSED)
+    if form.is_valid() and signing.is_valid():
         try:
-            dev.close(user=request.user, corrective_action=form.cleaned_data["corrective_action"])
+            dev.close(user=request.user, corrective_action=form.cleaned_data["corrective_action"],
+                      password=signing.cleaned_data["password"])
+        except ValidationError as error:
+            signing.refused(error)
         except ValueError as error:
             messages.error(request, str(error))
         else:
-            messages.success(request, f"Closed: {dev}.")
+            messages.success(request, f"Closed and signed: {dev}.")
             return redirect(dev)
-    history = _history(dev)
-    return render(request, "colonies/deviation_detail.html",
-                  {"dev": dev, "form": form, "entries": history, "evidence": _evidence_rows(dev), "close_refusal": None},
-                  status=400)
+    return _detail(request, dev, form, signing, status=400)

@@ -8,6 +8,7 @@ from datetime import timedelta
 from functools import lru_cache
 
 from django.conf import settings
+from django.contrib.contenttypes.fields import GenericRelation
 from django.core.exceptions import PermissionDenied, ValidationError
 from django.core.validators import MinValueValidator, MaxValueValidator, RegexValidator
 from django.db import models, transaction
@@ -946,6 +947,7 @@ class Deviation(models.Model):
     closed_by = models.ForeignKey(settings.AUTH_USER_MODEL, null=True, blank=True, on_delete=models.PROTECT,
                                   related_name="+")
     corrective_action = models.TextField(blank=True, help_text="What was done; required to close.")
+    signatures = GenericRelation("colonies.Signature")
     history = HistoricalRecords()
 
     objects = DeviationQuerySet.as_manager()
@@ -1015,27 +1017,43 @@ class Deviation(models.Model):
                     "only a manager may close it.")
         return None
 
-    def close(self, *, user, corrective_action: str) -> None:
+    def signed_content(self) -> dict:
+        """What a closing signature vouches for (colonies/signatures.py hashes it)."""
+        return {"record": "deviation", "id": self.pk, "tank": self.tank.code if self.tank_id else None,
+                "subject": self.subject, "rule": self.rule, "parameter": self.parameter, "severity": self.severity,
+                "status": self.status, "summary": self.summary, "opened_at": self.opened_at,
+                "closed_at": self.closed_at, "closed_by": self.closed_by_id, "corrective_action": self.corrective_action}
+
+    def close(self, *, user, corrective_action: str, password: str) -> None:
+        """Close with a corrective action, signed by `user` (their password re-entered): one transaction,
+        so a wrong password closes nothing. Raises ValidationError({"password": ...}) then."""
+        from .signatures import sign  # signatures imports this module
+
         refusal = self.close_refusal(user)
         if refusal:
             raise PermissionDenied(refusal)
         action = (corrective_action or "").strip()
         if not action:
             raise ValueError("Corrective action: describe what was done before closing the deviation.")
-        with transaction.atomic():
-            self._lock_and_refresh()
-            if self.status == self.Status.CLOSED:
-                raise ValueError("This deviation is already closed.")
-            now = timezone.now()
-            if self.acknowledged_at is None:
-                self.acknowledged_at, self.acknowledged_by = now, user
-            self.status = self.Status.CLOSED
-            self.closed_at = now
-            self.closed_by = user
-            self.corrective_action = action
-            self._history_user = user
-            self._change_reason = "Closed with corrective action"
-            self.save()
+        try:
+            with transaction.atomic():
+                self._lock_and_refresh()
+                if self.status == self.Status.CLOSED:
+                    raise ValueError("This deviation is already closed.")
+                now = timezone.now()
+                if self.acknowledged_at is None:
+                    self.acknowledged_at, self.acknowledged_by = now, user
+                self.status = self.Status.CLOSED
+                self.closed_at = now
+                self.closed_by = user
+                self.corrective_action = action
+                self._history_user = user
+                self._change_reason = "Closed with corrective action"
+                self.save()
+                sign(user=user, password=password, meaning=Signature.Meaning.CLOSED, obj=self)
+        except ValidationError:
+            self.refresh_from_db()  # the transaction was rolled back; so is this copy
+            raise
 
 
 class ArchivedEvidence(models.Model):
@@ -1168,3 +1186,61 @@ class Submission(models.Model):
 
     def get_absolute_url(self):
         return self.result_url
+
+
+# ---------------------------------------------------------------------------------------------
+# Electronic signatures (21 CFR 11.50, 11.70, 11.200); the service is colonies/signatures.py
+# ---------------------------------------------------------------------------------------------
+class Signature(models.Model):
+    """A person's signature on a record: who, when (server time), what it means, and a SHA-256 of
+    the record's signed content, so a later change of the record is detectable.
+
+    Linked by content type and object id, not by one foreign key per signed model: deviations live
+    here, protocols and studies in experiments (which colonies must not import) and period reports
+    elsewhere; one table and one service serve all. Never edited or deleted (save and delete refuse).
+    """
+
+    class Meaning(models.TextChoices):
+        CLOSED = "closed-with-action", "closed with corrective action"
+        APPROVED = "approved", "approved"
+        AMENDED = "amended", "amendment approved"
+        SUSPENDED = "suspended", "suspended"
+        REVIEWED = "reviewed", "reviewed"
+        UNBLINDED = "unblinded", "unblinded (outcomes locked)"
+        LOCKED = "locked", "outcomes locked"
+
+    content_type = models.ForeignKey("contenttypes.ContentType", on_delete=models.PROTECT)
+    object_id = models.PositiveBigIntegerField()
+    signer = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.PROTECT, related_name="signatures")
+    signer_name = models.CharField(max_length=300, help_text="The signer's full name as printed at signing.")
+    signer_username = models.CharField(max_length=150)
+    signed_at = models.DateTimeField(default=timezone.now, editable=False, help_text="Server time of signing.")
+    meaning = models.CharField(max_length=24, choices=Meaning.choices)
+    content = models.TextField(help_text="The canonical serialisation of the record as signed (JSON).")
+    content_sha256 = models.CharField(max_length=64, help_text="SHA-256 of `content`, hex.")
+
+    class Meta:
+        ordering = ["signed_at", "pk"]
+        get_latest_by = "signed_at"
+        indexes = [
+            # signatures_for(obj) and the signature blocks of the deviation, protocol and study pages
+            models.Index(fields=["content_type", "object_id", "signed_at"], name="signature_of_record"),
+        ]
+        constraints = [
+            models.CheckConstraint(condition=Q(content_sha256__regex=r"^[0-9a-f]{64}$"), name="signature_sha256_hex"),
+        ]
+
+    def __str__(self):
+        return f"Signed by {self.signer_name}, {lab_moment(self.signed_at)}, meaning: {self.get_meaning_display()}"
+
+    def get_absolute_url(self):
+        target = self.content_type.get_object_for_this_type(pk=self.object_id)
+        return target.get_absolute_url()
+
+    def save(self, *args, **kwargs):
+        if self.pk is not None:
+            raise PermissionDenied("A signature is never changed; sign again instead.")
+        super().save(*args, **kwargs)
+
+    def delete(self, *args, **kwargs):
+        raise PermissionDenied("A signature is never deleted.")

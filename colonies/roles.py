@@ -85,12 +85,12 @@ ROLE_PERMISSIONS: dict[str, list[str]] = {
     TECHNICIAN: [],
     RESEARCHER: [],
     MANAGER: [
-        # reference data: rooms, tanks (and their own targets), species care profiles, protocols
+        # reference data: rooms, tanks (and their own targets), species care profiles
         *_perms("colonies", "view add change", "room", "tank", "tanktarget", "species", "caretarget"),
-        *_perms("experiments", "view add change", "protocol", "allowance"),
+        *_perms("experiments", "view", "protocol", "allowance", "protocolversion"),  # changed in the app, signed
         # records: read here, entered and corrected in the app
         *_perms("colonies", "view", "check", "feeding", "waterchange", "census", "deadremoval", "split", "splitpart",
-                "deviation"),
+                "deviation", "signature"),
         *_perms("experiments", "view", "booking", "cohort", "dish", "study", "trial", "override", "attachment",
                 "slotclaim", "periodreport"),
     ],

@@ -17,6 +17,7 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 from . import (batch, check_export, derived, due_readings, health_forms, health_series, history_format, parameters, prefill,
                round_rows, services)
 from . import labels as labels_module
+from . import today_hooks
 from .export_stream import csv_response
 from .filters import CheckFilter, TankFilter
 from .flags import describe
@@ -85,6 +86,7 @@ def home(request):
         "rooms": list(rooms.values()), "now": now, "missing_action_days": round_rows.MISSING_ACTION_DAYS,
         "severity_counts": [(label, by_severity[value], value) for value, label in reversed(Deviation.Severity.choices)],
         "deviations": unresolved[:25], "n_unresolved": len(unresolved),
+        "notices": today_hooks.notices(today),  # e.g. protocols expiring soon (the trials app provides them)
     }
     return render(request, "colonies/home.html", ctx)
 

@@ -1,17 +1,19 @@
-"""Back office: protocols (reference data, entered and approved here) and read-only views of the records.
+"""Back office: read-only views of protocols and the records.
 
-Bookings, cohorts, dishes, studies and trials are made in the app's own screens, which apply the protocol
-and welfare rules; here they can only be read. Nothing can be deleted.
+Protocols are entered, amended (as versions), approved and suspended in the app's own pages, where
+approving and suspending are signed; bookings, cohorts, dishes, studies and trials are made in the
+app's screens, which apply the protocol and welfare rules. Here they can only be read: a change here
+would bypass the versions and the signatures. Nothing can be deleted.
 """
 
 from django.contrib import admin
 from django.db.models import BooleanField, Case, Value, When
 
-from colonies.admin import HistoryAdmin, NoDeleteMixin, ReadableHistoryHelper, ReasonAdmin
+from colonies.admin import HistoryAdmin, NoDeleteMixin, ReadableHistoryHelper
 
 from . import blinding
 from .models import (Allowance, Attachment, Booking, Cohort, Dish, ImageMeasurement, Override, PeriodReport, Protocol,
-                     SlotClaim, Study, Trial)
+                     ProtocolVersion, SlotClaim, Study, Trial)
 
 # What a row must not show to a viewer blinded to it: experiments/blinding.py decides, as on the app's pages.
 BLINDED_TRIAL_FIELDS = blinding.HIDDEN_TRIAL_FIELDS
@@ -24,6 +26,12 @@ BLINDED = blinding.BLINDED
 class AllowanceInline(NoDeleteMixin, admin.StackedInline):
     model = Allowance
     extra = 0
+
+    def has_add_permission(self, request, obj=None):
+        return False
+
+    def has_change_permission(self, request, obj=None):
+        return False
     fieldsets = [
         (None, {"fields": ["kind"]}),
         ("Light and UV", {"fields": [("wavelength_min_nm", "wavelength_max_nm"), "max_irradiance_mw_cm2",
@@ -35,8 +43,18 @@ class AllowanceInline(NoDeleteMixin, admin.StackedInline):
     ]
 
 
+class ReadOnlyAdmin(HistoryAdmin):
+    def has_change_permission(self, request, obj=None):
+        return False
+
+    def has_add_permission(self, request):
+        return False
+
+
 @admin.register(Protocol)
-class ProtocolAdmin(ReasonAdmin):
+class ProtocolAdmin(ReadOnlyAdmin):
+    """Read-only: a change here would rewrite terms without a version and signed terms without a signature."""
+
     list_display = ["reference", "title", "status", "approver", "starts_on", "expires_on", "max_exposures_per_group",
                     "max_animals_total"]
     list_filter = ["status"]
@@ -44,11 +62,15 @@ class ProtocolAdmin(ReasonAdmin):
     inlines = [AllowanceInline]
 
 
-class ReadOnlyAdmin(HistoryAdmin):
-    def has_change_permission(self, request, obj=None):
-        return False
+@admin.register(ProtocolVersion)
+class ProtocolVersionAdmin(NoDeleteMixin, admin.ModelAdmin):
+    list_display = ["protocol", "number", "effective_from", "recorded_by", "approval_reference"]
+    list_filter = ["protocol"]
 
     def has_add_permission(self, request):
+        return False
+
+    def has_change_permission(self, request, obj=None):
         return False
 
 

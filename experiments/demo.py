@@ -20,9 +20,11 @@ from datetime import datetime, time, timedelta
 from django.db import transaction
 from django.utils import timezone
 
-from colonies.models import Tank
+from colonies.demo import DEMO_PASSWORD
+from colonies.models import Signature, Tank
+from colonies.signatures import sign
 
-from . import demo_imaging, services
+from . import demo_imaging, protocols, services
 from .models import Allowance, Booking, Cohort, Dish, Protocol, Stimulus, Study
 
 WINDOW_S = 600
@@ -45,7 +47,7 @@ def _at(day, hour, minute, tz):
     return timezone.make_aware(datetime.combine(day, time(hour, minute)), tz)
 
 
-def _protocols(manager, today):
+def _protocols(manager, today, password):
     def protocol(reference, allowances, **fields):
         p = Protocol(reference=reference, **fields)
         p._history_user, p._change_reason = manager, "Entered from the approval letter"
@@ -54,6 +56,11 @@ def _protocols(manager, today):
             row = Allowance(protocol=p, **a)
             row._history_user = manager
             row.save()
+        start = timezone.make_aware(datetime.combine(p.starts_on, time(9, 0)))
+        protocols.version_at(p, start)  # version 1, in force from its first day
+        if p.status == Protocol.Status.APPROVED:  # approved in the app, signed on the day of the approval
+            sign(user=manager, password=password, meaning=Signature.Meaning.APPROVED, obj=p)
+            p.signatures.update(signed_at=timezone.make_aware(datetime.combine(p.approved_on, time(11, 30))))
         return p
 
     main = protocol(
@@ -80,6 +87,14 @@ def _protocols(manager, today):
         title="Caffeine and clump cohesion (draft, awaiting review)", approver="(pending)",
         starts_on=today + timedelta(days=14), expires_on=today + timedelta(days=380), status=Protocol.Status.DRAFT,
         max_animals_per_trial=10, max_exposures_per_group=2, min_rest_hours=24)
+    protocol(  # shows on Today: it expires within 30 days
+        "QAW-2025-019", [{"kind": Stimulus.LIGHT, "wavelength_min_nm": 450, "wavelength_max_nm": 650,
+                          "max_irradiance_mw_cm2": 2.0, "max_duration_s": 60}],
+        title="White-light avoidance in juvenile cultures",
+        approver="Dr Halvard Pennick, Quillmoor animal welfare body",
+        approved_on=today - timedelta(days=340), starts_on=today - timedelta(days=330),
+        expires_on=today + timedelta(days=18), status=Protocol.Status.APPROVED, max_animals_per_trial=10,
+        max_exposures_per_group=2, min_rest_hours=24)
     return main, old, draft
 
 
@@ -97,12 +112,13 @@ def _clusters(rng, dispersed_at: float | None, animals: int) -> list[dict]:
 
 
 @transaction.atomic
-def load(*, seed: int, now, users: dict) -> dict:
+def load(*, seed: int, now, users: dict, password: str = DEMO_PASSWORD) -> dict:
+    """`password`: the manager's and the researcher's, to sign approvals and the unblinding as people do."""
     rng = random.Random(seed)
     tz = timezone.get_current_timezone()
     today = timezone.localdate(now)
     ravi, manager = users["researcher"][0], users["manager"][0]
-    main, _old, _draft = _protocols(manager, today)
+    main, _old, _draft = _protocols(manager, today, password)
     tanks = list(Tank.objects.filter(code__in=[f"LV-{i:02d}" for i in range(1, 11)]).order_by("code"))
     if len(tanks) < 10:
         raise ValueError("The trials demo needs tanks LV-01..LV-10 from the colonies demo.")
@@ -174,8 +190,10 @@ def load(*, seed: int, now, users: dict) -> dict:
         overrides += bool(result.override)
     # Photo series of some dishes, measured before unblinding (experiments/demo_imaging.py).
     image_series = demo_imaging.add_series(study=study, user=ravi, seed=seed)
-    services.unblind(user=ravi, study=study, at=_at(start + timedelta(days=5), 16, 0, tz),
+    unblinded_at = _at(start + timedelta(days=5), 16, 0, tz)
+    services.unblind(user=ravi, study=study, at=unblinded_at, password=password,
                      reason="All 30 trials scored; primary analysis as planned.")
+    study.signatures.update(signed_at=unblinded_at)  # signed when it happened in the scenario
 
     # Dishes end two days after their last trial: most go back to their tanks, one is retired for histology,
     # the last is kept (with its cohort's two reserve animals); then the three cohorts fully in dishes end.

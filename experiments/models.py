@@ -8,6 +8,7 @@ history (django-simple-history); history_user comes from the request middleware 
 explicitly in services.py.
 """
 from django.conf import settings
+from django.contrib.contenttypes.fields import GenericRelation
 from django.core.exceptions import ValidationError
 from django.db import models
 from django.db.models import Q
@@ -99,6 +100,7 @@ class Protocol(models.Model):
         help_text="Animals the approval allows over the protocol's whole life (drawn from tanks into cohorts). "
                   "Empty: not set; the period report says so.")
     notes = models.TextField(max_length=MAX_TEXT, blank=True)
+    signatures = GenericRelation("colonies.Signature")
     history = HistoricalRecords()
 
     objects = ProtocolQuerySet.as_manager()
@@ -124,20 +126,15 @@ class Protocol(models.Model):
 
     def terms(self) -> limits.ProtocolTerms:
         """The limits as plain values; uses prefetched allowances when present."""
-        allowances = {}
-        for a in self.allowances.all():
-            terms = a.terms()
-            if a.kind in allowances and a.kind == Stimulus.CHEMICAL:
-                merged = {**allowances[a.kind].substances, **terms.substances}
-                terms = limits.AllowanceTerms(terms.kind_label, terms.maxima, terms.wavelength_band, merged)
-            allowances[a.kind] = terms
-        return limits.ProtocolTerms(
-            reference=self.reference, status_ok=self.status == self.Status.APPROVED,
-            status_label=self.get_status_display(), starts_on=self.starts_on, expires_on=self.expires_on,
-            max_animals_per_trial=self.max_animals_per_trial, max_exposures_per_group=self.max_exposures_per_group,
-            min_rest_hours=self.min_rest_hours, max_cumulative_dose_mj_cm2=self.max_cumulative_dose_mj_cm2,
-            allowances=allowances,
-        )
+        return _protocol_terms(self, self.allowances.all(), self)
+
+    def signed_content(self) -> dict:
+        """What an approval, amendment or suspension signature vouches for: status and the terms in force
+        (the newest version; colonies/signatures.py hashes it). Runs one query for the version."""
+        version = self.versions.order_by("-number").first()
+        return {"record": "protocol", "id": self.pk, "reference": self.reference, "status": self.status,
+                "approved_on": self.approved_on, "version": version.number if version else None,
+                "terms": version.content() if version else None}
 
     def problem(self, day) -> str:
         """Why this protocol cannot be booked or used on `day`; "" when it can."""
@@ -229,6 +226,95 @@ class Allowance(models.Model):
         substances = {self.substance.strip().lower(): self.max_concentration_um} if self.substance else {}
         return limits.AllowanceTerms(self.get_kind_display(), maxima,
                                      (self.wavelength_min_nm, self.wavelength_max_nm), substances)
+
+
+# Allowance fields a protocol version copies (everything but the row's own keys)
+ALLOWANCE_FIELDS = ["kind", "wavelength_min_nm", "wavelength_max_nm", *ALLOWANCE_MAXIMA, "max_concentration_um",
+                    "substance", "notes"]
+# Protocol fields a version copies; the reference (the protocol's identity), status and approval date are not terms
+VERSION_FIELDS = ["title", "approver", "starts_on", "expires_on", "max_animals_per_trial", "max_exposures_per_group",
+                  "min_rest_hours", "max_cumulative_dose_mj_cm2", "notes"]
+
+
+def _protocol_terms(source, allowances, protocol: Protocol) -> limits.ProtocolTerms:
+    """Plain limits from `source` (a protocol or one of its versions) and its allowances; status from `protocol`."""
+    merged = {}
+    for a in allowances:
+        terms = a.terms()
+        if a.kind in merged and a.kind == Stimulus.CHEMICAL:
+            substances = {**merged[a.kind].substances, **terms.substances}
+            terms = limits.AllowanceTerms(terms.kind_label, terms.maxima, terms.wavelength_band, substances)
+        merged[a.kind] = terms
+    return limits.ProtocolTerms(
+        reference=protocol.reference, status_ok=protocol.status == Protocol.Status.APPROVED,
+        status_label=protocol.get_status_display(), starts_on=source.starts_on, expires_on=source.expires_on,
+        max_animals_per_trial=source.max_animals_per_trial, max_exposures_per_group=source.max_exposures_per_group,
+        min_rest_hours=source.min_rest_hours, max_cumulative_dose_mj_cm2=source.max_cumulative_dose_mj_cm2,
+        allowances=merged,
+    )
+
+
+class ProtocolVersion(models.Model):
+    """A protocol's terms from `effective_from` on: version 1 when it was entered, one more per amendment.
+
+    Written once by experiments/protocols.py and never changed: each trial records the version in force
+    when it ran (`Trial.protocol_version`), and its limit checks and ledger line use that version, so an
+    amendment never rewrites what earlier trials were allowed. The protocol row holds a copy of the
+    newest version's terms (what bookings and new trials are checked against).
+    """
+
+    protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="versions")
+    number = models.PositiveIntegerField()
+    effective_from = models.DateTimeField(help_text="Trials run from this time on are held to these terms.")
+    recorded_at = models.DateTimeField(default=timezone.now)
+    recorded_by = _user_fk(null=True, blank=True)
+    reason = models.TextField(max_length=MAX_TEXT, blank=True, help_text="What the amendment changes and why.")
+    approval_reference = models.CharField(max_length=60, blank=True,
+                                          help_text="The approval body's reference for this version or amendment.")
+    title = models.CharField(max_length=200)
+    approver = models.CharField(max_length=120)
+    starts_on = models.DateField()
+    expires_on = models.DateField()
+    max_animals_per_trial = models.PositiveIntegerField()
+    max_exposures_per_group = models.PositiveIntegerField()
+    min_rest_hours = models.FloatField()
+    max_cumulative_dose_mj_cm2 = models.FloatField(null=True, blank=True)
+    notes = models.TextField(max_length=MAX_TEXT, blank=True)
+    allowances = models.JSONField(default=list, blank=True, help_text="The allowances' fields as they were.")
+
+    class Meta:
+        ordering = ["protocol", "number"]
+        get_latest_by = "number"
+        constraints = [
+            models.UniqueConstraint(fields=["protocol", "number"], name="protocol_version_number_once"),
+        ]
+        indexes = [
+            # protocols.version_at(): the version in force at a trial's time
+            models.Index(fields=["protocol", "effective_from"], name="protocol_version_in_force"),
+        ]
+
+    def __str__(self):
+        return f"{self.protocol.reference} version {self.number}"
+
+    def get_absolute_url(self):
+        return reverse("experiments:protocol-detail", args=[self.protocol_id]) + f"#version-{self.number}"
+
+    def allowance_rows(self) -> list["Allowance"]:
+        """The allowances as unsaved Allowance objects (for their limit rows and terms); no query."""
+        return [Allowance(**values) for values in self.allowances]
+
+    def terms(self, protocol: Protocol | None = None) -> limits.ProtocolTerms:
+        """The limits of this version; status (approved, suspended) from the protocol as it is now."""
+        return _protocol_terms(self, self.allowance_rows(), protocol or self.protocol)
+
+    def content(self) -> dict:
+        return {"number": self.number, "effective_from": self.effective_from,
+                "approval_reference": self.approval_reference, "allowances": self.allowances,
+                **{name: getattr(self, name) for name in VERSION_FIELDS}}
+
+
+def allowance_values(allowance: "Allowance") -> dict:
+    return {name: getattr(allowance, name) for name in ALLOWANCE_FIELDS}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -499,6 +585,7 @@ class Study(models.Model):
     unblinded_by = _user_fk(null=True, blank=True)
     unblind_reason = models.TextField(blank=True)
     created_at = models.DateTimeField(default=timezone.now)
+    signatures = GenericRelation("colonies.Signature")
     history = HistoricalRecords()
 
     class Meta:
@@ -547,6 +634,18 @@ class Study(models.Model):
     @property
     def is_locked(self) -> bool:
         return self.outcomes_locked_at is not None
+
+    def signed_content(self) -> dict:
+        """What an unblinding (and locking) signature vouches for: the allocation, the unblinding and every
+        trial's locked outcomes (late outcomes, LATE_OUTCOME_FIELDS, stay open and are left out). One query."""
+        trials = [{"slot": t.slot, "code": t.code, "condition": t.condition, "run_at": t.run_at,
+                   "aggregate_s": t.aggregate_s, "disperse_s": t.disperse_s, "censored": t.censored,
+                   "voided": t.voided_at is not None}
+                  for t in self.trials.order_by("slot", "pk")]
+        return {"record": "study", "id": self.pk, "code": self.code, "protocol": self.protocol_id,
+                "allocation": self.allocation, "seed": self.seed, "blinded": self.blinded,
+                "outcomes_locked_at": self.outcomes_locked_at, "unblinded_at": self.unblinded_at,
+                "unblinded_by": self.unblinded_by_id, "unblind_reason": self.unblind_reason, "trials": trials}
 
     def slot(self, number: int) -> dict | None:
         for entry in self.allocation:
@@ -606,6 +705,10 @@ class Trial(Voidable):
     dish = models.ForeignKey(Dish, on_delete=models.PROTECT, related_name="trials",
                              help_text="The group of animals exposed; always a dish of the trial's cohort.")
     protocol = models.ForeignKey(Protocol, on_delete=models.PROTECT, related_name="trials")
+    protocol_version = models.ForeignKey(
+        ProtocolVersion, null=True, blank=True, on_delete=models.PROTECT, related_name="trials",
+        help_text="The protocol's terms in force when the trial ran: its limits are checked and shown against these. "
+                  "Empty only on a trial saved outside the services (every trial recorded in the app has one).")
     run_at = models.DateTimeField(default=timezone.now, help_text="When the stimulus was applied.")
     run_by = _user_fk()
     recorded_at = models.DateTimeField(auto_now_add=True)

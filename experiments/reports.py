@@ -262,7 +262,7 @@ def dose_table(result: StudyAnalysis) -> pd.DataFrame:
 # ---------------------------------------------------------------------------------------------
 # Exposure ledger
 # ---------------------------------------------------------------------------------------------
-LEDGER_COLUMNS = ["cohort", "dish", "origin_tank", "protocol", "run_at", "study", "slot", "stimulus", "settings",
+LEDGER_COLUMNS = ["cohort", "dish", "origin_tank", "protocol", "protocol_version", "run_at", "study", "slot", "stimulus", "settings",
                   "animals",
                   "dose_mj_cm2", "exposure_number", "max_exposures", "cumulative_dose_mj_cm2",
                   "max_cumulative_dose_mj_cm2", "rest_h", "min_rest_h", "over_limit", "override_reason",
@@ -294,7 +294,9 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
     rows = []
     for t in shown:
         totals = by_trial.get(t.pk, {"n": None, "dose": None, "rest": None})
-        p = t.protocol
+        # The terms in force when the trial ran (a later amendment does not change them); needs protocol_version
+        # loaded. A trial saved outside the services has none and is read against the protocol as it is.
+        p = t.protocol_version or t.protocol
         override = t.override if _has_override(t) else None
         over = []
         if totals["n"] is not None and totals["n"] > p.max_exposures_per_group:
@@ -305,7 +307,8 @@ def ledger_rows(shown: list[Trial], every: list[Trial], user) -> list[dict]:
             over.append("rest")
         rows.append({
             "trial": t, "cohort": t.cohort.label, "dish": t.dish.label, "origin_tank": t.cohort.origin_tank.code,
-            "protocol": p.reference, "run_at": _when(t.run_at), "study": t.study.code, "slot": t.slot,
+            "protocol": t.protocol.reference, "protocol_version": t.protocol_version.number if t.protocol_version else None,
+            "run_at": _when(t.run_at), "study": t.study.code, "slot": t.slot,
             "stimulus": t.get_kind_display(), "settings": t.stimulus_text(), "animals": t.animals,
             "dose_mj_cm2": t.dose_mj_cm2, "exposure_number": totals["n"], "max_exposures": p.max_exposures_per_group,
             "cumulative_dose_mj_cm2": totals["dose"], "max_cumulative_dose_mj_cm2": p.max_cumulative_dose_mj_cm2,

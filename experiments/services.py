@@ -42,12 +42,13 @@ from django.utils import timezone
 from simple_history.utils import bulk_update_with_history
 
 from colonies.deviations import Finding, apply_findings
-from colonies.models import Census, Deviation, Split, SplitPart, Tank
+from colonies.models import Census, Deviation, Signature, Split, SplitPart, Tank
 from colonies.roles import MANAGER, has_role
+from colonies.signatures import sign
 from colonies.validators import FUTURE_LEEWAY
 from vermilog.lab_time import lab_date, lab_moment
 
-from . import allocation, blinding, limits, stimulus
+from . import allocation, blinding, limits, protocols, stimulus
 from .models import (LATE_OUTCOME_FIELDS, LIGHT_KINDS, SETTING_FIELDS, UV_BELOW_NM, Attachment, Booking, Cohort,
                      Dish, Override, Protocol, SlotClaim, Stimulus, Study, Trial)
 
@@ -485,8 +486,9 @@ def may_unblind(user, study: Study) -> bool:
     return user.pk == study.owner_id or has_role(user, MANAGER)
 
 
-def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> Study:
-    """The owner or a manager unblinds, with a reason kept in the history; outcomes are locked first
+def unblind(*, user, study: Study, reason: str, password: str, at: datetime | None = None) -> Study:
+    """The owner or a manager unblinds, with a reason kept in the history and their signature
+    (password re-entered; meaning "unblinded (outcomes locked)"); outcomes are locked first
     (unblinding never precedes the lock), except the late ones (LATE_OUTCOME_FIELDS)."""
     reason = (reason or "").strip()
     if not may_unblind(user, study):
@@ -500,7 +502,27 @@ def unblind(*, user, study: Study, reason: str, at: datetime | None = None) -> S
         at = at or timezone.now()
         study.outcomes_locked_at = study.outcomes_locked_at or at
         study.unblinded_at, study.unblinded_by, study.unblind_reason = at, user, reason
-        return _save(study, user, f"Outcomes locked and unblinded: {reason}")
+        _save(study, user, f"Outcomes locked and unblinded (signed): {reason}")
+        sign(user=user, password=password, meaning=Signature.Meaning.UNBLINDED, obj=study)
+        return study
+
+
+def lock_outcomes(*, user, study: Study, password: str, at: datetime | None = None) -> Study:
+    """The owner or a manager locks the outcomes of a study that is not blinded (a blinded one is locked by
+    unblinding), signed ("outcomes locked"): no trials, scores or exclusions after it; late outcomes
+    (LATE_OUTCOME_FIELDS) stay recordable, as after unblinding."""
+    if not may_unblind(user, study):
+        raise PermissionDenied("Only the study's owner or a manager may lock its outcomes.")
+    with transaction.atomic():
+        study = Study.objects.select_for_update().get(pk=study.pk)
+        if study.is_locked:
+            raise Refused(f"Study {study.code} has locked outcomes already.")
+        if study.is_blind:
+            raise Refused(f"Study {study.code} is blinded: its outcomes are locked when it is unblinded.")
+        study.outcomes_locked_at = at or timezone.now()
+        _save(study, user, "Outcomes locked (signed)")
+        sign(user=user, password=password, meaning=Signature.Meaning.LOCKED, obj=study)
+        return study
 
 
 # ---------------------------------------------------------------------------------------------
@@ -691,10 +713,12 @@ def record_trial(*, user, study: Study, slot: int, values: dict, dish: Dish | No
                                                  f"set up ({lab_moment(dish.set_up_at)})."})
         dish.cohort = cohort
         trial.dish = dish
+        # The terms in force when the trial ran (experiments/protocols.py), not necessarily the newest.
+        trial.protocol_version = protocols.version_at(protocol, trial.run_at)
         proposal = limits.Proposal(at=trial.run_at, animals=trial.animals, kind=trial.kind,
                                    settings=trial.settings(), substance=trial.substance)
-        breaches = limits.check_exposure(protocol.terms(), dish_state(dish, trial.run_at), proposal,
-                                         timezone.localdate(trial.run_at))
+        breaches = limits.check_exposure(trial.protocol_version.terms(protocol), dish_state(dish, trial.run_at),
+                                         proposal, timezone.localdate(trial.run_at))
         if breaches and (not all(b.overridable for b in breaches) or not override_reason):
             raise LimitRefused(breaches)
         if breaches and not has_role(user, MANAGER):

@@ -1,13 +1,18 @@
 from django.urls import path
 
-from . import history_views, measurement_views, methods_views, period_report_views, views
+from . import history_views, measurement_views, methods_views, period_report_views, protocol_views, views
 
 app_name = "experiments"
 
 urlpatterns = [
     path("", views.index, name="index"),
-    path("protocols/<int:pk>/", views.protocol_detail, name="protocol-detail"),
+    path("protocols/", protocol_views.protocol_list, name="protocol-list"),
+    path("protocols/new/", protocol_views.protocol_new, name="protocol-new"),
+    path("protocols/<int:pk>/", protocol_views.protocol_detail, name="protocol-detail"),
     path("protocols/<int:pk>/history/", history_views.protocol_history, name="protocol-history"),
+    path("protocols/<int:pk>/amend/", protocol_views.protocol_amend, name="protocol-amend"),
+    path("protocols/<int:pk>/approve/", protocol_views.protocol_approve, name="protocol-approve"),
+    path("protocols/<int:pk>/suspend/", protocol_views.protocol_suspend, name="protocol-suspend"),
     path("bookings/new/", views.booking_new, name="booking-new"),
     path("bookings/calendar/", views.calendar, name="calendar"),
     path("bookings/<int:pk>/", views.booking_detail, name="booking-detail"),
@@ -27,6 +32,7 @@ urlpatterns = [
     path("studies/<slug:code>/methods/", methods_views.study_methods, name="study-methods"),
     path("studies/<slug:code>/methods.md", methods_views.study_methods_markdown, name="study-methods-md"),
     path("studies/<slug:code>/validity/", methods_views.study_validity, name="study-validity"),
+    path("studies/<slug:code>/lock/", views.study_lock, name="study-lock"),
     path("studies/<slug:code>/trials.csv", views.study_csv, name="study-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.csv", views.study_chart_csv, name="study-chart-csv"),
     path("studies/<slug:code>/chart-<slug:kind>.<slug:fmt>", views.study_chart, name="study-chart"),

@@ -17,7 +17,9 @@ from django.views.decorators.http import require_GET, require_http_methods, requ
 
 from colonies.export_stream import csv_response
 from colonies.exports import frame_chunks
-from colonies.models import REASON_MAX_CHARS, Room, pk_url_writer
+from colonies.models import REASON_MAX_CHARS, Room, Signature, pk_url_writer
+from colonies.signature_forms import SigningForm
+from colonies.signatures import signatures_for
 from colonies.idempotency import once_per_submission
 from colonies.roles import MANAGER, RESEARCHER, TECHNICIAN, has_role, role_required
 
@@ -29,7 +31,8 @@ from .models import Attachment, Booking, Cohort, Dish, Protocol, SlotClaim, Stim
 
 READ = (TECHNICIAN, RESEARCHER)
 RUN = (RESEARCHER,)
-TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "run_by", "scored_by", "override__recorded_by")
+TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "protocol_version", "run_by", "scored_by",
+                 "override__recorded_by")
 
 
 def _error_text(error) -> str:
@@ -104,16 +107,6 @@ def index(request):
         "today": today,
     }
     return render(request, "experiments/index.html", ctx)
-
-
-@require_GET
-@role_required(*READ)
-def protocol_detail(request, pk):
-    protocol = get_object_or_404(Protocol.objects.prefetch_related("allowances"), pk=pk)
-    ctx = {"protocol": protocol, "problem": protocol.problem(timezone.localdate()), "cautions": protocol.cautions(),
-           "studies": protocol.studies.select_related("owner"),
-           "cohorts": protocol.cohorts.select_related("origin_tank")[:50]}
-    return render(request, "experiments/protocol_detail.html", ctx)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -414,6 +407,10 @@ def study_detail(request, code):
            "may_unblind": blind and has_role(request.user, *RUN) and services.may_unblind(request.user, study),
            "is_owner": request.user.pk == study.owner_id,
            "can_run": has_role(request.user, *RUN), "unblind_form": ReasonForm(),
+           "signing": SigningForm(meaning=Signature.Meaning.UNBLINDED), "signatures": signatures_for(study),
+           "may_lock": (not blind and not study.is_locked and has_role(request.user, *RUN)
+                        and services.may_unblind(request.user, study)),
+           "lock_signing": SigningForm(meaning=Signature.Meaning.LOCKED),
            "may_change": has_role(request.user, *RUN) and services.may_change_study(request.user, study),
            "open_slots": len(study.allocation) - sum(1 for t in trials if not t.is_voided),
            "image_agreement": measuring.study_agreement(study, trials),  # pooled: shown while blinded too
@@ -439,10 +436,28 @@ def study_unblind(request, code):
         messages.error(request, _reason_problem(form, "Reason: give a reason to unblind; nothing was changed."))
         return redirect(study)
     try:
-        services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"])
-        messages.success(request, f"Study {study.code} unblinded; outcomes are locked.")
+        services.unblind(user=request.user, study=study, reason=form.cleaned_data["reason"],
+                         password=request.POST.get("password", ""))
+        messages.success(request, f"Study {study.code} unblinded and signed; outcomes are locked.")
     except services.Refused as refusal:
         messages.error(request, str(refusal))
+    except ValidationError as refusal:  # the signature's password
+        messages.error(request, " ".join(refusal.messages))
+    return redirect(study)
+
+
+@require_POST
+@role_required(*RUN)
+@once_per_submission
+def study_lock(request, code):
+    study = _get_study(code)
+    try:
+        services.lock_outcomes(user=request.user, study=study, password=request.POST.get("password", ""))
+        messages.success(request, f"Study {study.code}: outcomes locked and signed.")
+    except services.Refused as refusal:
+        messages.error(request, str(refusal))
+    except ValidationError as refusal:  # the signature's password
+        messages.error(request, " ".join(refusal.messages))
     return redirect(study)
 
 

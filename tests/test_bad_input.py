@@ -30,6 +30,7 @@ from colonies.models import (Census, CareTarget, Check, DeadRemoval, Feeding, Ro
 from colonies.services import SPLIT_BOOKS_TOLERANCE
 from experiments.models import Allowance, Booking, Cohort, Protocol, Study, Trial
 from experiments import services as trial_services
+from tests.experiments import protocol_posts
 from tests.experiments.builders import make_cohort, make_protocol, make_stocked_tank, make_study, record, uv_values
 from tests.factories import make_check, make_room, make_species, make_tank, species_edit_data
 
@@ -296,29 +297,26 @@ def case_admin_tank(users):
     return Case(reverse("admin:colonies_tank_add"), users["superuser"], baseline, fields)
 
 
-def case_admin_protocol(users):
-    today = timezone.localdate()
+PROTOCOL_UV = {"kind": "uv", "wavelength_min_nm": "340", "wavelength_max_nm": "400", "max_irradiance_mw_cm2": "5",
+               "max_duration_s": "60", "max_dose_mj_cm2": "100"}
+PROTOCOL_FIELDS = {"starts_on": "date", "expires_on": "date", "max_animals_per_trial": "number", "max_animals_total": "number",
+                   "max_exposures_per_group": "number", "min_rest_hours": "number",
+                   "max_cumulative_dose_mj_cm2": "number", "allowance-0-wavelength_min_nm": "number",
+                   "allowance-0-max_irradiance_mw_cm2": "number", "allowance-0-max_pulse_count": "number",
+                   "allowance-0-max_temp_step_c": "number", "title": "text", "approver": "text"}
 
-    def baseline():
-        return {"title": "Light", "reference": f"BI-{next(_unique)}", "approver": "Board",
-                "approved_on": _day(today - timedelta(days=5)), "starts_on": _day(today),
-                "expires_on": _day(today + timedelta(days=300)), "status": "approved", "max_animals_per_trial": "12",
-                "max_animals_total": "400",
-                "max_exposures_per_group": "3", "min_rest_hours": "20", "max_cumulative_dose_mj_cm2": "150",
-                "notes": "", "change_reason": "approved",
-                **_inline("allowances", [{"kind": "uv", "wavelength_min_nm": "340", "wavelength_max_nm": "400",
-                                          "max_irradiance_mw_cm2": "5", "max_duration_s": "60",
-                                          "max_dose_mj_cm2": "100", "max_voltage_v": "", "max_field_v_cm": "",
-                                          "max_pulse_width_ms": "", "max_pulse_count": "", "max_temp_step_c": "",
-                                          "max_temp_rate_c_min": "", "substance": "", "max_concentration_um": "",
-                                          "notes": ""}])}
-    fields = {"approved_on": "date", "starts_on": "date", "expires_on": "date", "max_animals_per_trial": "number",
-              "max_animals_total": "number",
-              "max_exposures_per_group": "number", "min_rest_hours": "number", "max_cumulative_dose_mj_cm2": "number",
-              "allowances-0-wavelength_min_nm": "number", "allowances-0-max_irradiance_mw_cm2": "number",
-              "allowances-0-max_pulse_count": "number", "allowances-0-max_temp_step_c": "number",
-              "title": "text"}
-    return Case(reverse("admin:experiments_protocol_add"), users["superuser"], baseline, fields)
+
+def case_protocol_new(users):
+    """Protocols are entered in the app (the back office only reads them): the new-protocol page."""
+    return Case(reverse("experiments:protocol-new"), users["manager"],
+                lambda: protocol_posts.new_protocol(reference=f"BI-{next(_unique)}", allowances=[PROTOCOL_UV]),
+                PROTOCOL_FIELDS)
+
+
+def case_protocol_amend(users):
+    protocol = make_protocol()
+    return Case(reverse("experiments:protocol-amend", args=[protocol.pk]), users["manager"],
+                lambda: protocol_posts.amend_protocol(protocol), {**PROTOCOL_FIELDS, "reason": "text"})
 
 
 # Trials

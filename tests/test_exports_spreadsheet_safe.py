@@ -37,7 +37,7 @@ def world(technician, researcher, manager):
         colony_services.record_feeding(user=technician, feeding=Feeding(
             tank=tank, food=text, amount=1.0, observed_at=now - timedelta(hours=i + 1), recorded_by=technician))
     deviation = Deviation.objects.filter(tank=tank).first()
-    deviation.close(user=technician, corrective_action="+HARDEN replaced the heater")
+    deviation.close(user=technician, corrective_action="+HARDEN replaced the heater", password="pw")
 
     protocol = make_protocol(max_exposures_per_group=3)
     study = make_study(user=researcher, protocol=protocol, conditions=CONDITIONS, replicates=2, code="safe-study")

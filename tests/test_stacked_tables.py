@@ -67,7 +67,7 @@ def test_every_cell_of_a_stacked_table_is_labelled_with_its_column(monkeypatch):
     monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
     call_command("load_demo", stdout=open("/dev/null", "w"))
     from colonies.models import Check, Deviation, Species
-    from experiments.models import Cohort, Study
+    from experiments.models import Cohort, Protocol, Study
 
     check = Check.objects.order_by("-observed_at").first()
     species, cohort = Species.objects.order_by("pk").first().pk, Cohort.objects.order_by("pk").first().pk
@@ -75,9 +75,10 @@ def test_every_cell_of_a_stacked_table_is_labelled_with_its_column(monkeypatch):
         "tamsin": ["/", "/tanks/", "/tanks/LV-03/", f"/checks/{check.pk}/", "/species/", f"/species/{species}/",
                    f"/deviations/{Deviation.objects.order_by('pk').first().pk}/", "/health/", "/tanks/LV-03/history/",
                    "/tanks/LV-03/health/"],
-        "ravi": ["/experiments/", "/experiments/bookings/calendar/"]
+        "ravi": ["/experiments/", "/experiments/bookings/calendar/", "/experiments/protocols/"]
                 + [f"/experiments/studies/{s.code}/" for s in Study.objects.all()],
-        "morwen": ["/deviations/", "/experiments/ledger/", f"/species/{species}/edit/", f"/experiments/cohorts/{cohort}/"],
+        "morwen": ["/deviations/", "/experiments/ledger/", f"/species/{species}/edit/", f"/experiments/cohorts/{cohort}/"]
+                  + [f"/experiments/protocols/{pk}/" for pk in Protocol.objects.values_list("pk", flat=True)],
     }
     client, seen = Client(), 0
     for username, paths in pages.items():

@@ -135,11 +135,13 @@ def trials(rng, f, seed: int, now) -> dict:
     """The demo's protocols, cohorts and two studies (if LV-01..LV-10 exist), then bulk bookings."""
     from experiments import demo as trials_demo
     from experiments.models import Booking, Cohort, Study, Trial
+
+    from .synthetic import PASSWORD  # synthetic imports this module; its users sign the demo's approvals
     counts = {}
     lv = set(Tank.objects.filter(code__in=[f"LV-{i:02d}" for i in range(1, 11)]).values_list("code", flat=True))
     if len(lv) == 10:
         trials_demo.load(seed=seed, now=now, users={k: v for k, v in f.users.items()
-                                                    if k in (RESEARCHER, MANAGER)})
+                                                    if k in (RESEARCHER, MANAGER)}, password=PASSWORD)
     manager, researchers = f.users[MANAGER][0], f.users[RESEARCHER]
     protocol = _protocol(f, manager)
     days = (f.today - f.start).days

@@ -27,11 +27,17 @@ def test_manager_closes_deviation_with_corrective_action(page, live_server, benc
     row.get_by_role("link", name="Temperature 27.5", exact=False).click()
 
     # Closing without an action is refused and the deviation stays open.
-    page.get_by_role("button", name="Close deviation").click()
-    expect(page.locator(".errorbox")).to_contain_text("Corrective action")
+    page.get_by_role("button", name="Sign and close deviation").click()
+    expect(page.locator(".errorbox").first).to_contain_text("Corrective action")
     page.get_by_label("Corrective action").fill("Heater thermostat replaced; 22.4 °C at the next check")
-    page.get_by_role("button", name="Close deviation").click()
+    # A wrong password signs nothing and closes nothing.
+    page.get_by_label("Your password").fill("not-my-password")
+    page.get_by_role("button", name="Sign and close deviation").click()
+    expect(page.locator(".errorbox")).to_contain_text("Password")
+    page.get_by_label("Your password").fill(PASSWORD)
+    page.get_by_role("button", name="Sign and close deviation").click()
     expect(page.locator(".messages")).to_contain_text("Closed")
+    expect(page.locator(".signatures")).to_contain_text("meaning: closed with corrective action")
     expect(page.locator(".status-closed")).to_be_visible()
     expect(page.get_by_text("Heater thermostat replaced")).to_be_visible()
 

@@ -35,7 +35,7 @@ def demo_lab(transactional_db, monkeypatch):
 
     from colonies import demo
     from colonies.models import Check, Deviation, Species
-    from experiments.models import Cohort, Study
+    from experiments.models import Cohort, Protocol, Study
 
     monkeypatch.setattr(demo, "DAYS", DEMO_DAYS)
     call_command("load_demo", "--seed", "7", stdout=open("/dev/null", "w"))
@@ -49,7 +49,10 @@ def demo_lab(transactional_db, monkeypatch):
     return {"check": flagged.pk, "study": unblinded.code, "analysed": analysed.code, "blind": blind.code, "deviation": Deviation.objects.order_by("pk").first().pk,
             "species": Species.objects.order_by("pk").first().pk,
             # a cohort still in use: its dishes table and the set-up and end forms
-            "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk}
+            "cohort": Cohort.objects.filter(end="", dishes__isnull=False).order_by("pk").first().pk,
+            # a signed protocol: signature block, versions, the suspend form
+            "protocol": Protocol.objects.filter(signatures__isnull=False).order_by("pk").first().pk,
+            "closed_deviation": Deviation.objects.filter(status="closed").order_by("pk").first().pk}
 
 
 def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
@@ -73,12 +76,16 @@ def _pages(ids: dict) -> dict[str, list[tuple[str, str, bool]]]:
             ("cohort page", f"/experiments/cohorts/{ids['cohort']}/", True),
             ("cohort history", f"/experiments/cohorts/{ids['cohort']}/history/", True),
             ("booking suggestions", None, True), ("booking calendar", "/experiments/bookings/calendar/", True),
+            ("protocol list", "/experiments/protocols/", True),
         ],
         "morwen": [  # manager
             ("deviation register", "/deviations/", True), ("exposure ledger", "/experiments/ledger/", True),
             ("period report", f"/experiments/reports/period/?period_from={date.today() - timedelta(days=29)}"
                               f"&period_to={date.today()}&scope=facility", True),
             ("care profile form", f"/species/{ids['species']}/edit/", True),
+            ("protocol page", f"/experiments/protocols/{ids['protocol']}/", True),
+            ("protocol amend", f"/experiments/protocols/{ids['protocol']}/amend/", True),
+            ("signed deviation", f"/deviations/{ids['closed_deviation']}/", True),
         ],
     }
 

@@ -10,7 +10,7 @@ from django.urls import reverse
 from colonies import demo
 from colonies.models import CareTarget, Census, Check, Feeding, Room, Species, Tank, WaterChange
 from colonies.roles import ALL_ROLES, MANAGER, RESEARCHER, ROLE_PERMISSIONS, TECHNICIAN
-from experiments.models import Allowance, Protocol
+from experiments.models import Protocol
 from tests.factories import make_check, make_room, make_tank, make_user
 
 REFERENCE = [Species, Room, Tank]
@@ -101,8 +101,12 @@ def test_role_groups_carry_exactly_the_declared_permissions(db):
 def test_no_role_may_delete_anything_and_only_managers_have_back_office_permissions():
     assert ROLE_PERMISSIONS[TECHNICIAN] == [] and ROLE_PERMISSIONS[RESEARCHER] == []
     assert not [p for perms in ROLE_PERMISSIONS.values() for p in perms if ".delete_" in p]
-    assert {"colonies.add_room", "colonies.change_tank", "colonies.change_species", "experiments.add_protocol",
-            "experiments.change_allowance"} <= set(ROLE_PERMISSIONS[MANAGER])
+    assert {"colonies.add_room", "colonies.change_tank", "colonies.change_species", "experiments.view_protocol",
+            "experiments.view_allowance"} <= set(ROLE_PERMISSIONS[MANAGER])
+    # Protocols are entered, amended (versions) and approved (signed) in the app's own pages only.
+    assert not {"experiments.add_protocol", "experiments.change_protocol", "experiments.add_allowance",
+                "experiments.change_allowance", "colonies.add_signature", "colonies.change_signature"} \
+        & set(ROLE_PERMISSIONS[MANAGER])
 
 
 def test_a_permission_added_by_hand_is_taken_away_by_the_next_migrate(db):
@@ -151,7 +155,7 @@ def _form_data(response) -> dict:
     return data
 
 
-@pytest.mark.parametrize("model", [Room, Tank, Species, Protocol], ids=lambda m: m.__name__)
+@pytest.mark.parametrize("model", [Room, Tank, Species], ids=lambda m: m.__name__)
 def test_demo_manager_opens_add_and_change_pages_and_saves_with_a_reason(client, demo_manager, model):
     client.force_login(demo_manager)
     obj = model.objects.order_by("pk").first()
@@ -177,25 +181,20 @@ def test_demo_manager_opens_add_and_change_pages_and_saves_with_a_reason(client,
     assert model.objects.filter(pk=obj.pk).exists()
 
 
-def test_manager_adds_a_protocol_with_an_allowance_and_the_reason_reaches_both(client, db):
-    manager = make_user("mira", role=MANAGER, is_staff=True)
-    client.force_login(manager)
-    data = {"title": "Light avoidance", "reference": "AWB-2026-101", "approver": "Dr Test, welfare body",
-            "approved_on": "2026-01-05", "starts_on": "2026-01-10", "expires_on": "2027-01-10", "status": "approved",
-            "max_animals_per_trial": "12", "max_exposures_per_group": "3", "min_rest_hours": "24",
-            "max_cumulative_dose_mj_cm2": "150", "notes": "",
-            "allowances-TOTAL_FORMS": "1", "allowances-INITIAL_FORMS": "0", "allowances-MIN_NUM_FORMS": "0",
-            "allowances-MAX_NUM_FORMS": "1000", "allowances-0-kind": "light", "allowances-0-max_duration_s": "60",
-            "change_reason": "Approval letter received"}
-
-    response = client.post(_admin_url(Protocol, "add"), data)
-
-    assert response.status_code == 302, response.context["adminform"].form.errors
-    protocol = Protocol.objects.get(reference="AWB-2026-101")
-    allowance = Allowance.objects.get(protocol=protocol)
-    for row in (protocol, allowance):
-        version = row.history.get()
-        assert (version.history_user, version.history_change_reason) == (manager, "Approval letter received")
+def test_back_office_shows_protocols_but_neither_adds_nor_changes_them(client, demo_manager, superuser):
+    """A signed protocol changes only with a new signature, and every change is a version: the app's pages do
+    that (experiments/protocols.py), the back office cannot, not even for a superuser."""
+    protocol = Protocol.objects.filter(signatures__isnull=False).first()
+    before = (Protocol.objects.count(), protocol.history.count(), protocol.notes)
+    for user in (demo_manager, superuser):
+        client.force_login(user)
+        assert client.get(_admin_url(Protocol, "change", protocol.pk)).status_code == 200  # read
+        assert client.get(_admin_url(Protocol, "add")).status_code == 403
+        data = {"title": protocol.title, "notes": "Changed behind the signature", "change_reason": "Edit"}
+        assert client.post(_admin_url(Protocol, "change", protocol.pk), data).status_code == 403
+        assert client.post(_admin_url(Protocol, "add"), {"reference": "AWB-2026-101", "title": "x"}).status_code == 403
+    protocol.refresh_from_db()
+    assert (Protocol.objects.count(), protocol.history.count(), protocol.notes) == before
 
 
 def test_back_office_care_target_gets_the_apps_bounds_check_and_nothing_is_saved(client, db):

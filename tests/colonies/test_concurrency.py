@@ -143,7 +143,7 @@ def test_closing_a_deviation_loaded_before_new_evidence_keeps_that_evidence():
     stale = Deviation.objects.get(tank=tank)  # as the detail page loaded it, before the others saved
 
     later = run_together([lambda u=u: services.record_check(user=u, tank=tank, row={"ph": 9.5}).pk for u in techs])
-    stale.close(user=closer, corrective_action="Water changed, pH back to 7.4")
+    stale.close(user=closer, corrective_action="Water changed, pH back to 7.4", password="pw")
 
     closed = Deviation.objects.get(pk=stale.pk)
     assert closed.status == Deviation.Status.CLOSED

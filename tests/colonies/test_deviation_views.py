@@ -71,7 +71,7 @@ def test_manager_closes_with_corrective_action(client, manager):
     dev = _deviation(manager)
     client.force_login(manager)
     response = client.post(reverse("colonies:deviation-close", args=[dev.pk]),
-                           {"corrective_action": "Thermostat replaced; 22.0 °C next check"})
+                           {"corrective_action": "Thermostat replaced; 22.0 °C next check", "password": "pw"})
     assert response.status_code == 302
     dev.refresh_from_db()
     assert dev.status == Deviation.Status.CLOSED
@@ -86,7 +86,7 @@ def test_register_filters_by_status_and_counts_per_rule_and_room(client, manager
     room = make_room(name="Wet lab Q")
     open_dev = _deviation(manager, room=room)
     closed = _deviation(manager, room=room)
-    closed.close(user=manager, corrective_action="done")
+    closed.close(user=manager, corrective_action="done", password="pw")
     client.force_login(manager)
     default = client.get(reverse("colonies:deviation-register"))  # unresolved only by default
     assert list(default.context["deviations"]) == [open_dev]
@@ -103,7 +103,7 @@ def test_register_csv_lists_time_to_close(client, manager):
     dev = _deviation(manager)
     Deviation.objects.filter(pk=dev.pk).update(opened_at=timezone.now() - timedelta(hours=5))
     dev.refresh_from_db()
-    dev.close(user=manager, corrective_action="Water changed")
+    dev.close(user=manager, corrective_action="Water changed", password="pw")
     client.force_login(manager)
     response = client.get(reverse("colonies:deviation-csv"))
     lines = b"".join(response.streaming_content).decode().strip().splitlines()

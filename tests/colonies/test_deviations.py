@@ -81,7 +81,7 @@ def test_after_closing_the_rule_can_fire_again(technician):
     tank = _tank()
     make_check(tank, user=technician, temp_c=26.0)
     dev = Deviation.objects.get()
-    dev.close(user=technician, corrective_action="Heater replaced")
+    dev.close(user=technician, corrective_action="Heater replaced", password="pw")
     make_check(tank, user=technician, temp_c=26.5)
     assert Deviation.objects.count() == 2
     assert Deviation.objects.unresolved().get().pk != dev.pk
@@ -111,11 +111,11 @@ def test_closing_needs_a_corrective_action(technician):
     make_check(_tank(), user=technician, temp_c=26.0)
     dev = Deviation.objects.get()
     with pytest.raises(ValueError, match="Corrective action"):
-        dev.close(user=technician, corrective_action="   ")
+        dev.close(user=technician, corrective_action="   ", password="pw")
     dev.refresh_from_db()
     assert dev.status == Deviation.Status.OPEN
     dev.acknowledge(user=technician)
-    dev.close(user=technician, corrective_action="Heater replaced; 22.1 °C next morning")
+    dev.close(user=technician, corrective_action="Heater replaced; 22.1 °C next morning", password="pw")
     dev.refresh_from_db()
     assert dev.status == Deviation.Status.CLOSED and dev.closed_by == technician and dev.closed_at
     assert dev.history.filter(history_change_reason="Closed with corrective action").exists()
@@ -245,7 +245,7 @@ def test_correcting_an_old_check_does_not_reopen_a_closed_deviation(technician):
     tank = _tank()
     check = make_check(tank, user=technician, temp_c=26.0)
     dev = Deviation.objects.get()
-    dev.close(user=technician, corrective_action="Heater replaced")
+    dev.close(user=technician, corrective_action="Heater replaced", password="pw")
     services.update_check(user=technician, check=check, row={"note": "typo fixed"}, reason="note was wrong")
     assert Deviation.objects.count() == 1
     assert Deviation.objects.get().status == Deviation.Status.CLOSED

@@ -73,7 +73,7 @@ FORMS = {
     "deviation-acknowledge": ("technician", lambda w: reverse("colonies:deviation-acknowledge", args=[w.deviation.pk]),
                               lambda w: {}, False),
     "deviation-close": ("technician", lambda w: reverse("colonies:deviation-close", args=[w.deviation.pk]),
-                        lambda w: {"corrective_action": "Heater reset; 22.4 °C an hour later"}, False),
+                        lambda w: {"corrective_action": "Heater reset; 22.4 °C an hour later", "password": "pw"}, False),
 }
 REPEATABLE = [name for name, (*_, again) in FORMS.items() if again]
 

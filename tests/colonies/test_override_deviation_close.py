@@ -34,16 +34,16 @@ def test_a_technician_cannot_close_the_override_deviation(client, technician, ov
 
 def test_the_model_refuses_a_technician_too(technician, override_deviation):
     with pytest.raises(PermissionDenied, match="only a manager may close it"):
-        override_deviation.close(user=technician, corrective_action="Looked fine")
+        override_deviation.close(user=technician, corrective_action="Looked fine", password="pw")
     override_deviation.refresh_from_db()
     assert override_deviation.closed_at is None
 
 
 def test_a_manager_closes_the_override_deviation(client, manager, override_deviation):
     client.force_login(manager)
-    assert "Close deviation" in client.get(override_deviation.get_absolute_url()).content.decode()
+    assert "Sign and close deviation" in client.get(override_deviation.get_absolute_url()).content.decode()
     response = client.post(reverse("colonies:deviation-close", args=[override_deviation.pk]),
-                           {"corrective_action": "Reviewed with the welfare officer; animals retired"})
+                           {"corrective_action": "Reviewed with the welfare officer; animals retired", "password": "pw"})
     assert response.status_code == 302
     override_deviation.refresh_from_db()
     assert (override_deviation.status, override_deviation.closed_by) == (Deviation.Status.CLOSED, manager)

@@ -78,7 +78,7 @@ def test_a_deviation_with_more_evidence_than_it_shows_gains_no_duplicates_and_is
     assert (deviation.evidence_count, len(deviation.evidence)) == (EVIDENCE_KEEP + 10, EVIDENCE_KEEP)
     assert ArchivedEvidence.objects.filter(deviation=deviation).count() == 10  # the oldest, kept whole
     assert _run(capsys).endswith("0 opened, 0 updated.")
-    deviation.close(user=technician, corrective_action="Heater thermostat replaced")
+    deviation.close(user=technician, corrective_action="Heater thermostat replaced", password="pw")
     assert _run(capsys).endswith("0 opened, 0 updated.")
     deviation.refresh_from_db()
     assert deviation.evidence_count == EVIDENCE_KEEP + 10 and Deviation.objects.count() == 1

@@ -13,7 +13,8 @@ from django.urls import get_resolver, reverse
 
 from experiments import models
 from experiments.models import Cohort
-from tests.experiments.builders import days_ago, make_cohort, make_study, record, today
+from tests.experiments import protocol_posts
+from tests.experiments.builders import days_ago, make_cohort, make_protocol, make_study, record, today
 from tests.experiments.dish_pictures import png, ring
 
 READ = {"technician", "researcher", "manager"}
@@ -49,10 +50,12 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     issued = models.PeriodReport.objects.create(period_from=today() - timedelta(days=7), period_to=today(),
                                                 scope="facility", scope_label="Whole facility", issued_by=researcher,
                                                 manifest="", manifest_sha256="0" * 64)
+    draft = make_protocol(status=models.Protocol.Status.DRAFT, approved_on=None)  # to approve
+    open_study = make_study(user=researcher, protocol=protocol, code="access-open", blinded=False)  # to lock
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
                            issued=issued,
                            attachment=attachment, claims=claims, measurement=done, failed=failed, dish=dish,
-                           empty_dish=empty_dish, spare=spare)
+                           empty_dish=empty_dish, spare=spare, draft=draft, open_study=open_study)
 
 
 def _hand_over_slot_2(w, user):
@@ -68,6 +71,11 @@ PREPARE = {("experiments:trial-new", "post", "manager"): _hand_over_slot_2}
 URLS = {
     "experiments:index": lambda w: reverse("experiments:index"),
     "experiments:protocol-detail": lambda w: reverse("experiments:protocol-detail", args=[w.protocol.pk]),
+    "experiments:protocol-list": lambda w: reverse("experiments:protocol-list"),
+    "experiments:protocol-new": lambda w: reverse("experiments:protocol-new"),
+    "experiments:protocol-amend": lambda w: reverse("experiments:protocol-amend", args=[w.protocol.pk]),
+    "experiments:protocol-approve": lambda w: reverse("experiments:protocol-approve", args=[w.draft.pk]),
+    "experiments:protocol-suspend": lambda w: reverse("experiments:protocol-suspend", args=[w.protocol.pk]),
     "experiments:booking-new": lambda w: reverse("experiments:booking-new"),
     "experiments:calendar": lambda w: reverse("experiments:calendar"),
     "experiments:booking-detail": lambda w: reverse("experiments:booking-detail", args=[w.booking.pk]),
@@ -81,6 +89,7 @@ URLS = {
     "experiments:study-new": lambda w: reverse("experiments:study-new"),
     "experiments:study-detail": lambda w: reverse("experiments:study-detail", args=[w.study.code]),
     "experiments:study-unblind": lambda w: reverse("experiments:study-unblind", args=[w.study.code]),
+    "experiments:study-lock": lambda w: reverse("experiments:study-lock", args=[w.open_study.code]),
     "experiments:study-csv": lambda w: reverse("experiments:study-csv", args=[w.study.code]),
     "experiments:study-chart": lambda w: reverse("experiments:study-chart", args=[w.study.code, "km", "svg"]),
     "experiments:study-chart-csv": lambda w: reverse("experiments:study-chart-csv", args=[w.study.code, "km"]),
@@ -127,6 +136,10 @@ def _trial_post(w):
 
 
 POST_DATA = {
+    "experiments:protocol-new": lambda w: protocol_posts.new_protocol(),
+    "experiments:protocol-amend": lambda w: protocol_posts.amend_protocol(w.protocol, {"max_exposures_per_group": 2}),
+    "experiments:protocol-approve": lambda w: {"approved_on": today().isoformat(), "password": "pw"},
+    "experiments:protocol-suspend": lambda w: {"reason": "Welfare review pending", "password": "pw"},
     "experiments:booking-new": lambda w: {"protocol": w.protocol.pk, "species": w.tank.species_id, "animals": 5,
                                           "needed_on": today().isoformat(), "tank": w.tank.pk, "action": "book"},
     "experiments:booking-cancel": lambda w: {"reason": "Not needed"},
@@ -142,6 +155,8 @@ POST_DATA = {
                                         "observation_window_s": 600, "blinded": "on"},
     "experiments:study-unblind": lambda w: {"reason": "All scored"},
     "experiments:study-validity": lambda w: {"use": ["ph_band"], "ph_band.low": "6", "ph_band.high": "9"},
+    "experiments:study-unblind": lambda w: {"reason": "All scored", "password": "pw"},
+    "experiments:study-lock": lambda w: {"password": "pw"},
     "experiments:trial-new": _trial_post,
     "experiments:slot-claim": lambda w: {},
     "experiments:slot-release": lambda w: {"reason": "Operator away this week"},
@@ -159,6 +174,13 @@ POST_DATA = {
 ACCESS = [
     ("experiments:index", "get", READ),
     ("experiments:protocol-detail", "get", READ),
+    ("experiments:protocol-list", "get", RUN),
+    ("experiments:protocol-new", "get", MANAGE),
+    ("experiments:protocol-new", "post", MANAGE),
+    ("experiments:protocol-amend", "get", MANAGE),
+    ("experiments:protocol-amend", "post", MANAGE),
+    ("experiments:protocol-approve", "post", MANAGE),
+    ("experiments:protocol-suspend", "post", MANAGE),
     ("experiments:booking-new", "get", RUN),
     ("experiments:booking-new", "post", RUN),
     ("experiments:calendar", "get", READ),
@@ -174,6 +196,7 @@ ACCESS = [
     ("experiments:study-new", "post", RUN),
     ("experiments:study-detail", "get", READ),
     ("experiments:study-unblind", "post", RUN),  # the owner, or a manager who must see
+    ("experiments:study-lock", "post", RUN),  # the owner or a manager
     ("experiments:study-csv", "get", READ),  # blinded: conditions only on the reader's own trials
     ("experiments:study-chart", "get", READ),  # blinded: pooled
     ("experiments:study-chart-csv", "get", READ),
@@ -211,11 +234,14 @@ ACCESS = [
 ]
 
 WRONG_METHODS = [
-    ("experiments:index", "post"), ("experiments:protocol-detail", "post"), ("experiments:booking-new", "put"),
+    ("experiments:index", "post"), ("experiments:protocol-detail", "post"), ("experiments:protocol-list", "post"),
+    ("experiments:protocol-new", "put"), ("experiments:protocol-amend", "delete"), ("experiments:protocol-approve", "get"),
+    ("experiments:protocol-suspend", "get"), ("experiments:booking-new", "put"),
     ("experiments:calendar", "post"), ("experiments:booking-detail", "post"), ("experiments:booking-cancel", "get"),
     ("experiments:booking-draw", "get"), ("experiments:cohort-detail", "post"), ("experiments:cohort-end", "get"),
     ("experiments:dish-new", "get"), ("experiments:dish-end", "get"), ("experiments:dish-void", "get"),
     ("experiments:study-new", "put"), ("experiments:study-detail", "post"), ("experiments:study-unblind", "get"),
+    ("experiments:study-lock", "get"),
     ("experiments:study-csv", "post"), ("experiments:study-chart", "post"), ("experiments:study-chart-csv", "post"),
     ("experiments:study-methods", "post"), ("experiments:study-methods-md", "post"), ("experiments:study-validity", "get"),
     ("experiments:trial-new", "delete"), ("experiments:slot-claim", "get"), ("experiments:slot-release", "get"),
@@ -234,7 +260,7 @@ WRONG_METHODS = [
 
 def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
-    return tuple(m.history.count() for m in (models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
+    return tuple(m.history.count() for m in (models.Protocol, models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
                                              models.Override, models.Attachment, models.SlotClaim,
                                              models.ImageMeasurement, models.PeriodReport))
 

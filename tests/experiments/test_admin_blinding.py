@@ -83,7 +83,7 @@ def test_the_operator_sees_the_trial_they_ran_and_no_other(client, operator_mana
 
 def test_the_same_pages_show_them_once_the_owner_unblinds(client, researcher, staff_manager, blinded):
     study, trial, second = blinded
-    services.unblind(user=researcher, study=study, reason="All dishes scored")
+    services.unblind(user=researcher, study=study, reason="All dishes scored", password="pw")
     client.force_login(staff_manager)
 
     html = client.get(_url("trial", "change", trial.pk)).content.decode()
@@ -120,6 +120,6 @@ def test_study_change_page_withholds_the_seed_until_unblinding(client, researche
     client.force_login(staff_manager)
     html = client.get(_url("study", "change", study.pk)).content.decode()
     assert "field-seed" not in html and 'name="seed"' not in html
-    services.unblind(user=researcher, study=study, reason="All dishes scored")
+    services.unblind(user=researcher, study=study, reason="All dishes scored", password="pw")
     html = client.get(_url("study", "change", study.pk)).content.decode()
     assert "field-seed" in html

@@ -114,7 +114,7 @@ def test_files_are_refused_on_a_study_with_locked_outcomes(client, researcher, t
     study = trial.study
     study.blinded = True
     study.save()
-    services.unblind(user=researcher, study=study, reason="All scored")
+    services.unblind(user=researcher, study=study, reason="All scored", password="pw")
     client.force_login(researcher)
     page = _post(client, trial, "a.png", SAMPLES["png"], "photo").content.decode()
     assert f"Nothing was stored. File: study {study.code} has locked outcomes" in page

@@ -240,7 +240,7 @@ def test_a_blinded_attachment_downloads_under_its_code(client, world):
 
 @pytest.mark.parametrize("persona", ["owner", "technician", "manager", "operator_a"])
 def test_after_unblinding_everyone_sees(client, world, persona):
-    services.unblind(user=world.people.owner, study=world.study, reason="All planned trials run and scored")
+    services.unblind(user=world.people.owner, study=world.study, reason="All planned trials run and scored", password="pw")
     client.force_login(getattr(world.people, persona))
     study_page = client.get(world.study.get_absolute_url()).content.decode()
     assert all(c in study_page for c in (GLOW, PULSE, SHAM)) and "Dispersal by condition" in study_page

@@ -27,7 +27,7 @@ def facility(db):
 
 @pytest.mark.parametrize("seed", [7, 2026])
 def test_demo_builds_a_meaningful_study(facility, seed):
-    counts = demo.load(seed=seed, now=timezone.now(), users=facility)
+    counts = demo.load(seed=seed, now=timezone.now(), users=facility, password="pw")
     assert counts == {"protocols": 3, "bookings": 10, "cohorts": 5, "dishes": 11, "studies": 2, "trials": 32,
                       "overrides": 1, "expired_bookings": 1, "image_series": 8}
     study = Study.objects.get(code="uv-dispersal-01")
@@ -58,7 +58,7 @@ def test_demo_study_has_photo_series_and_agreement_figures(facility, seed):
     from experiments import measuring
     from experiments.models import ImageMeasurement
 
-    demo.load(seed=seed, now=timezone.now(), users=facility)
+    demo.load(seed=seed, now=timezone.now(), users=facility, password="pw")
     study = Study.objects.get(code="uv-dispersal-01")
     measured = ImageMeasurement.objects.filter(trial__study=study)
     assert measured.count() == 8 and all(m.status == "done" and m.frames_total == 13 for m in measured)

@@ -30,6 +30,7 @@ FORMS = {
     "experiments:study-new": False,  # the study code is taken by the first
     "experiments:study-unblind": False,
     "experiments:study-validity": True,  # saving the same criteria again is another history entry
+    "experiments:study-lock": False,  # locked already
     "experiments:trial-new": False,  # the slot is taken by the first
     "experiments:slot-claim": False,  # claiming a slot one holds changes nothing
     "experiments:slot-release": False,  # the claim is released by the first
@@ -39,7 +40,13 @@ FORMS = {
     "experiments:measurement-new": True,  # the same files measured again: a second measurement
     "experiments:measurement-rerun": True,  # each re-run of a failed measurement is another attempt
     "experiments:measurement-void": False,  # voided already
+    "experiments:protocol-new": False,  # the reference is taken by the first
+    "experiments:protocol-amend": True,  # a second amendment is a second version
+    "experiments:protocol-approve": False,  # approved already
+    "experiments:protocol-suspend": False,  # suspended already
 }
+MANAGER_FORMS = {"experiments:protocol-new", "experiments:protocol-amend", "experiments:protocol-approve",
+                 "experiments:protocol-suspend"}
 
 
 def _post(client, w, name, key, url=None):
@@ -56,8 +63,9 @@ def test_every_writing_form_of_the_access_table_is_covered():
 
 @pytest.mark.parametrize("name,url", [(n, None) for n in FORMS] + [("experiments:trial-set-aside", "void")],
                          ids=list(FORMS) + ["experiments:trial-void"])
-def test_resubmitting_the_same_key_saves_nothing_and_redirects_to_the_same_place(client, world, researcher, name, url):
-    client.force_login(researcher)
+def test_resubmitting_the_same_key_saves_nothing_and_redirects_to_the_same_place(client, world, researcher, manager,
+                                                                                 name, url):
+    client.force_login(manager if name in MANAGER_FORMS else researcher)
     if url == "void":
         url = reverse("experiments:trial-set-aside", args=[world.trial.pk, "void"])
     key = uuid.uuid4()
@@ -77,8 +85,8 @@ def test_resubmitting_the_same_key_saves_nothing_and_redirects_to_the_same_place
 
 
 @pytest.mark.parametrize("name", [n for n, again in FORMS.items() if again])
-def test_a_fresh_key_saves_the_same_form_again(client, world, researcher, name):
-    client.force_login(researcher)
+def test_a_fresh_key_saves_the_same_form_again(client, world, researcher, manager, name):
+    client.force_login(manager if name in MANAGER_FORMS else researcher)
     _post(client, world, name, uuid.uuid4())
     saved = _state()
 

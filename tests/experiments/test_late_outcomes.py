@@ -27,7 +27,7 @@ def finished(researcher, protocol):
     cohort = make_cohort(user=researcher, protocol=protocol, at=last_run - timedelta(days=2))
     study = make_study(user=researcher, protocol=protocol, blinded=True)
     trial = record(study, cohort, researcher, at=last_run, now=last_run + timedelta(minutes=15)).trial
-    services.unblind(user=researcher, study=study, reason="Last dish scored; primary analysis now",
+    services.unblind(user=researcher, study=study, reason="Last dish scored; primary analysis now", password="pw",
                      at=last_run + timedelta(hours=1))
     return study, trial, last_run
 
@@ -95,7 +95,7 @@ def test_a_count_entered_before_unblinding_is_not_marked_and_needs_no_reason_the
     assert trial.mortality_24h_entered_at is not None
     with pytest.raises(services.Refused, match="give a reason"):
         services.score_trial(user=researcher, trial=trial, values={"mortality_24h": 2})
-    services.unblind(user=researcher, study=study, reason="All scored")
+    services.unblind(user=researcher, study=study, reason="All scored", password="pw")
     services.score_trial(user=researcher, trial=trial, values={"mortality_24h": 2}, reason="Recount: one more dead")
     trial.refresh_from_db()
     assert (trial.mortality_24h, trial.mortality_24h_after_unblinding) == (2, True)

@@ -20,6 +20,11 @@ BEFORE = ("experiments", "0005_text_lengths")
 AFTER = ("experiments", "0007_blinding_claims_late_outcomes_reference")
 
 
+def _latest():
+    executor = MigrationExecutor(connection)
+    return next(node for node in executor.loader.graph.leaf_nodes() if node[0] == "experiments")
+
+
 def _migrate(target):
     executor = MigrationExecutor(connection)
     executor.loader.build_graph()
@@ -50,7 +55,7 @@ def test_existing_studies_get_their_first_condition_and_counts_their_first_recor
             assert cursor.fetchone()[0] == 2
         _migrate(AFTER)
     finally:
-        _migrate_latest()  # later migrations (0010 adds a study column) leave what 0007 wrote as it was
+        _migrate_latest()  # later migrations (0010 adds a study column, 0011 protocol versions) leave what 0007 wrote
 
     assert Study.objects.get(code="old").reference_condition == "control"
     assert Study.objects.get(code="one").reference_condition == "only"

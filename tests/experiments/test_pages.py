@@ -280,7 +280,7 @@ def test_blinded_study_shows_codes_not_conditions_to_all_but_the_operator_until_
     client.force_login(manager)
     assert trial.condition in page_text(client.get(trial.get_absolute_url()))
     client.force_login(researcher)
-    client.post(reverse("experiments:study-unblind", args=[study.code]), {"reason": "All dishes scored"})
+    client.post(reverse("experiments:study-unblind", args=[study.code]), {"reason": "All dishes scored", "password": "pw"})
     assert trial.condition in page_text(client.get(study.get_absolute_url()))
 
 
@@ -328,12 +328,12 @@ def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher
     booking = Booking.objects.first()
     # Counts include the session, the user and the role lookup.
     pages = {
-        reverse("experiments:index"): 8, study.get_absolute_url(): 6,  # 6: with the image-agreement query
+        reverse("experiments:index"): 8, study.get_absolute_url(): 7,  # 7: with image agreement and signatures
         reverse("experiments:study-csv", args=[study.code]): 5,
         reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
         reverse("experiments:ledger"): 7, reverse("experiments:ledger-csv"): 5,
         reverse("experiments:calendar"): 6, cohort.get_absolute_url(): 7,
-        booking.get_absolute_url(): 8, protocol.get_absolute_url(): 7,
+        booking.get_absolute_url(): 8, protocol.get_absolute_url(): 9,  # 9: with its versions and signatures
     }
     for url, limit in pages.items():
         with django_assert_max_num_queries(limit):
@@ -351,7 +351,7 @@ def test_blinded_page_query_counts_do_not_grow_with_the_data(client, manager, re
     study.blinded = True
     study.save()
     client.force_login(manager)
-    pages = {study.get_absolute_url(): 6,  # 6: the image-vs-scorer agreement reads the measurements
+    pages = {study.get_absolute_url(): 7,  # 7: the image-vs-scorer agreement reads the measurements; signatures
              reverse("experiments:study-csv", args=[study.code]): 5,
              reverse("experiments:study-chart", args=[study.code, "km", "svg"]): 5,
              reverse("experiments:study-chart-csv", args=[study.code, "km"]): 5,
@@ -372,13 +372,14 @@ def test_booking_form_names_an_impossible_number(client, researcher, protocol, t
     assert "Animals 0 is not possible: allowed range 1–100000." in page_text(response)
 
 
-def test_back_office_lists_and_adds_protocols_but_deletes_nothing(client, superuser, researcher, bench):
+def test_back_office_lists_protocols_but_adds_and_deletes_nothing(client, superuser, researcher, bench):
     cohort, study = bench
     record(study, cohort, researcher, at=days_ago(9))
     client.force_login(superuser)
     for model in ("protocol", "booking", "cohort", "dish", "study", "trial", "override", "attachment"):
         assert client.get(reverse(f"admin:experiments_{model}_changelist")).status_code == 200
-    assert client.get(reverse("admin:experiments_protocol_add")).status_code == 200
+    # Protocols are entered, amended and approved (signed) in the app's pages: the back office only shows them.
+    assert client.get(reverse("admin:experiments_protocol_add")).status_code == 403
     assert client.get(reverse("admin:experiments_protocol_delete", args=[study.protocol_id])).status_code == 403
 
 
@@ -421,7 +422,7 @@ def test_ledger_stimulus_filter_does_not_pick_out_blinded_trials(client, researc
     assert [r["trial"] for r in everything.context["rows"]] == [trial]  # the exposure is in the ledger...
     by_kind = client.get(reverse("experiments:ledger"), {"kind": trial.kind})
     assert by_kind.context["rows"] == []  # ...but filtering by its stimulus would reveal the condition
-    services.unblind(user=study.owner, study=study, reason="analysis done")
+    services.unblind(user=study.owner, study=study, reason="analysis done", password="pw")
     by_kind = client.get(reverse("experiments:ledger"), {"kind": trial.kind})
     assert [r["trial"] for r in by_kind.context["rows"]] == [trial]
 

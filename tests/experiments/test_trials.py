@@ -219,7 +219,7 @@ def test_scoring_corrects_with_history_and_locking_stops_it(setup, researcher):
         ["Outcome scored", "Outcome corrected: Misread the timer"]
     study.blinded = True
     study.save()
-    services.unblind(user=researcher, study=study, reason="All scored")
+    services.unblind(user=researcher, study=study, reason="All scored", password="pw")
     with pytest.raises(services.Refused, match="locked"):
         services.score_trial(user=researcher, trial=trial, values={"disperse_s": 5.0}, reason="late")
 
@@ -230,10 +230,10 @@ def test_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, ma
     study = make_study(user=researcher, protocol=protocol, blinded=True)
     assert study.hides_conditions_from(manager) and study.hides_conditions_from(researcher)  # the owner too
     with pytest.raises(PermissionDenied):
-        services.unblind(user=make_user("rival", role=RESEARCHER), study=study, reason="curious")
+        services.unblind(user=make_user("rival", role=RESEARCHER), study=study, reason="curious", password="pw")
     with pytest.raises(services.Refused, match="reason"):
-        services.unblind(user=researcher, study=study, reason="")
-    services.unblind(user=researcher, study=study, reason="Analysis plan complete")
+        services.unblind(user=researcher, study=study, reason="", password="pw")
+    services.unblind(user=researcher, study=study, reason="Analysis plan complete", password="pw")
     study.refresh_from_db()
     assert study.unblinded_by == researcher and study.outcomes_locked_at <= study.unblinded_at
     assert not study.hides_conditions_from(manager)
@@ -242,8 +242,8 @@ def test_the_owner_unblinds_with_a_reason_and_outcomes_lock_first(researcher, ma
 def test_a_manager_who_must_see_unblinds_with_a_reason_kept_in_the_history(researcher, manager, protocol):
     study = make_study(user=researcher, protocol=protocol, blinded=True)
     with pytest.raises(services.Refused, match="reason"):
-        services.unblind(user=manager, study=study, reason=" ")
-    services.unblind(user=manager, study=study, reason="Welfare review of dish deaths")
+        services.unblind(user=manager, study=study, reason=" ", password="pw")
+    services.unblind(user=manager, study=study, reason="Welfare review of dish deaths", password="pw")
     study.refresh_from_db()
     assert (study.unblinded_by, study.unblind_reason) == (manager, "Welfare review of dish deaths")
     latest = study.history.latest("history_date")
