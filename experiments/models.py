@@ -1074,7 +1074,8 @@ class PeriodReport(models.Model):
 
     The manifest lists the SHA-256 of every section's CSV, so this one sum fixes what was issued: the
     same period and scope on unchanged records gives the same sum again (experiments/period_report/).
-    A signature (issue 12, item 2) attaches to this record.
+    A manager signs it ("reviewed", colonies/signatures.py) only while today's records still give the
+    issued files, so what is signed is what the signer read.
     """
 
     class Scope(models.TextChoices):
@@ -1093,6 +1094,7 @@ class PeriodReport(models.Model):
     issued_at = models.DateTimeField(default=timezone.now)
     manifest = models.TextField(help_text="The ZIP's MANIFEST: one line per CSV, its SHA-256 and name.")
     manifest_sha256 = models.CharField(max_length=64, help_text="SHA-256 of the manifest.")
+    signatures = GenericRelation("colonies.Signature")
     history = HistoricalRecords()
 
     class Meta:
@@ -1105,3 +1107,11 @@ class PeriodReport(models.Model):
 
     def get_absolute_url(self):
         return reverse("experiments:period-report-issued", args=[self.pk])
+
+    def signed_content(self) -> dict:
+        """What a manager's "reviewed" signature vouches for: the period, the scope and the manifest (the
+        SHA-256 of every section's CSV), so the signature fixes the files, not only the page."""
+        return {"record": "period report", "id": self.pk, "period_from": self.period_from,
+                "period_to": self.period_to, "scope": self.scope, "scope_key": self.scope_key,
+                "scope_label": self.scope_label, "issued_by": self.issued_by_id, "issued_at": self.issued_at,
+                "manifest": self.manifest, "manifest_sha256": self.manifest_sha256}

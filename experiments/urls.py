@@ -58,4 +58,7 @@ urlpatterns = [
     path("reports/period/report.zip", period_report_views.period_report_zip, name="period-report-zip"),
     path("reports/period/issue/", period_report_views.period_report_issue, name="period-report-issue"),
     path("reports/period/<int:pk>/", period_report_views.period_report_issued, name="period-report-issued"),
+    path("reports/period/<int:pk>/report.pdf", period_report_views.period_report_issued_pdf,
+         name="period-report-issued-pdf"),
+    path("reports/period/<int:pk>/sign/", period_report_views.period_report_sign, name="period-report-sign"),
 ]

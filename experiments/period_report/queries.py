@@ -18,7 +18,8 @@ from ..models import Cohort, Dish, PeriodReport, Protocol, Study, Trial
 from . import sections
 
 Scope = PeriodReport.Scope
-TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "run_by", "scored_by", "override__recorded_by")
+TRIAL_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "protocol_version", "run_by", "scored_by",
+                 "override__recorded_by")
 HIDDEN_REASON = "(hidden while the study is blinded)"
 
 
@@ -291,7 +292,9 @@ class Report:
 
 
 def build(kind: str, key: str, period: Period, user) -> Report:
-    """Every section for `user` (blinding applies to them). A fixed number of queries."""
+    """Every section as `user` may see it (experiments/blinding.py); the pages pass None, so that no one's
+    view of a blind study (its operators see their own trials' conditions) changes the files. A fixed
+    number of queries."""
     from .render import Section
 
     scope = resolve_scope(kind, key, period)

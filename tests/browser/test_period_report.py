@@ -1,6 +1,6 @@
-"""Browser: a manager produces a period report from Today, issues it and downloads the PDF and the ZIP; the
-PDF's first page renders with pdftoppm and the ZIP's manifest sums hold. (Signing the issued report is
-issue 12 item 2; the issued page keeps the place for it, #signature.)"""
+"""Browser: a manager produces a period report from Today, issues it, signs it with their password (a wrong
+one first) and downloads the signed PDF and the ZIP; the PDF's first page renders with pdftoppm and the
+ZIP's manifest sums hold."""
 import hashlib
 import io
 import shutil
@@ -38,8 +38,15 @@ def test_manager_issues_a_period_report_and_downloads_pdf_and_zip(page, live_ser
     expect(page.get_by_text("byte-identical to those issued")).to_be_visible()
     issued = PeriodReport.objects.get()
 
+    page.get_by_label("Your password").fill("wrong-password")
+    page.get_by_role("button", name="Sign as reviewed").click()
+    expect(page.locator("#signature")).to_contain_text("this is not the password of mona")
+    page.get_by_label("Your password").fill(PASSWORD)
+    page.get_by_role("button", name="Sign as reviewed").click()
+    expect(page.locator("#signature")).to_contain_text("meaning: reviewed")
+
     with page.expect_download() as pdf_download:
-        page.get_by_role("link", name="PDF").click()
+        page.get_by_role("link", name="PDF with signatures").click()
     pdf = tmp_path / "report.pdf"
     pdf_download.value.save_as(pdf)
     assert pdf.read_bytes().startswith(b"%PDF")

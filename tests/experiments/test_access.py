@@ -11,6 +11,7 @@ import pytest
 from django.core.files.uploadedfile import SimpleUploadedFile
 from django.urls import get_resolver, reverse
 
+from colonies.models import Signature
 from experiments import models
 from experiments.models import Cohort
 from tests.experiments import protocol_posts
@@ -47,15 +48,24 @@ def world(db, researcher, protocol, tank, settings, tmp_path):
     done = models.ImageMeasurement.objects.create(**measured, frames=frames, frames_done=1, status="done",
                                                   dispersal_time_s=None, censored=True, finished_at=days_ago(1))
     failed = models.ImageMeasurement.objects.create(**measured, status="failed", error="unreadable")
-    issued = models.PeriodReport.objects.create(period_from=today() - timedelta(days=7), period_to=today(),
-                                                scope="facility", scope_label="Whole facility", issued_by=researcher,
-                                                manifest="", manifest_sha256="0" * 64)
     draft = make_protocol(status=models.Protocol.Status.DRAFT, approved_on=None)  # to approve
     open_study = make_study(user=researcher, protocol=protocol, code="access-open", blinded=False)  # to lock
+    issued = _issue(researcher)  # last: the records as they stand, so it can be signed and printed
     return SimpleNamespace(protocol=protocol, tank=tank, booking=booking, cohort=cohort, study=study, trial=trial,
                            issued=issued,
                            attachment=attachment, claims=claims, measurement=done, failed=failed, dish=dish,
                            empty_dish=empty_dish, spare=spare, draft=draft, open_study=open_study)
+
+
+def _issue(user):
+    """A facility report for the last week as issued from today's records (its manifest is the real one)."""
+    from experiments.period_report import queries, render
+
+    report = queries.build("facility", "", queries.Period(today() - timedelta(days=7), today()), None)
+    text = render.zip_bytes(report.sections)[1]
+    return models.PeriodReport.objects.create(period_from=report.period.first, period_to=report.period.last,
+                                              scope="facility", scope_label=report.scope.label, issued_by=user,
+                                              manifest=text, manifest_sha256=render.manifest_sha256(text))
 
 
 def _hand_over_slot_2(w, user):
@@ -117,6 +127,8 @@ URLS = {
     "experiments:period-report-zip": lambda w: reverse("experiments:period-report-zip") + _period(),
     "experiments:period-report-issue": lambda w: reverse("experiments:period-report-issue"),
     "experiments:period-report-issued": lambda w: reverse("experiments:period-report-issued", args=[w.issued.pk]),
+    "experiments:period-report-issued-pdf": lambda w: reverse("experiments:period-report-issued-pdf", args=[w.issued.pk]),
+    "experiments:period-report-sign": lambda w: reverse("experiments:period-report-sign", args=[w.issued.pk]),
     "experiments:protocol-history": lambda w: reverse("experiments:protocol-history", args=[w.protocol.pk]),
     "experiments:booking-history": lambda w: reverse("experiments:booking-history", args=[w.booking.pk]),
     "experiments:cohort-history": lambda w: reverse("experiments:cohort-history", args=[w.cohort.pk]),
@@ -169,6 +181,7 @@ POST_DATA = {
     "experiments:measurement-void": lambda w: {"reason": "Wrong dish"},
     "experiments:period-report-issue": lambda w: {"period_from": str(today() - timedelta(days=7)),
                                                   "period_to": str(today()), "scope": "facility"},
+    "experiments:period-report-sign": lambda w: {"password": "pw"},
 }
 
 ACCESS = [
@@ -226,6 +239,8 @@ ACCESS = [
     ("experiments:period-report-zip", "get", MANAGE),
     ("experiments:period-report-issue", "post", MANAGE),
     ("experiments:period-report-issued", "get", MANAGE),
+    ("experiments:period-report-issued-pdf", "get", MANAGE),
+    ("experiments:period-report-sign", "post", MANAGE),
     ("experiments:protocol-history", "get", READ),
     ("experiments:booking-history", "get", READ),
     ("experiments:cohort-history", "get", READ),
@@ -252,7 +267,8 @@ WRONG_METHODS = [
     ("experiments:measurement-csv", "post"), ("experiments:measurement-rerun", "get"), ("experiments:measurement-void", "get"),
     ("experiments:period-report", "post"), ("experiments:period-report-pdf", "post"),
     ("experiments:period-report-zip", "post"), ("experiments:period-report-issue", "get"),
-    ("experiments:period-report-issued", "post"),
+    ("experiments:period-report-issued", "post"), ("experiments:period-report-issued-pdf", "post"),
+    ("experiments:period-report-sign", "get"),
     ("experiments:protocol-history", "post"), ("experiments:booking-history", "post"), ("experiments:cohort-history", "post"),
     ("experiments:study-history", "post"), ("experiments:trial-history", "delete"),
 ]
@@ -262,7 +278,7 @@ def _state():
     """Counts any saved change would alter (every write leaves a history row)."""
     return tuple(m.history.count() for m in (models.Protocol, models.Booking, models.Cohort, models.Dish, models.Study, models.Trial,
                                              models.Override, models.Attachment, models.SlotClaim,
-                                             models.ImageMeasurement, models.PeriodReport))
+                                             models.ImageMeasurement, models.PeriodReport)) + (Signature.objects.count(),)
 
 
 def _request(client, world, name, method):

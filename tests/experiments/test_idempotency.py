@@ -44,9 +44,11 @@ FORMS = {
     "experiments:protocol-amend": True,  # a second amendment is a second version
     "experiments:protocol-approve": False,  # approved already
     "experiments:protocol-suspend": False,  # suspended already
+    "experiments:period-report-issue": True,  # issuing again is a second issued report
+    "experiments:period-report-sign": True,  # signing again is a second signature (a second reviewer, say)
 }
 MANAGER_FORMS = {"experiments:protocol-new", "experiments:protocol-amend", "experiments:protocol-approve",
-                 "experiments:protocol-suspend"}
+                 "experiments:protocol-suspend", "experiments:period-report-issue", "experiments:period-report-sign"}
 
 
 def _post(client, w, name, key, url=None):

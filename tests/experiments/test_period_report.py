@@ -258,19 +258,18 @@ def _print_html(client):
     return captured["html"]
 
 
-def test_back_office_refuses_an_impossible_approved_number_of_animals(client, superuser):
+def test_the_protocol_page_refuses_an_impossible_approved_number_of_animals(client, manager):
     from django.db import IntegrityError, transaction
 
+    from experiments.models import Protocol
+    from tests.experiments import protocol_posts
     from tests.experiments.builders import make_protocol
 
-    client.force_login(superuser)
-    data = {"title": "Light", "reference": "AWB-N", "approver": "Board", "starts_on": "2026-01-01",
-            "expires_on": "2026-12-31", "status": "draft", "max_animals_per_trial": "10", "max_animals_total": "0",
-            "max_exposures_per_group": "2", "min_rest_hours": "0", "change_reason": "new",
-            "allowances-TOTAL_FORMS": "0", "allowances-INITIAL_FORMS": "0", "allowances-MIN_NUM_FORMS": "0",
-            "allowances-MAX_NUM_FORMS": "1000"}
-    response = client.post(reverse("admin:experiments_protocol_add"), data)
-    assert response.status_code == 200 and "allowed range 1–100000" in response.content.decode()
+    client.force_login(manager)
+    data = protocol_posts.new_protocol(reference="AWB-N", max_animals_total=0)
+    response = client.post(reverse("experiments:protocol-new"), data)
+    assert response.status_code == 400 and "allowed range 1–100000" in response.content.decode()
+    assert not Protocol.objects.filter(reference="AWB-N").exists()
     with pytest.raises(IntegrityError), transaction.atomic():  # the database refuses it too
         make_protocol(max_animals_total=200000)
 
