@@ -126,3 +126,9 @@ def test_the_template_engine_s_own_time_is_part_of_the_floor_and_named():
     assert outcome == "floor" and detail.startswith("bare page 5.0 ms + template alone 30.0 ms + 3 x 2.0 ms SQL")
     # the page's own work beyond both floors is still held to 3x its SQL
     assert verdict(_result("Tank page", ms=50, sql=2, template_ms=30.0), PAGE, bare_page_ms=5.0)[0] == "not met"
+
+
+def test_sql_over_the_time_allowed_is_no_floor_for_a_page_that_spends_far_more_in_python():
+    # 216 ms of SQL cannot fit 150 ms, but a page of 1,956 ms is stopped by its Python, not its queries.
+    outcome, detail = verdict(_result("Period report, last 30 days", ms=1956, sql=216), PAGE, bare_page_ms=5.0)
+    assert outcome == "not met" and detail == "1,956 ms > 150 ms; 1,956 ms > 3 x 216 ms SQL"
