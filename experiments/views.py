@@ -817,7 +817,7 @@ def attachment(request, pk):
 # ---------------------------------------------------------------------------------------------
 # What ledger_rows reads of an exposure: not who ran or scored it (their ids are enough), nor the study's
 # allocation or the trial's clusters (JSON the ledger never shows): ~60 fewer instances and JSON reads a page.
-LEDGER_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "override__recorded_by")
+LEDGER_RELATED = ("study", "cohort__origin_tank", "dish", "protocol", "protocol_version", "override__recorded_by")
 
 
 def _ledger_filter(request):

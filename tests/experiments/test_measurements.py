@@ -343,7 +343,7 @@ def test_a_study_without_measurements_has_no_agreement_section(client, researche
 
 # --- query counts stay constant ----------------------------------------------------------------------
 @pytest.mark.parametrize("n", [1, 4])
-def test_trial_and_study_pages_do_not_grow_with_measurements(client, researcher, protocol, bench,
+def test_trial_and_study_pages_do_not_grow_with_measurements(client, content_types_cached, researcher, protocol, bench,
                                                             django_assert_max_num_queries, n):
     _cohort, study = bench
     trials = scored_trials(study, researcher, protocol, [(100 + 10 * k, False) for k in range(min(n, 3))])
@@ -351,7 +351,7 @@ def test_trial_and_study_pages_do_not_grow_with_measurements(client, researcher,
         _measure_directly(trials[k % len(trials)], researcher, 100 + 5 * k, False, "accepted" if k % 2 else "")
     client.force_login(researcher)
     # Counts include the session, the user and the role lookup.
-    for url, limit in ((trials[0].get_absolute_url(), 6), (study.get_absolute_url(), 6),
+    for url, limit in ((trials[0].get_absolute_url(), 6), (study.get_absolute_url(), 7),  # 7: with its signatures
                        (reverse("experiments:trial-score", args=[trials[0].pk]), 5)):
         with django_assert_max_num_queries(limit):
             assert client.get(url).status_code == 200

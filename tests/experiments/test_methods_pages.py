@@ -109,13 +109,13 @@ def test_blind_draft_shows_pooled_numbers_only_for_everyone(client, researcher, 
             for secret in (GLOW, SHAM, "2.345", str(SEED)):
                 assert secret not in text, (user, name, secret)
             assert "3 trials were recorded" in text
-    services.unblind(user=researcher, study=study, reason="All scored")
+    services.unblind(user=researcher, study=study, reason="All scored", password="pw")
     text = _text(client, manager, study, "experiments:study-methods-md")
     assert GLOW in text and str(SEED) in text and "2.345" in text
 
 
 @pytest.mark.parametrize("n", [1, 3])
-def test_query_counts_do_not_grow_with_the_data(client, researcher, protocol, technician, manager,
+def test_query_counts_do_not_grow_with_the_data(client, content_types_cached, researcher, protocol, technician, manager,
                                                 django_assert_max_num_queries, n):
     study = _study(researcher, protocol, technician, n_cohorts=n, code=f"meth-q{n}")
     methods_records.set_validity_criteria(user=researcher, study=study, criteria=[
@@ -125,7 +125,7 @@ def test_query_counts_do_not_grow_with_the_data(client, researcher, protocol, te
     # deviations. The study page: its own 6 and one for the source tanks' checks.
     pages = {reverse("experiments:study-methods", args=[study.code]): 12,
              reverse("experiments:study-methods-md", args=[study.code]): 12,
-             study.get_absolute_url(): 7}
+             study.get_absolute_url(): 8}  # 8: with the validity evidence and the signatures
     for url, limit in pages.items():
         with django_assert_max_num_queries(limit):
             assert client.get(url).status_code == 200
@@ -172,7 +172,7 @@ def test_criteria_are_fixed_after_unblinding_and_owned_by_the_owner(client, rese
     client.force_login(other)
     url = reverse("experiments:study-validity", args=[study.code])
     assert client.post(url, {"use": ["ph_band"], "ph_band.low": "6", "ph_band.high": "9"}).status_code == 403
-    services.unblind(user=researcher, study=study, reason="All scored")
+    services.unblind(user=researcher, study=study, reason="All scored", password="pw")
     client.force_login(researcher)
     response = client.post(url, {"use": ["ph_band"], "ph_band.low": "6", "ph_band.high": "9"}, follow=True)
     assert "fixed once outcomes are locked" in page_text(response)

@@ -317,7 +317,7 @@ def test_ledger_csv_has_every_exposure_where_the_page_shows_the_first(client, re
 
 # --- query counts stay constant ---------------------------------------------------------------------
 @pytest.mark.parametrize("n", [1, 4])
-def test_page_query_counts_do_not_grow_with_the_data(client, manager, researcher, protocol, technician,
+def test_page_query_counts_do_not_grow_with_the_data(client, content_types_cached, manager, researcher, protocol, technician,
                                                      django_assert_max_num_queries, n):
     tank = make_stocked_tank(estimate=5000, reserve=0, user=technician)
     study = _filled_study(researcher, protocol, tank, n, code=f"q-{n}")
