@@ -124,8 +124,10 @@ def _issued(request, pk: int) -> tuple[PeriodReport, object, object, str, bool]:
 
 
 def _issued_page(request, issued, form, report, query, unchanged, signing=None, status=200):
+    signatures = signatures_for(issued)
     return render(request, PAGE, {"form": form, "report": report, "query": query, "issued": issued,
-                                  "unchanged": unchanged, "signatures": signatures_for(issued),
+                                  "unchanged": unchanged, "signatures": signatures,
+                                  "signed_by_me": any(s.signature.signer_id == request.user.pk for s in signatures),
                                   "signing": signing or SigningForm(meaning=Signature.Meaning.REVIEWED)},
                   status=status)
 
@@ -144,7 +146,8 @@ def period_report_issued_pdf(request, pk: int):
     if not unchanged:
         return HttpResponse(CHANGED, status=409, content_type="text/plain; charset=utf-8")
     return _pdf_response(request, report, _filename(report, "pdf").replace(".pdf", f"-issued-{issued.pk}.pdf"),
-                         manifest_sha256=issued.manifest_sha256, issued=issued, signatures=signatures_for(issued))
+                         manifest_sha256=issued.manifest_sha256, issued=issued, signatures=signatures_for(issued),
+                         unchanged=True)
 
 
 CHANGED = ("The records have changed since this report was issued: today's files differ from those issued. "

@@ -39,6 +39,7 @@ def test_signing_keeps_name_time_meaning_and_the_manifest_and_shows_them(client,
     assert signature.content_sha256 == digest(issued.signed_content())
     page = client.get(issued.get_absolute_url()).content.decode()
     assert f"Signed by {signature.signer_name}" in page and "meaning: reviewed" in page
+    assert "Sign as reviewed" not in page  # signed by this manager already; another manager may add theirs
 
 
 def test_the_issued_pdf_prints_the_signature_and_the_issued_sum(client, issued, monkeypatch):
@@ -50,6 +51,9 @@ def test_the_issued_pdf_prints_the_signature_and_the_issued_sum(client, issued, 
     response = client.get(reverse("experiments:period-report-issued-pdf", args=[issued.pk]))
     assert response.status_code == 200 and response.content.startswith(b"%PDF")
     assert "meaning: reviewed" in printed["html"] and issued.manifest_sha256 in printed["html"]
+    # The footer is a running element in HTML: a scope label's hyphens print as hyphens, not as escapejs's \u002D.
+    assert '<div class="page-footer">Vermilog period report 2026-11-02 to 2026-11-08 · Whole facility</div>' \
+        in printed["html"] and "u002D" not in printed["html"] and "can no longer be signed" not in printed["html"]
 
 
 def test_after_a_late_entry_the_report_can_no_longer_be_signed_or_printed_as_issued(client, issued, technician):
