@@ -39,7 +39,9 @@ def test_manager_closes_deviation_with_corrective_action(page, live_server, benc
     expect(page.locator(".messages")).to_contain_text("Closed")
     expect(page.locator(".signatures")).to_contain_text("meaning: closed with corrective action")
     expect(page.locator(".status-closed")).to_be_visible()
-    expect(page.get_by_text("Heater thermostat replaced")).to_be_visible()
+    # The action on the record (its history below shows the change too)
+    expect(page.locator("dd", has_text="Heater thermostat replaced").first).to_be_visible()
+    expect(page.locator("table.history")).to_contain_text("Heater thermostat replaced")
 
     deviation.refresh_from_db()
     assert deviation.status == Deviation.Status.CLOSED
